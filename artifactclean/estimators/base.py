@@ -1,0 +1,215 @@
+"""Common machinery of the artifact estimators.
+
+Every estimator follows scikit-learn conventions: ``__init__`` stores
+parameters untouched, ``fit`` validates them and learns attributes ending in
+``_``, and :func:`sklearn.base.clone` works. Data are arrays of shape
+``(n_channels, n_samples)`` (the layout of a recording; note that this is
+the transpose of scikit-learn's ``(n_samples, n_features)``).
+
+Because a stimulation artifact is not stationary, ``fit`` learns the
+artifact *of the data it is given*; ``transform`` subtracts it and accepts
+only that same recording.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from sklearn.base import BaseEstimator
+
+from ..clipping import find_clipped
+from ..stimulation import StimulationModel, fit_stimulation
+
+__all__ = ["ArtifactEstimator", "validate_recording"]
+
+
+def validate_recording(data, fs, *, nan_policy: str = "raise") -> tuple[np.ndarray, float, bool]:
+    """Check a recording array and sampling rate; return a 2-D float64 copy.
+
+    Parameters
+    ----------
+    data : array_like, shape (n_channels, n_samples) or (n_samples,)
+    fs : float
+    nan_policy : {"raise", "blank"}
+        ``"blank"`` treats non-finite samples as lost (like clipped ones).
+
+    Returns
+    -------
+    x : ndarray, shape (n_channels, n_samples), float64
+    fs : float
+    squeeze : bool
+        Whether the input was 1-D.
+    """
+    if isinstance(data, (str, bytes)) or data is None:
+        raise TypeError(f"data must be a numeric array of shape (n_channels, n_samples), got {type(data).__name__}")
+    arr = np.asarray(data)
+    if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == bool):
+        raise TypeError(f"data must be numeric, got dtype {arr.dtype}")
+    if np.iscomplexobj(arr):
+        raise TypeError("data must be real-valued, got a complex array")
+    if arr.ndim not in (1, 2):
+        raise ValueError(f"data must be 1-D (one channel) or 2-D (n_channels, n_samples), got {arr.ndim}-D shape {arr.shape}")
+    squeeze = arr.ndim == 1
+    x = np.array(arr, dtype=np.float64, ndmin=2, copy=True)
+    if x.shape[1] < x.shape[0]:
+        raise ValueError(
+            f"data has shape {x.shape}: more channels than samples. Pass (n_channels, n_samples); "
+            "transpose a (n_samples, n_channels) array with data.T"
+        )
+    if x.shape[1] == 0:
+        raise ValueError("data holds no samples")
+    try:
+        fs = float(fs)
+    except (TypeError, ValueError):
+        raise TypeError(f"fs must be a number (Hz), got {fs!r}") from None
+    if not np.isfinite(fs) or fs <= 0:
+        raise ValueError(f"fs must be a positive sampling rate in Hz, got {fs}")
+    if nan_policy not in ("raise", "blank"):
+        raise ValueError(f"nan_policy must be 'raise' or 'blank', got {nan_policy!r}")
+    bad = ~np.isfinite(x)
+    if bad.any() and nan_policy == "raise":
+        ch, i = np.argwhere(bad)[0]
+        raise ValueError(
+            f"data holds {int(bad.sum())} NaN or inf samples (first: channel {ch}, sample {i}); "
+            "pass nan_policy='blank' to treat them as lost samples"
+        )
+    return x, fs, squeeze
+
+
+class ArtifactEstimator(BaseEstimator):
+    """Base class: learn the stimulation artifact of a recording and subtract it.
+
+    Subclasses implement ``_estimate(x, fs, model, lost)`` returning the
+    artifact array and a dict describing what they chose, and
+    ``context_cycles`` (how many stimulation cycles of context an output
+    sample needs on each side, for chunked processing).
+
+    Fitted attributes
+    -----------------
+    stim_model_ : StimulationModel
+    artifact_ : ndarray, shape (n_channels, n_samples)
+    lost_ : ndarray of bool
+        Samples that cannot be recovered (clipped, or non-finite input).
+    report_ : dict
+        What the estimator chose (parameters resolved from the data).
+    fs_ : float
+    """
+
+    #: stimulation cycles of context needed on each side of an output sample
+    context_cycles: float = 0.0
+
+    def fit(
+        self,
+        X,
+        y=None,
+        *,
+        fs: float,
+        stim_model: StimulationModel | None = None,
+        stim_freq: float | None = None,
+        stim_reference=None,
+        clip_level: float | None = None,
+        nan_policy: str = "raise",
+    ):
+        """Learn the artifact of recording ``X``.
+
+        Parameters
+        ----------
+        X : array_like, shape (n_channels, n_samples)
+        y : ignored
+        fs : float
+            Sampling rate (Hz).
+        stim_model : StimulationModel, optional
+            A model fitted before; otherwise one is fitted from ``X``,
+            ``stim_freq`` and ``stim_reference``.
+        stim_freq : float, optional
+            Nominal stimulation frequency (Hz).
+        stim_reference : array_like, optional
+            Recorded stimulator monitor signal, shape (n_samples,).
+        clip_level : float, optional
+            Amplifier rail in the unit of ``X``; found from the data if None.
+        nan_policy : {"raise", "blank"}
+
+        Returns
+        -------
+        self
+        """
+        self._validate_params()
+        x, fs, _ = validate_recording(X, fs, nan_policy=nan_policy)
+        lost = ~np.isfinite(x)
+        if lost.any():
+            x[lost] = 0.0
+        lost |= find_clipped(x, clip_level=clip_level)
+        if stim_model is None:
+            stim_model = _fit_model(x, fs, stim_freq, stim_reference, lost)
+        elif stim_model.n_samples != x.shape[1]:
+            raise ValueError(f"stim_model covers {stim_model.n_samples} samples, data has {x.shape[1]}")
+        artifact, report = self._estimate(x, fs, stim_model, lost)
+        self.stim_model_ = stim_model
+        self.artifact_ = artifact
+        self.lost_ = lost
+        self.report_ = dict(method=self._method_name, **report)
+        self.fs_ = fs
+        self.n_samples_ = x.shape[1]
+        return self
+
+    def transform(self, X) -> np.ndarray:
+        """Subtract the fitted artifact from the recording it was fitted on.
+
+        Lost samples (clipped or non-finite) are set to 0.
+        """
+        if not hasattr(self, "artifact_"):
+            raise RuntimeError(f"{type(self).__name__} is not fitted: call fit(X, fs=...) first")
+        arr = np.asarray(X)
+        x = np.array(arr, dtype=np.float64, ndmin=2, copy=True)
+        if x.shape != self.artifact_.shape:
+            raise ValueError(
+                f"transform takes the recording fit saw, shape {self.artifact_.shape}; got {x.shape}. "
+                "The artifact is not stationary: fit each recording"
+            )
+        x -= self.artifact_
+        x[self.lost_] = 0.0
+        return x.reshape(arr.shape) if arr.ndim == 1 else x
+
+    def fit_transform(self, X, y=None, **fit_params) -> np.ndarray:
+        """``fit(X, **fit_params)`` then ``transform(X)``."""
+        return self.fit(X, y, **fit_params).transform(X)
+
+    def context_seconds(self, freq_hz: float) -> float:
+        """Context (s) an output sample needs on each side at ``freq_hz`` stimulation."""
+        return self.context_cycles / freq_hz
+
+    # subclasses ----------------------------------------------------------
+    _method_name = "base"
+
+    def _validate_params(self) -> None:
+        """Raise ValueError naming any bad parameter."""
+
+    def _estimate(self, x, fs, model, lost):  # pragma: no cover - abstract
+        raise NotImplementedError
+
+
+def _fit_model(x, fs, stim_freq, stim_reference, lost) -> StimulationModel:
+    if stim_freq is not None:
+        try:
+            stim_freq = float(stim_freq)
+        except (TypeError, ValueError):
+            raise TypeError(f"stim_freq must be a number (Hz), got {stim_freq!r}") from None
+        if not np.isfinite(stim_freq) or stim_freq <= 0:
+            raise ValueError(f"stim_freq must be positive, got {stim_freq}")
+        if stim_freq >= fs / 2:
+            raise ValueError(
+                f"stim_freq {stim_freq} Hz is at or above the Nyquist frequency {fs / 2} Hz of fs={fs}; "
+                "check the sampling rate and the stimulation frequency"
+            )
+        if x.shape[1] / fs * stim_freq < 8:
+            raise ValueError(
+                f"recording holds {x.shape[1] / fs * stim_freq:.1f} stimulation cycles; at least 8 are needed"
+            )
+    ref = None
+    if stim_reference is not None:
+        ref = np.asarray(stim_reference, dtype=np.float64).ravel()
+        if ref.size != x.shape[1]:
+            raise ValueError(f"stim_reference has {ref.size} samples, data has {x.shape[1]}")
+        if not np.all(np.isfinite(ref)):
+            raise ValueError("stim_reference holds NaN or inf samples")
+    # lost samples (already zeroed) would bias nothing much, but rails add harmonics
+    return fit_stimulation(x, fs, stim_freq=stim_freq, reference=ref)

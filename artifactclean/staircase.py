@@ -1,0 +1,183 @@
+"""Stimulator DAC staircase: find the update ticks in the recording.
+
+A stimulator's DAC updates its output at a fixed rate and holds it in
+between, so the artifact is a staircase whose steps reach into the spike
+band. When the DAC is clocked with the waveform (an integer number ``M`` of
+updates per stimulation cycle, as for 5, 10, 20 or 40 Hz from a 1 kHz DAC),
+every sample belongs to one tick ``floor(M * u - c)`` of the unwrapped
+stimulation phase ``u`` (cycles), and all samples of a tick share one held
+value. A template indexed by tick is then exact for the staircase.
+
+Steps are found with a four-sample step detector, and ``M`` and ``c`` by
+folding the step positions on the stimulation phase.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["DacGrid", "find_dac_grid"]
+
+
+@dataclass(frozen=True)
+class DacGrid:
+    """DAC update grid locked to the stimulation phase.
+
+    Attributes
+    ----------
+    ticks_per_cycle : int
+        Updates per stimulation cycle (``M``).
+    offset : float
+        Tick phase ``c`` in [0, 1): ticks fall at ``u = (k + c) / M``.
+    offset_track : tuple of (ndarray, ndarray)
+        Two phases (cycles) and the offsets there: a straight line through
+        offsets located window by window from the steps themselves, which
+        absorbs a residual error of the frequency estimate.
+    concentration : float
+        Mean resultant length of the step positions folded on the tick
+        period (1 = every step exactly on the grid).
+    n_steps : int
+        Number of steps used.
+    """
+
+    ticks_per_cycle: int
+    offset: float
+    concentration: float
+    n_steps: int
+    offset_track: tuple = ()
+
+    def _position(self, cycles: np.ndarray) -> np.ndarray:
+        if self.offset_track:
+            at, off = self.offset_track
+            c = np.interp(cycles, at, off)
+        else:
+            c = self.offset
+        return self.ticks_per_cycle * cycles - c
+
+    def tick_index(self, cycles: np.ndarray) -> np.ndarray:
+        """Global tick number of each sample with unwrapped phase ``cycles``."""
+        return np.floor(self._position(cycles)).astype(np.int64)
+
+    def edge_distance(self, cycles: np.ndarray) -> np.ndarray:
+        """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
+        return np.mod(self._position(cycles), 1.0)
+
+
+def find_dac_grid(
+    x: np.ndarray,
+    cycles: np.ndarray,
+    fs: float,
+    freq: float,
+    *,
+    min_rate_hz: float = 200.0,
+    z_threshold: float = 6.0,
+    min_concentration: float = 0.85,
+    max_steps: int = 2000,
+) -> DacGrid | None:
+    """Look for a DAC staircase locked to the stimulation phase.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n,)
+        One channel during stimulation (the strongest).
+    cycles : ndarray, shape (n,)
+        Unwrapped stimulation phase of each sample, in cycles.
+    fs, freq : float
+        Sampling rate and stimulation frequency (Hz).
+    min_rate_hz : float
+        Slowest DAC update rate considered.
+    z_threshold : float
+        A step must exceed this many robust standard deviations of the step
+        statistic.
+    min_concentration : float
+        Folded step positions must be at least this concentrated.
+    max_steps : int
+        Steps used for the search (evenly subsampled).
+
+    Returns
+    -------
+    DacGrid or None
+        None when no staircase is found.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    if x.size < 16:
+        return None
+    # step between samples i and i+1: (-x[i-1] + 3 x[i] - 3 x[i+1] + x[i+2]) / 2 flips sign;
+    # smooth waveforms give ~0 to third order, a step of size s gives -s
+    q = 0.5 * (-x[:-3] + 3 * x[1:-2] - 3 * x[2:-1] + x[3:])
+    sigma = 1.4826 * np.median(np.abs(q - np.median(q)))
+    if sigma <= 0:
+        return None
+    big = _step_positions(q, z_threshold * sigma)
+    if big.size < 20:
+        return None
+    if big.size > max_steps:
+        big = big[np.linspace(0, big.size - 1, max_steps).astype(int)]
+    # the step lies between samples i+1 and i+2 of x (q[i] spans x[i..i+3])
+    u_lo = cycles[big + 1]
+    u_hi = cycles[big + 2]
+    u_mid = 0.5 * (u_lo + u_hi)
+    samples_per_cycle = fs / freq
+    m_lo = max(3, int(np.ceil(min_rate_hz / freq)))
+    m_hi = int(samples_per_cycle // 3)
+    if m_hi < m_lo:
+        return None
+    ms = np.arange(m_lo, m_hi + 1)
+    # fold step positions on each candidate tick period
+    ph = np.exp(2j * np.pi * np.outer(ms, np.mod(u_mid, 1.0)))
+    r = np.abs(ph.mean(axis=1))
+    best = int(np.argmax(r))
+    if r[best] < min_concentration:
+        return None
+    m = int(ms[best])
+    all_steps = _step_positions(q, z_threshold * sigma)
+    c = _vote_offset(m, cycles[all_steps + 1], cycles[all_steps + 2])
+    # refine the offset locally, about every half second (>= 50 steps per window)
+    u_all = cycles[all_steps + 1]
+    span = max(0.5 * freq, 50.0 * (u_all[-1] - u_all[0] + 1e-12) / max(all_steps.size, 1))
+    edges = np.arange(u_all[0], u_all[-1] + span, span)
+    centres, offs = [], []
+    for lo, hi in zip(edges[:-1], edges[1:]):
+        sel = (u_all >= lo) & (u_all < hi)
+        if sel.sum() < 20:
+            continue
+        cw = _vote_offset(m, cycles[all_steps[sel] + 1], cycles[all_steps[sel] + 2])
+        centres.append(0.5 * (lo + hi))
+        # keep each local offset within half a tick of the global one
+        offs.append(c + (np.mod(cw - c + 0.5, 1.0) - 0.5))
+    track = ()
+    if len(centres) >= 3:
+        # a straight line through the local offsets absorbs a residual frequency error
+        centres, offs = np.asarray(centres), np.asarray(offs)
+        coef = np.polyfit(centres - centres.mean(), offs, 1)
+        ends = np.array([u_all[0] - 1e6, u_all[-1] + 1e6])
+        track = (ends, np.polyval(coef, ends - centres.mean()))
+    return DacGrid(m, c, float(r[best]), int(big.size), track)
+
+
+def _step_positions(q: np.ndarray, level: float) -> np.ndarray:
+    """Indices of isolated local maxima of ``|q|`` above ``level``."""
+    qa = np.abs(q)
+    big = np.flatnonzero(qa > level)
+    left = np.concatenate(([0.0], qa[:-1]))[big]
+    right = np.concatenate((qa[1:], [0.0]))[big]
+    return big[(qa[big] >= left) & (qa[big] > right)]
+
+
+def _vote_offset(m: int, u_lo: np.ndarray, u_hi: np.ndarray, nb: int = 65536) -> float:
+    """Tick offset consistent with most steps: each lies in ``(M u_lo, M u_hi]`` mod 1."""
+    a = np.mod(m * u_lo, 1.0)
+    w = m * (u_hi - u_lo)
+    start = np.floor(a * nb).astype(int)
+    width = np.maximum(1, np.round(w * nb).astype(int))
+    votes = np.zeros(2 * nb + 1)
+    np.add.at(votes, start, 1.0)
+    np.add.at(votes, np.minimum(start + width, 2 * nb), -1.0)
+    votes = np.cumsum(votes)[: 2 * nb]
+    votes = votes[:nb] + votes[nb:]
+    top = np.flatnonzero(votes >= votes.max() - 0.5)
+    # centre of the densest run on the circle
+    ang = np.angle(np.mean(np.exp(2j * np.pi * (top + 0.5) / nb)))
+    return float(np.mod(ang / (2 * np.pi), 1.0))
