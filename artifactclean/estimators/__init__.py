@@ -1,0 +1,36 @@
+"""Artifact estimators and the registry of method names used by :func:`artifactclean.clean`."""
+
+from .base import ArtifactEstimator, validate_recording
+from .comb import NotchComb
+from .template import TemplateSubtraction
+
+#: method name -> estimator class
+METHODS = {
+    "template": TemplateSubtraction,
+    "comb": NotchComb,
+}
+
+#: what :func:`artifactclean.clean` uses when no method is named
+DEFAULT_METHOD = "template"
+
+
+def make_estimator(method: str, **params) -> ArtifactEstimator:
+    """Build the estimator registered as ``method`` with ``params``.
+
+    Raises
+    ------
+    ValueError
+        For an unknown method name or a parameter the estimator does not take.
+    """
+    if not isinstance(method, str) or method not in METHODS:
+        raise ValueError(f"unknown method {method!r}; choose one of {sorted(METHODS)}")
+    cls = METHODS[method]
+    valid = cls().get_params()
+    unknown = sorted(set(params) - set(valid))
+    if unknown:
+        raise ValueError(f"method {method!r} takes no parameter(s) {unknown}; it takes {sorted(valid)}")
+    return cls(**params)
+
+
+__all__ = ["ArtifactEstimator", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
+           "make_estimator", "validate_recording"]

@@ -1,0 +1,73 @@
+"""Notch-comb baseline: IIR notches at the stimulation harmonics.
+
+What many labs use today, kept for comparison. Each harmonic ``k f`` below
+``max_freq`` gets a second-order IIR notch (``scipy.signal.iirnotch``) of
+bandwidth ``bandwidth_hz``, applied forward and backward (zero phase) to the
+whole trace.
+
+What it removes and what it cannot
+----------------------------------
+It removes a band ``bandwidth_hz`` wide around each harmonic, neural signal
+included, everywhere in the trace (sham and off stretches too). It leaves
+the heartbeat and respiration sidebands outside those bands, harmonics above
+``max_freq`` and the DAC staircase in the spike band, and it rings after
+ramps and steps.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import signal
+
+from .base import ArtifactEstimator
+
+__all__ = ["NotchComb"]
+
+
+class NotchComb(ArtifactEstimator):
+    """Zero-phase IIR notches at every stimulation harmonic below ``max_freq``.
+
+    Parameters
+    ----------
+    max_freq : float
+        Highest harmonic notched (Hz); 300 Hz is where the spike band starts
+        (common practice).
+    bandwidth_hz : float
+        -3 dB width of each notch.
+    """
+
+    _method_name = "comb"
+
+    def __init__(self, max_freq: float = 300.0, bandwidth_hz: float = 1.0):
+        self.max_freq = max_freq
+        self.bandwidth_hz = bandwidth_hz
+
+    context_cycles = 0.0
+
+    def context_seconds(self, freq_hz: float) -> float:
+        # an IIR notch decays over ~ 1 / (pi * bandwidth) seconds; take ten of those
+        return 10.0 / (np.pi * self.bandwidth_hz)
+
+    def _validate_params(self) -> None:
+        if not self.max_freq > 0:
+            raise ValueError(f"max_freq must be positive, got {self.max_freq!r}")
+        if not self.bandwidth_hz > 0:
+            raise ValueError(f"bandwidth_hz must be positive, got {self.bandwidth_hz!r}")
+
+    def sos(self, freq: float, fs: float) -> np.ndarray:
+        """Second-order sections of the comb for stimulation frequency ``freq``."""
+        top = min(self.max_freq, 0.45 * fs)
+        harmonics = np.arange(1, int(top // freq) + 1) * freq
+        if harmonics.size == 0:
+            return np.zeros((0, 6))
+        return np.vstack([signal.tf2sos(*signal.iirnotch(h, h / self.bandwidth_hz, fs=fs)) for h in harmonics])
+
+    def _estimate(self, x, fs, model, lost):
+        main = model.main_block
+        if main is None:
+            return np.zeros_like(x), dict(harmonics=0, freq_hz=None)
+        sos = self.sos(main.freq_hz, fs)
+        if sos.shape[0] == 0:
+            return np.zeros_like(x), dict(harmonics=0, freq_hz=main.freq_hz)
+        filtered = signal.sosfiltfilt(sos, x, axis=-1)
+        return x - filtered, dict(harmonics=int(sos.shape[0]), freq_hz=main.freq_hz)
