@@ -48,7 +48,8 @@ def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
     stim = ~np.isnan(rec.stim_phase)
     if lost is None:
         lost = rec.clipped
-    resid = cleaned - neural
+    # lost samples are scored as lost, not as residual: zero them before filtering
+    resid = np.where(lost, 0.0, cleaned - neural)
     noise = rec.spec["neural"]["noise_uv"]
     # keep filter edge effects of block edges out: score inside blocks only
     sb_res = spike_band(resid, fs)

@@ -163,6 +163,28 @@ def _dtft(x: np.ndarray, f_cyc: float, n_centre: float) -> complex:
     return np.dot(x, np.exp(-2j * np.pi * f_cyc * n))
 
 
+def _real_tone_fit(x: np.ndarray, f_cyc: float, n_centre: float) -> tuple[float, np.ndarray]:
+    """Least-squares fit of ``a cos + b sin`` at ``f_cyc``: explained energy and (a, b).
+
+    Unlike the periodogram this accounts for the negative-frequency image,
+    so short or abruptly cut tones are not biased (Kay 1993, sec. 7.10).
+    """
+    n = x.size
+    z = _dtft(x, f_cyc, n_centre)
+    c, s = z.real, -z.imag  # sum x cos, sum x sin
+    # Gram matrix of cos/sin on the centred grid: sums of cos(2 w n) from a Dirichlet kernel
+    w = 2 * np.pi * f_cyc
+    if abs(np.sin(w)) < 1e-12:
+        d = float(n)
+    else:
+        d = np.sin(n * w) / np.sin(w)  # sum over centred n of cos(2 w n)
+    gcc, gss = 0.5 * (n + d), 0.5 * (n - d)
+    if gss <= 1e-9 * n or gcc <= 1e-9 * n:
+        return c * c / max(gcc, 1e-300), np.array([c / max(gcc, 1e-300), 0.0])
+    ab = np.array([c / gcc, s / gss])
+    return c * ab[0] + s * ab[1], ab
+
+
 def estimate_tone(
     x: np.ndarray,
     fs: float,
@@ -175,8 +197,9 @@ def estimate_tone(
 
     The periodogram is searched on a 4x zero-padded FFT grid (within
     ``fmin..fmax``, or +-2% around ``freq_hint``) and its peak refined by a
-    bounded scalar maximisation: the maximum-likelihood estimator for one
-    tone in white noise (Rife & Boorstyn 1974).
+    bounded scalar maximisation of the energy explained by a real tone
+    (cosine and sine at that frequency): the maximum-likelihood estimator for
+    one real tone in white noise (Rife & Boorstyn 1974; Kay 1993).
 
     Parameters
     ----------
@@ -215,15 +238,16 @@ def estimate_tone(
     centre = (n - 1) / 2.0
 
     def neg_power(f_hz: float) -> float:
-        return -abs(_dtft(x, f_hz / fs, centre)) ** 2
+        return -_real_tone_fit(x, f_hz / fs, centre)[0]
 
     res = optimize.minimize_scalar(
         neg_power, bounds=(freqs[k] - df, freqs[k] + df), method="bounded",
         options=dict(xatol=1e-6 * df),
     )
     f_hat = float(res.x)
-    z = _dtft(x, f_hat / fs, centre)
-    return f_hat, float(np.angle(z)), float(2 * abs(z) / n)
+    _, (a, b) = _real_tone_fit(x, f_hat / fs, centre)
+    # a cos(wn) + b sin(wn) = R cos(wn + phi) with phi = atan2(-b, a)
+    return f_hat, float(np.arctan2(-b, a)), float(np.hypot(a, b))
 
 
 # --------------------------------------------------------------------------- block finding

@@ -77,6 +77,15 @@ def _shape(s, g, n_rows, n_bins, k_half, denoise):
     g = _window_sum(g.reshape(n_ch, n_rows, n_bins), k_half)
     with np.errstate(invalid="ignore", divide="ignore"):
         t = np.where(g > 0, s / g, 0.0)
+    holes = g <= 0
+    if holes.any():
+        # bins with no data (phases clipped in every cycle of the window): interpolate
+        # along the cycle so that samples next to a lost stretch read a sensible template
+        idx = np.arange(n_bins)
+        for ch, row in zip(*np.nonzero(holes.any(axis=-1))):
+            ok = ~holes[ch, row]
+            if ok.any():
+                t[ch, row] = np.interp(idx, idx[ok], t[ch, row, ok], period=n_bins)
     if denoise and n_bins >= 16:
         c = np.fft.rfft(t, axis=-1)
         mean_amp = np.abs(c.mean(axis=1))  # (n_ch, n_harm)

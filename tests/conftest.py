@@ -1,0 +1,40 @@
+import numpy as np
+import pytest
+
+from artifactclean.synthetic import ArtifactSpec, NeuralSpec, UnitSpec, simulate_recording
+
+
+def units4(kappa0: float = 0.0):
+    return [
+        UnitSpec(channel=0, rate_hz=15.0, amplitude_uv=100.0, shape="narrow", kappa=kappa0, preferred_phase=1.0),
+        UnitSpec(channel=1, rate_hz=15.0, amplitude_uv=80.0, shape="broad"),
+        UnitSpec(channel=2, rate_hz=15.0, amplitude_uv=120.0, shape="narrow"),
+        UnitSpec(channel=3, rate_hz=15.0, amplitude_uv=90.0, shape="broad"),
+    ]
+
+
+@pytest.fixture(scope="session")
+def rec20():
+    """Acceptance trace: 30 kHz, 20 Hz, 4 mV, harmonics to the 5th, 2% heart, 1% resp, 40 ppm."""
+    return simulate_recording(
+        20.0,
+        artifact=ArtifactSpec(freq_hz=20.0, amplitude_uv=4000.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0),
+        neural=NeuralSpec(units=units4()),
+        seed=11,
+    )
+
+
+@pytest.fixture(scope="session")
+def rec10_dac():
+    """As rec20 with a 1 kHz DAC staircase on a 10 Hz artifact."""
+    return simulate_recording(
+        20.0,
+        artifact=ArtifactSpec(freq_hz=10.0, amplitude_uv=4000.0, dac_rate_hz=1000.0, drift_ppm=40.0),
+        neural=NeuralSpec(units=units4()),
+        seed=12,
+    )
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(1234)

@@ -1,0 +1,83 @@
+import numpy as np
+import pytest
+
+from artifactclean.stimulation import estimate_tone, fit_stimulation, tone_crb
+from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
+
+
+def test_crb_formula_matches_numerical_fisher_information():
+    # Kay 1993, eq. 3.41; check the frequency bound against J^-1 of the 3-parameter real tone
+    a, sigma, n, f, phi = 1.0, 0.5, 200, 0.1, 0.3
+    k = np.arange(n)
+    arg = 2 * np.pi * f * k + phi
+    d = np.stack([np.cos(arg), -a * 2 * np.pi * k * np.sin(arg), -a * np.sin(arg)])  # d/dA, d/df, d/dphi
+    fim = d @ d.T / sigma**2
+    crb = np.sqrt(np.diag(np.linalg.inv(fim)))
+    ours = tone_crb(a, sigma, n)
+    assert ours["freq_hz"] == pytest.approx(crb[1], rel=0.02)
+    assert ours["amplitude"] == pytest.approx(crb[0], rel=0.02)
+
+
+def test_frequency_estimate_reaches_cramer_rao_bound():
+    # ML periodogram estimator vs the bound (Kay 1993; Rife & Boorstyn 1974): SD within 1.5x
+    fs, n, a, sigma, f0 = 1000.0, 2000, 1.0, 1.0, 37.3
+    rng = np.random.default_rng(42)
+    est = []
+    for _ in range(300):
+        phi = rng.uniform(0, 2 * np.pi)
+        x = a * np.cos(2 * np.pi * f0 * np.arange(n) / fs + phi) + sigma * rng.standard_normal(n)
+        est.append(estimate_tone(x, fs, freq_hint=37.0)[0])
+    sd = np.std(est)
+    bound = tone_crb(a, sigma, n, fs)["freq_hz"]
+    assert abs(np.mean(est) - f0) < 3 * bound
+    assert sd < 1.5 * bound
+    assert sd > 0.7 * bound  # a bound, not beaten
+
+
+def test_blocks_kinds_and_edges():
+    blocks = [BlockSpec(1.0, 8.0, ramp_s=1.0), BlockSpec(11.0, 0.0, kind="sham", ramp_s=2.0)]
+    rec = simulate_recording(16.0, artifact=ArtifactSpec(freq_hz=20.0, drift_ppm=-30.0), blocks=blocks, seed=3)
+    m = fit_stimulation(rec.data, rec.fs, stim_freq=20.0)
+    assert [b.kind for b in m.blocks] == ["active", "sham"]
+    for b, t in zip(m.blocks, rec.blocks):
+        assert abs(b.start / rec.fs - t["start_s"]) < 1 / 20.0
+        assert abs(b.stop / rec.fs - t["stop_s"]) < 1 / 20.0
+    assert abs(m.blocks[0].drift_ppm + 30.0) < 3.0
+    # phase of every sample against the truth (fundamental phase; ramps included)
+    ph, tr = m.phase(), rec.stim_phase
+    ok = ~np.isnan(ph) & ~np.isnan(tr)
+    err = np.angle(np.exp(1j * (ph[ok] - tr[ok])))
+    assert np.abs(err).max() < 0.01
+
+
+def test_without_nominal_frequency():
+    rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=13.0), seed=4)
+    m = fit_stimulation(rec.data, rec.fs)
+    assert len(m.blocks) == 1
+    assert abs(m.blocks[0].freq_hz - 13.0 * (1 + 40e-6)) < 1e-3
+
+
+def test_monitor_reference_and_events():
+    rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=10.0), seed=5)
+    monitor = np.nan_to_num(np.cos(rec.stim_phase))
+    m = fit_stimulation(rec.data, rec.fs, stim_freq=10.0, reference=monitor)
+    assert m.reference == "monitor"
+    assert abs(m.blocks[0].freq_hz - 10.0004) < 3e-5  # within 3 ppm
+    # cycle onsets at phase 0 as sync events
+    ph = np.unwrap(rec.stim_phase[~np.isnan(rec.stim_phase)])
+    t0 = np.flatnonzero(~np.isnan(rec.stim_phase))[0] / rec.fs
+    k = np.arange(np.ceil(ph[0] / (2 * np.pi)), ph[-1] / (2 * np.pi))
+    onsets = t0 + (2 * np.pi * k - ph[0]) / (2 * np.pi * 10.0004)
+    me = fit_stimulation(rec.data, rec.fs, events=onsets)
+    assert me.reference == "events"
+    assert abs(me.blocks[0].freq_hz - 10.0004) < 1e-4
+    pe, tr = me.phase(), rec.stim_phase
+    ok = ~np.isnan(pe) & ~np.isnan(tr)
+    assert np.abs(np.angle(np.exp(1j * (pe[ok] - tr[ok])))).max() < 0.02
+
+
+def test_stimulation_free_recording_has_no_blocks():
+    rec = simulate_recording(6.0, artifact=ArtifactSpec(amplitude_uv=0.0), seed=6)
+    m = fit_stimulation(rec.data, rec.fs, stim_freq=20.0)
+    assert m.blocks == []
+    assert np.isnan(m.phase()).all()

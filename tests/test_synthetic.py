@@ -1,0 +1,102 @@
+"""The generator checked against its own parameters."""
+
+import numpy as np
+from scipy import signal
+from scipy.special import i0, i1
+
+from artifactclean.phase_stats import plv
+from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, UnitSpec, simulate_recording
+
+
+def _line(x, fs, f):
+    # amplitude of a line by a Hann-windowed DTFT (coherent gain 0.5)
+    n = np.arange(x.size)
+    w = np.hanning(x.size)
+    return 2 * abs(np.sum(w * x * np.exp(-2j * np.pi * f * n / fs))) / w.sum()
+
+
+def test_harmonics_match_their_relative_amplitudes():
+    spec = ArtifactSpec(freq_hz=20.0, harmonics=((0.1, 0.3), (0.05, 1.0)), heart_depth=0, resp_depth=0,
+                        drift_ppm=0, lsb_uv=None)
+    rec = simulate_recording(6.0, fs=2000.0, n_channels=1, artifact=spec,
+                             blocks=[BlockSpec(0.0, 6.0, ramp_s=0.0)], seed=0)
+    a = rec.artifact[0]
+    a1, a2, a3 = (_line(a, rec.fs, k * 20.0) for k in (1, 2, 3))
+    assert abs(a1 - 4000.0) / 4000.0 < 1e-3
+    assert abs(a2 / a1 - 0.1) < 1e-3
+    assert abs(a3 / a1 - 0.05) < 1e-3
+
+
+def test_respiration_puts_sidebands_at_f_plus_minus_rate():
+    # amplitude modulation by (1 + m cos) gives sidebands of m/2 (textbook AM, e.g. Oppenheim & Willsky 1997)
+    spec = ArtifactSpec(freq_hz=20.0, harmonics=(), heart_depth=0.0, resp_depth=0.1, resp_rate_hz=0.5,
+                        drift_ppm=0, lsb_uv=None)
+    rec = simulate_recording(40.0, fs=1000.0, n_channels=1, artifact=spec,
+                             blocks=[BlockSpec(0.0, 40.0, ramp_s=0.0)], seed=1)
+    f, p = signal.welch(rec.artifact[0], fs=rec.fs, nperseg=20000)
+    carrier = p[np.argmin(abs(f - 20.0))]
+    side = max(p[(f > 20.3) & (f < 20.8)].max(), p[(f > 19.2) & (f < 19.7)].max())
+    between = p[(f > 21.5) & (f < 22.5)].max()
+    assert side > 1e-4 * carrier  # (m/2)^2 = 2.5e-3, smeared by the rate wander
+    assert side > 100 * between
+
+
+def test_heartbeat_sidebands_present():
+    spec = ArtifactSpec(freq_hz=20.0, harmonics=(), heart_depth=0.05, resp_depth=0.0, drift_ppm=0, lsb_uv=None)
+    rec = simulate_recording(40.0, fs=1000.0, n_channels=1, artifact=spec,
+                             blocks=[BlockSpec(0.0, 40.0, ramp_s=0.0)], seed=2)
+    f, p = signal.welch(rec.artifact[0], fs=rec.fs, nperseg=8000)
+    side = p[(f > 21.5) & (f < 22.5)].max()
+    far = p[(f > 27.5) & (f < 28.5)].max()
+    assert side > 30 * far
+
+
+def test_drift_sets_the_true_frequency():
+    spec = ArtifactSpec(freq_hz=10.0, drift_ppm=50.0, harmonics=(), heart_depth=0, resp_depth=0, lsb_uv=None)
+    rec = simulate_recording(20.0, fs=1000.0, n_channels=1, artifact=spec,
+                             blocks=[BlockSpec(0.0, 20.0, ramp_s=0.0)], seed=3)
+    # slope of the unwrapped true phase: 2 pi f (1 + ppm 1e-6)
+    ph = np.unwrap(rec.stim_phase)
+    slope = np.polyfit(np.arange(ph.size) / rec.fs, ph, 1)[0] / (2 * np.pi)
+    assert abs(slope / 10.0 - 1 - 50e-6) < 1e-9
+    # and the data agree: zero-padded periodogram peak (scipy.signal.periodogram)
+    f, p = signal.periodogram(rec.artifact[0], fs=rec.fs, nfft=2**24)
+    assert abs(f[np.argmax(p)] - 10.0005) < 2e-4
+
+
+def test_clipping_mask_and_rails():
+    spec = ArtifactSpec(freq_hz=20.0, clip_uv=3000.0)
+    rec = simulate_recording(3.0, n_channels=2, artifact=spec, seed=4)
+    assert rec.clipped.any()
+    np.testing.assert_array_equal(rec.clipped, np.abs(rec.neural + rec.artifact) >= 3000.0)
+    assert np.abs(rec.data).max() <= 3000.0 + spec.lsb_uv / 2 + 1e-9  # quantised after the rail
+
+
+def test_quantisation_to_lsb():
+    rec = simulate_recording(1.0, n_channels=1, artifact=ArtifactSpec(lsb_uv=0.5), seed=5)
+    np.testing.assert_allclose(rec.data / 0.5, np.round(rec.data / 0.5), atol=1e-9)
+
+
+def test_sham_block_is_ramps_only():
+    rec = simulate_recording(10.0, n_channels=1, artifact=ArtifactSpec(heart_depth=0, resp_depth=0, lsb_uv=None),
+                             blocks=[BlockSpec(2.0, 0.0, kind="sham", ramp_s=2.0)], seed=6)
+    env = np.abs(signal.hilbert(rec.artifact[0]))
+    fs = rec.fs
+    assert rec.blocks[0]["stop_s"] == 6.0
+    assert env[int(4.0 * fs)] > 0.9 * 4000 * 0.85
+    assert env[int(3.0 * fs)] < 0.6 * 4000
+    assert np.all(rec.artifact[0, int(6.01 * fs):] == 0)
+
+
+def test_spikes_refractory_and_locking():
+    kappa = 2.0
+    units = [UnitSpec(channel=0, rate_hz=20.0, kappa=kappa, preferred_phase=2.0, refractory_s=0.003)]
+    rec = simulate_recording(60.0, fs=10000.0, n_channels=1, neural=NeuralSpec(units=units),
+                             blocks=[BlockSpec(0.0, 60.0, ramp_s=0.0)], seed=7)
+    st = rec.spike_times[0]
+    assert np.diff(st).min() >= 0.003
+    assert 15.0 < st.size / 60.0 <= 21.0  # refractoriness lowers the rate a little
+    ph = rec.stim_phase[(st * rec.fs).astype(int)]
+    # mean resultant length of a von Mises: A(kappa) = I1/I0 (Mardia & Jupp 2000, Directional Statistics)
+    assert abs(plv(ph) - i1(kappa) / i0(kappa)) < 0.04
+    assert abs(np.angle(np.mean(np.exp(1j * (ph - 2.0))))) < 0.1

@@ -1,0 +1,105 @@
+"""Template subtraction against the acceptance figures of the spine issue."""
+
+import numpy as np
+import pytest
+from sklearn.base import clone
+
+from artifactclean import TemplateSubtraction, clean
+from artifactclean.evaluation import score_cleaning
+from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
+
+from conftest import units4
+
+
+def _check_acceptance(rec, stim_freq):
+    y = clean(rec.data, rec.fs, stim_freq=stim_freq, method="template")
+    s = score_cleaning(rec, y)
+    assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
+    assert s["recall_ratio"] >= 0.99
+    assert s["sixth_recall_min_over_max"] >= 0.95
+    assert abs(s["delta_ppc"]) <= 2e-4
+    return s
+
+
+def test_acceptance_20hz_modulated_drifting(rec20):
+    s = _check_acceptance(rec20, 20.0)
+    assert max(s["harmonic_residual"]) < 5.0
+
+
+def test_acceptance_10hz_dac_staircase(rec10_dac):
+    _check_acceptance(rec10_dac, 10.0)
+    est = TemplateSubtraction().fit(rec10_dac.data, fs=rec10_dac.fs, stim_freq=10.0)
+    assert est.report_["blocks"][0]["dac_ticks_per_cycle"] == 100
+
+
+@pytest.mark.parametrize("kind", ["off", "sham"])
+def test_no_stimulation_no_change(kind):
+    if kind == "off":
+        rec = simulate_recording(8.0, artifact=ArtifactSpec(amplitude_uv=0.0), seed=21)
+        keep = slice(None)
+    else:
+        rec = simulate_recording(12.0, blocks=[BlockSpec(3.0, 0.0, kind="sham", ramp_s=2.0)], seed=22)
+        keep = np.r_[0:int(2.5 * rec.fs), int(7.5 * rec.fs):rec.n_samples]  # away from the sham's ramps
+    y = clean(rec.data, rec.fs, stim_freq=20.0)
+    noise = rec.spec["neural"]["noise_uv"]
+    assert np.max(np.abs(y[:, keep] - rec.data[:, keep])) <= 0.01 * noise
+
+
+def test_sham_ramps_are_cleaned():
+    rec = simulate_recording(12.0, blocks=[BlockSpec(3.0, 0.0, kind="sham", ramp_s=2.0)], seed=23)
+    est = TemplateSubtraction().fit(rec.data, fs=rec.fs, stim_freq=20.0)
+    assert [b.kind for b in est.stim_model_.blocks] == ["sham"]
+    y = est.transform(rec.data)
+    ramp = slice(int(3.5 * rec.fs), int(6.5 * rec.fs))
+    assert np.std((y - rec.neural)[:, ramp]) < 0.05 * np.std(rec.artifact[:, ramp])
+
+
+def test_input_not_modified_and_shape_kept(rec20):
+    x = rec20.data[:2, : int(5 * rec20.fs)].copy()
+    before = x.copy()
+    y = clean(x, rec20.fs, stim_freq=20.0)
+    np.testing.assert_array_equal(x, before)
+    assert y.shape == x.shape and y.dtype == np.float64
+    y1 = clean(x[0], rec20.fs, stim_freq=20.0)
+    assert y1.shape == x[0].shape
+
+
+def test_clipped_samples_are_blanked_and_reported():
+    rec = simulate_recording(8.0, artifact=ArtifactSpec(clip_uv=3500.0), neural=NeuralSpec(units=units4()), seed=24)
+    est = TemplateSubtraction().fit(rec.data, fs=rec.fs, stim_freq=20.0)
+    y = est.transform(rec.data)
+    assert np.isfinite(y).all()
+    assert est.lost_[rec.clipped].all()  # every clipped sample is reported
+    assert np.all(y[est.lost_] == 0.0)
+    # channels that never clipped are cleaned as usual
+    s = score_cleaning(rec, y, lost=est.lost_)
+    unclipped = [ch for ch in range(4) if not rec.clipped[ch].any()]
+    assert unclipped and max(s["spikeband_residual"][ch] for ch in unclipped) < 0.1
+
+
+def test_sklearn_conventions():
+    est = TemplateSubtraction(n_cycles=10, robust=False)
+    c = clone(est)
+    assert c.get_params() == est.get_params()
+    c.set_params(tracking_hz=2.0)
+    assert c.tracking_hz == 2.0 and est.tracking_hz == 4.0
+    assert not hasattr(c, "artifact_")
+    with pytest.raises(ValueError, match="n_cycles"):
+        TemplateSubtraction(n_cycles=0).fit(np.zeros((1, 3000)), fs=1000.0, stim_freq=10.0)
+    with pytest.raises(ValueError, match="dac"):
+        TemplateSubtraction(dac="maybe").fit(np.zeros((1, 3000)), fs=1000.0, stim_freq=10.0)
+    with pytest.raises(RuntimeError, match="not fitted"):
+        TemplateSubtraction().transform(np.zeros((1, 10)))
+
+
+def test_robust_option_keeps_spikes_out_of_template():
+    units = units4()
+    for u in units:
+        u.amplitude_uv = 400.0
+        u.rate_hz = 40.0
+    rec = simulate_recording(8.0, neural=NeuralSpec(units=units), seed=25)
+    res = {}
+    for robust in (False, True):
+        y = TemplateSubtraction(robust=robust).fit_transform(rec.data, fs=rec.fs, stim_freq=20.0)
+        res[robust] = np.array(score_cleaning(rec, y)["spikeband_residual"])
+    assert np.all(res[True] < 0.6 * res[False]), res
