@@ -163,28 +163,6 @@ def _dtft(x: np.ndarray, f_cyc: float, n_centre: float) -> complex:
     return np.dot(x, np.exp(-2j * np.pi * f_cyc * n))
 
 
-def _real_tone_fit(x: np.ndarray, f_cyc: float, n_centre: float) -> tuple[float, np.ndarray]:
-    """Least-squares fit of ``a cos + b sin`` at ``f_cyc``: explained energy and (a, b).
-
-    Unlike the periodogram this accounts for the negative-frequency image,
-    so short or abruptly cut tones are not biased (Kay 1993, sec. 7.10).
-    """
-    n = x.size
-    z = _dtft(x, f_cyc, n_centre)
-    c, s = z.real, -z.imag  # sum x cos, sum x sin
-    # Gram matrix of cos/sin on the centred grid: sums of cos(2 w n) from a Dirichlet kernel
-    w = 2 * np.pi * f_cyc
-    if abs(np.sin(w)) < 1e-12:
-        d = float(n)
-    else:
-        d = np.sin(n * w) / np.sin(w)  # sum over centred n of cos(2 w n)
-    gcc, gss = 0.5 * (n + d), 0.5 * (n - d)
-    if gss <= 1e-9 * n or gcc <= 1e-9 * n:
-        return c * c / max(gcc, 1e-300), np.array([c / max(gcc, 1e-300), 0.0])
-    ab = np.array([c / gcc, s / gss])
-    return c * ab[0] + s * ab[1], ab
-
-
 def estimate_tone(
     x: np.ndarray,
     fs: float,
@@ -197,9 +175,10 @@ def estimate_tone(
 
     The periodogram is searched on a 4x zero-padded FFT grid (within
     ``fmin..fmax``, or +-2% around ``freq_hint``) and its peak refined by a
-    bounded scalar maximisation of the energy explained by a real tone
-    (cosine and sine at that frequency): the maximum-likelihood estimator for
-    one real tone in white noise (Rife & Boorstyn 1974; Kay 1993).
+    bounded scalar maximisation of the periodogram of the analytic signal
+    (``scipy.signal.hilbert``): the maximum-likelihood estimator of one tone
+    in white noise (Rife & Boorstyn 1974; Kay 1993), free of the bias the
+    negative-frequency image causes for short or ramped tones.
 
     Parameters
     ----------
@@ -237,17 +216,21 @@ def estimate_tone(
     df = fs / nfft
     centre = (n - 1) / 2.0
 
+    # the analytic signal has no negative-frequency image, so neither an abrupt cut nor a
+    # ramped envelope biases the periodogram peak (a real-tone fit with a constant-amplitude
+    # Gram matrix is biased by ramps)
+    xa = signal.hilbert(x)
+
     def neg_power(f_hz: float) -> float:
-        return -_real_tone_fit(x, f_hz / fs, centre)[0]
+        return -abs(_dtft(xa, f_hz / fs, centre)) ** 2
 
     res = optimize.minimize_scalar(
         neg_power, bounds=(freqs[k] - df, freqs[k] + df), method="bounded",
         options=dict(xatol=1e-6 * df),
     )
     f_hat = float(res.x)
-    _, (a, b) = _real_tone_fit(x, f_hat / fs, centre)
-    # a cos(wn) + b sin(wn) = R cos(wn + phi) with phi = atan2(-b, a)
-    return f_hat, float(np.arctan2(-b, a)), float(np.hypot(a, b))
+    z = _dtft(xa, f_hat / fs, centre)
+    return f_hat, float(np.angle(z)), float(abs(z) / n)
 
 
 # --------------------------------------------------------------------------- block finding

@@ -1,0 +1,45 @@
+"""The examples and the command line run as a user would run them."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.mark.parametrize("script", sorted((ROOT / "examples").glob("*.py")), ids=lambda p: p.name)
+def test_example_runs(script, tmp_path):
+    r = subprocess.run([sys.executable, str(script)], cwd=tmp_path, capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.strip()
+
+
+def test_demo_command_writes_table_and_figures(tmp_path):
+    out = tmp_path / "demo"
+    r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "demo", "--out", str(out)],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "spike-band resid/noise" in r.stdout
+    for name in ("traces.png", "spectra.png", "demo_scores.json"):
+        assert (out / name).stat().st_size > 1000
+    scores = json.loads((out / "demo_scores.json").read_text())
+    assert set(scores) >= {"template", "comb"}
+    # the template beats the comb on the demo session at the harmonics
+    assert max(scores["template"]["harmonic_residual"]) < max(scores["comb"]["harmonic_residual"])
+
+
+def test_cli_errors_are_messages_not_tracebacks(tmp_path):
+    r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "demo", "--duration", "5", "--out", str(tmp_path)],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2
+    assert "error: --duration" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_benchmark_prints_ratios():
+    r = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "throughput.py"), "--seconds", "4", "--repeat", "1"],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "throughput / numpy.copyto" in r.stdout and "template" in r.stdout
