@@ -57,11 +57,18 @@ def _group_sums(v: np.ndarray, starts: np.ndarray) -> np.ndarray:
 def _window_sum(a: np.ndarray, k: int) -> np.ndarray:
     """Sum over rows ``c-k .. c+k`` (clamped at the edges) along axis -2."""
     n = a.shape[-2]
-    c = np.cumsum(a, axis=-2)
-    c = np.concatenate([np.zeros_like(c[..., :1, :]), c], axis=-2)
-    hi = np.minimum(np.arange(n) + k + 1, n)
-    lo = np.maximum(np.arange(n) - k, 0)
-    return c[..., hi, :] - c[..., lo, :]
+    c = np.zeros(a.shape[:-2] + (n + 1, a.shape[-1]))
+    np.cumsum(a, axis=-2, out=c[..., 1:, :])
+    if 2 * k + 1 >= n:
+        hi = np.minimum(np.arange(n) + k + 1, n)
+        lo = np.maximum(np.arange(n) - k, 0)
+        return c[..., hi, :] - c[..., lo, :]
+    out = np.empty_like(a, dtype=c.dtype)
+    # interior rows by slicing (cheap); the k rows at each edge are clamped
+    out[..., k:n - k, :] = c[..., 2 * k + 1:, :] - c[..., : n - 2 * k, :]
+    for r in list(range(k)) + list(range(n - k, n)):
+        out[..., r, :] = c[..., min(r + k + 1, n), :] - c[..., max(r - k, 0), :]
+    return out
 
 
 def _shape(s, g, n_rows, n_bins, k_half, denoise):
@@ -266,7 +273,7 @@ class TemplateSubtraction(ArtifactEstimator):
             inside = (n_g >= 0) & (n_g <= n - 1)
             gi = np.clip(np.floor(n_g).astype(np.int64), 0, n - 2)
             ga = np.clip(n_g - gi, 0.0, 1.0)
-            sampler = (gi, ga, inside)
+            sampler = (gi, ga, inside, {})
             # reading back: linear interpolation between bin centres
             pos = u * n_bins - 0.5 - row0 * n_bins
             j0 = np.floor(pos).astype(np.int64)
@@ -320,12 +327,18 @@ class TemplateSubtraction(ArtifactEstimator):
 
     @staticmethod
     def _phase_template(xb, w, gain, sampler, n_rows, n_bins, k_half, denoise):
-        gi, ga, inside = sampler
-        r = (1 - ga) * xb[:, gi] + ga * xb[:, gi + 1]
-        # a bin is usable only if both samples it is read from are
-        wr = w[:, gi] * w[:, gi + 1] * inside
-        gr = gain[:, gi]
-        return _shape(wr * gr * r, wr * gr * gr, n_rows, n_bins, k_half, denoise)
+        gi, ga, inside, cache = sampler
+        if "r" not in cache:
+            # the data resampled on the phase grid do not change between passes
+            cache["r"] = (1 - ga) * xb[:, gi] + ga * xb[:, gi + 1]
+        if cache.get("w") is not w:
+            # a bin is usable only if both samples it is read from are
+            cache["w"] = w
+            cache["wr"] = w[:, gi] * w[:, gi + 1] * inside
+        r, wr = cache["r"], cache["wr"]
+        gr = np.take(gain, gi, axis=1)
+        wgr = wr * gr
+        return _shape(wgr * r, wgr * gr, n_rows, n_bins, k_half, denoise)
 
     def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate):
         num = _group_sums(w * xb * t_n, seg_starts)
