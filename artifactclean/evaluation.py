@@ -20,6 +20,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import signal
 
+from .clipping import mask_runs
 from .phase_stats import ppc
 from .spikes import detect_spikes, match_spikes, spike_band
 
@@ -103,9 +104,8 @@ def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
 
 
 def _longest_run(mask: np.ndarray) -> slice:
-    d = np.diff(np.concatenate(([0], mask.astype(np.int8), [0])))
-    a, b = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
-    if a.size == 0:
+    runs = mask_runs(mask)
+    if not runs:
         return slice(0, 0)
-    k = int(np.argmax(b - a))
-    return slice(int(a[k]), int(b[k]))
+    a, b = max(runs, key=lambda r: r[1] - r[0])
+    return slice(a, b)

@@ -26,6 +26,8 @@ from typing import Sequence
 import numpy as np
 from scipy import optimize, signal
 
+from .clipping import mask_runs
+
 __all__ = [
     "StimBlock",
     "StimulationModel",
@@ -257,11 +259,6 @@ def _envelope(x: np.ndarray, fs: float, f: float, n_cycles: int = 4) -> np.ndarr
     return 2 * np.abs(signal.fftconvolve(z, kernel, mode="same"))
 
 
-def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    d = np.diff(np.concatenate(([0], mask.astype(np.int8), [0])))
-    return list(zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1)))
-
-
 def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float) -> tuple[float, float, float, float]:
     """Start, plateau start, plateau stop and stop (decimated samples) of one envelope segment.
 
@@ -305,7 +302,7 @@ def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, m
     on = env > threshold * bg
     # bridge short dropouts (a few cycles) inside one block
     gap = int(round(2 * fs_ds / f))
-    runs = _runs(on)
+    runs = mask_runs(on)
     merged: list[list[int]] = []
     for a, b in runs:
         if merged and a - merged[-1][1] <= gap:

@@ -211,5 +211,4 @@ def _fit_model(x, fs, stim_freq, stim_reference, lost) -> StimulationModel:
             raise ValueError(f"stim_reference has {ref.size} samples, data has {x.shape[1]}")
         if not np.all(np.isfinite(ref)):
             raise ValueError("stim_reference holds NaN or inf samples")
-    # lost samples (already zeroed) would bias nothing much, but rails add harmonics
     return fit_stimulation(x, fs, stim_freq=stim_freq, reference=ref)

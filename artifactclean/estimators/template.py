@@ -235,9 +235,9 @@ class TemplateSubtraction(ArtifactEstimator):
         f = blk.freq_hz
         k_half = self._window(f)
         grid = None
+        # the strongest channel shows the DAC steps best
+        ref = int(np.argmax(np.std(xb, axis=1)))
         if self.dac == "auto":
-            # the plateau of the strongest channel shows the steps best
-            ref = int(np.argmax(np.std(xb, axis=1)))
             p0 = max(0, blk.ramp_up_stop - offset)
             p1 = min(n, blk.ramp_down_start - offset)
             if p1 - p0 < 10 * fs / f:
@@ -251,7 +251,6 @@ class TemplateSubtraction(ArtifactEstimator):
             delta = 0.25 * n_bins * f / fs
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
-            ref = int(np.argmax(np.std(xb, axis=1)))
         else:
             n_bins = max(4, int(round(fs / f)))
             key = np.floor(u * n_bins).astype(np.int64)
