@@ -1,0 +1,40 @@
+"""Compiled kernels give the numbers of their numpy twins."""
+
+import numpy as np
+import pytest
+
+from artifactclean import TemplateSubtraction
+from artifactclean.estimators import _kernels as K
+
+pytestmark = pytest.mark.skipif(not K.HAVE_NUMBA, reason="numba not installed")
+
+
+def test_kernels_match_numpy(rng):
+    x = rng.standard_normal((3, 5000))
+    w = (rng.uniform(size=x.shape) > 0.1).astype(float)
+    gain = 1 + 0.1 * rng.standard_normal(x.shape)
+    gi = np.sort(rng.integers(0, x.shape[1] - 1, 4000))
+    ga = rng.uniform(size=gi.size)
+    inside = rng.uniform(size=gi.size) > 0.05
+    for a, b in zip(K.phase_sums(x, w, gain, gi, ga, inside), K.phase_sums_np(x, w, gain, gi, ga, inside)):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12)
+    key = np.sort(rng.integers(0, 700, x.shape[1]))
+    for a, b in zip(K.tick_sums(x, w, gain, key, 700), K.tick_sums_np(x, w, gain, key, 700)):
+        np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-10)
+    t = rng.standard_normal((3, 800))
+    j0 = rng.integers(0, 799, x.shape[1])
+    al = rng.uniform(size=j0.size)
+    np.testing.assert_allclose(K.interp_eval(t, j0, j0 + 1, al), K.interp_eval_np(t, j0, j0 + 1, al), rtol=1e-12)
+    starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
+    for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
+        np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])
+def test_estimator_same_with_and_without_compiled_loops(fixture, request):
+    rec = request.getfixturevalue(fixture)
+    x = rec.data[:, : int(8 * rec.fs)]
+    f = rec.blocks[0]["nominal_freq_hz"]
+    a = TemplateSubtraction(compiled=True).fit_transform(x, fs=rec.fs, stim_freq=f)
+    b = TemplateSubtraction(compiled=False).fit_transform(x, fs=rec.fs, stim_freq=f)
+    np.testing.assert_allclose(a, b, rtol=0, atol=1e-6 * np.abs(x).max())
