@@ -1,11 +1,41 @@
-"""Command line: ``artifactclean demo``."""
+"""Command line: ``artifactclean demo | survey | clean``.
+
+Errors are one line on stderr naming the problem and the way out, with a
+non-zero exit code; ``--debug`` shows the traceback instead.
+"""
 
 from __future__ import annotations
 
 import argparse
+import json
+import shlex
 import sys
+import time
+from pathlib import Path
 
 from ._version import __version__
+
+
+class _Bar:
+    """A progress line on stderr, redrawn at most a few times a second."""
+
+    def __init__(self, enabled: bool):
+        self.enabled = enabled
+        self._last = 0.0
+        self._stage = None
+
+    def __call__(self, done: int, total: int, stage: str) -> None:
+        if not self.enabled:
+            return
+        now = time.monotonic()
+        if stage == self._stage and done < total and now - self._last < 0.25:
+            return
+        self._last, self._stage = now, stage
+        frac = done / max(total, 1)
+        bar = "#" * int(30 * frac)
+        end = "\n" if done >= total else ""
+        sys.stderr.write(f"\r{stage:<9} [{bar:<30}] {100 * frac:5.1f}%{end}")
+        sys.stderr.flush()
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -16,11 +46,163 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"artifactclean {__version__}")
     p.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
     sub = p.add_subparsers(dest="command", required=True)
+
     d = sub.add_parser("demo", help="clean a built-in synthetic session with every method and score it")
     d.add_argument("--out", default="demo-out", help="directory for figures and scores (default: demo-out)")
     d.add_argument("--seed", type=int, default=7, help="seed of the synthetic session")
     d.add_argument("--duration", type=float, default=30.0, help="session length in seconds (>= 30)")
+
+    def add_input(sp):
+        sp.add_argument("input", help="recording: a file or folder neo can read (Open Ephys, BrainVision, ...)")
+        sp.add_argument("--format", help="neo rawio format name (e.g. OpenEphysBinary, BrainVision); guessed if omitted")
+        sp.add_argument("--stream", help="signal stream by name, id or index (default: the first)")
+        sp.add_argument("--channels", help="comma-separated channel names or indices (default: all but the monitor)")
+        sp.add_argument("--stim-freq", type=float, help="nominal stimulation frequency in Hz (refined from the data)")
+        sp.add_argument("--stim-channel", help="stimulator monitor channel (name or index) to take the phase from")
+        sp.add_argument("--profile", help="rig profile (TOML) saved by `survey --save-profile`")
+        sp.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    s = sub.add_parser("survey", help="what to know before cleaning: blocks, frequency, drift, artifact, clipping")
+    add_input(s)
+    s.add_argument("--json", action="store_true", help="print a JSON object instead of a table")
+    s.add_argument("--plot", metavar="PNG", help="save a figure of the blocks and per-channel artifact")
+    s.add_argument("--save-profile", metavar="TOML", help="save a rig profile for later `clean` runs")
+    s.add_argument("--force", action="store_true", help="overwrite an existing profile or figure")
+
+    c = sub.add_parser("clean", help="clean a recording into .dat/.bin (int16 + JSON sidecar) or .nix")
+    add_input(c)
+    c.add_argument("-o", "--output", required=True, help="output path; the suffix (.dat, .bin, .nix) sets the type")
+    c.add_argument("--method", help="cleaning method (default: template)")
+    c.add_argument("--force", action="store_true", help="overwrite an existing output")
+    c.add_argument("--gain-uv", type=float, help="int16 step in uV for .dat/.bin (default: the input's own)")
+    c.add_argument("--chunk-seconds", type=float, default=10.0, help="seconds read at a time (default 10)")
     return p
+
+
+def _profile_settings(args) -> dict:
+    if not getattr(args, "profile", None):
+        return {}
+    from .io.profile import load_profile
+
+    return load_profile(args.profile)
+
+
+def _open(args, prof: dict):
+    from .io.reader import NeoRecording
+
+    rp = prof.get("recording", {})
+    fmt = args.format or rp.get("format")
+    stream = args.stream if args.stream is not None else rp.get("stream")
+    rec = NeoRecording(args.input, format=fmt, stream=stream)
+    chans = args.channels.split(",") if args.channels else rp.get("channels")
+    channels = [rec.channel_index(c.strip() if isinstance(c, str) else c) for c in chans] if chans else None
+    mon_name = args.stim_channel or rp.get("monitor_channel")
+    monitor = None
+    if mon_name:
+        try:
+            monitor = (rec, rec.channel_index(mon_name))
+        except ValueError:
+            # Open Ephys puts ADC channels in their own stream: look there
+            for i in range(len(rec._r.header["signal_streams"])):
+                other = NeoRecording(args.input, format=fmt, stream=i)
+                if mon_name in other.channel_names:
+                    monitor = (other, other.channel_index(mon_name))
+                    break
+            else:
+                raise
+    sp = prof.get("stimulation", {})
+    stim_freq = args.stim_freq if args.stim_freq is not None else sp.get("nominal_freq_hz")
+    return rec, channels, monitor, stim_freq
+
+
+def _survey(args) -> int:
+    from .io.pipeline import survey_recording
+
+    prof = _profile_settings(args)
+    rec, channels, monitor, stim_freq = _open(args, prof)
+    for path in (args.save_profile, args.plot):
+        if path and Path(path).exists() and not args.force:
+            raise ValueError(f"{path} exists; pass --force to overwrite")
+    res = survey_recording(rec, channels=channels, stim_freq=stim_freq, monitor=monitor,
+                           progress=_Bar(not (args.quiet or args.json) and sys.stderr.isatty()))
+    res["format"] = rec.format
+    res["stream"] = rec.stream_name
+    if args.json:
+        print(json.dumps(res, indent=2, default=str))
+    else:
+        _print_survey(res)
+    if args.plot:
+        from .plotting import plot_survey
+
+        plot_survey(Path(args.plot), res)
+        if not args.json:
+            print(f"figure written to {args.plot}")
+    if args.save_profile:
+        from .io.profile import save_profile
+
+        st = res["stimulation"]
+        freqs = [b["freq_hz"] for b in st["blocks"] if b["kind"] != "off"]
+        save_profile(args.save_profile, dict(
+            recording=dict(format=rec.format, stream=rec.stream_name, channels=[c["name"] for c in res["channels"]],
+                           monitor_channel=args.stim_channel or prof.get("recording", {}).get("monitor_channel")),
+            stimulation=dict(nominal_freq_hz=stim_freq if stim_freq is not None else st["frequency_hz"],
+                             frequencies_hz=freqs,
+                             blocks=[[b["start_s"], b["stop_s"], b["kind"]] for b in st["blocks"]],
+                             events=[[e["time_s"], e["duration_s"], e["label"]] for e in res["events"]]),
+            cleaning=dict(method=prof.get("cleaning", {}).get("method", "template"),
+                          params=prof.get("cleaning", {}).get("params", {})),
+        ), force=args.force)
+        if not args.json:
+            print(f"rig profile written to {args.save_profile}")
+    return 0
+
+
+def _print_survey(res: dict) -> None:
+    st = res["stimulation"]
+    print(f"{res['input']}  ({res['format']}, stream {res['stream']!r})")
+    print(f"{len(res['channels'])} channels at {res['sampling_rate_hz']:g} Hz, {res['duration_s']:.2f} s")
+    f = st["frequency_hz"]
+    print(f"stimulation: {'none found' if f is None else f'{f:.6f} Hz (main block)'}; phase from {st['reference']}")
+    print(f"\n{'kind':<7} {'start s':>9} {'stop s':>9} {'ramp up s':>10} {'ramp down s':>12} {'freq Hz':>12} {'drift ppm':>10} {'amplitude uV':>13}")
+    for b in st["blocks"]:
+        if b["kind"] == "off":
+            print(f"{'off':<7} {b['start_s']:>9.3f} {b['stop_s']:>9.3f}")
+        else:
+            drift = "" if b["drift_ppm"] is None else f"{b['drift_ppm']:+.1f}"
+            print(f"{b['kind']:<7} {b['start_s']:>9.3f} {b['stop_s']:>9.3f} {b['ramp_up_s']:>10.2f} {b['ramp_down_s']:>12.2f} "
+                  f"{b['freq_hz']:>12.6f} {drift:>10} {b['amplitude']:>13.0f}")
+    print(f"\n{'channel':<12} {'artifact uV':>12} {'SD uV':>10} {'clipped %':>10}  recommended")
+    for c in res["channels"]:
+        print(f"{c['name']:<12} {c['artifact_amplitude_uv']:>12.1f} {c['sd_uv']:>10.1f} {100 * c['clipped_fraction']:>10.3f}  "
+              f"{c['recommended_method']} {c['note']}")
+    if res["events"]:
+        print(f"\n{len(res['events'])} event(s) in the file, first: {res['events'][0]}")
+
+
+def _clean(args) -> int:
+    from .io.pipeline import clean_recording
+
+    prof = _profile_settings(args)
+    rec, channels, monitor, stim_freq = _open(args, prof)
+    cp = prof.get("cleaning", {})
+    method = args.method or cp.get("method", "template")
+    params = cp.get("params", {}) if method == cp.get("method", method) else {}
+    out = clean_recording(rec, args.output, channels=channels, method=method, params=params, stim_freq=stim_freq,
+                          monitor=monitor, force=args.force, gain_uv=args.gain_uv, chunk_s=args.chunk_seconds,
+                          progress=_Bar(not args.quiet and sys.stderr.isatty()),
+                          command="artifactclean " + " ".join(shlex.quote(a) for a in sys.argv[1:]))
+    st = out["stimulation"]
+    n_blocks = sum(1 for b in st["blocks"] if b["kind"] != "off")
+    freq = "none found" if st["frequency_hz"] is None else f"{st['frequency_hz']:.6f} Hz"
+    print(f"cleaned {n_blocks} stimulation block(s) ({freq}) with {method!r}")
+    for p in out["written"]:
+        print(f"wrote {p}")
+    if out["clipped_stretches"]:
+        print(f"{len(out['clipped_stretches'])} clipped stretch(es) blanked and listed in the output")
+    if out["saturated"]:
+        print(f"warning: {out['saturated']} samples exceeded int16 at {out['gain_uv']} uV/bit and were clamped; "
+              "pass a larger --gain-uv", file=sys.stderr)
+    return 0
 
 
 def main(argv=None) -> int:
@@ -32,9 +214,14 @@ def main(argv=None) -> int:
             if args.duration < 30:
                 raise ValueError("--duration must be at least 30 s (the demo session has three blocks)")
             run_demo(args.out, seed=args.seed, duration_s=args.duration)
-        return 0
+            return 0
+        if args.command == "survey":
+            return _survey(args)
+        if args.command == "clean":
+            return _clean(args)
+        return 2
     except KeyboardInterrupt:
-        print("artifactclean: interrupted", file=sys.stderr)
+        print("artifactclean: interrupted; no output was left behind", file=sys.stderr)
         return 130
     except (ValueError, TypeError, OSError) as exc:
         if args.debug:

@@ -9,13 +9,32 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["find_clipped", "mask_runs"]
+__all__ = ["find_clipped", "find_rails", "mask_runs"]
+
+
+def find_rails(data: np.ndarray, *, min_run: int = 2) -> tuple[np.ndarray, np.ndarray]:
+    """Per-channel rails: the maximum (minimum) where that exact value recurs in a run.
+
+    A continuous signal plus noise practically never repeats its extreme
+    value on consecutive samples; an amplifier at saturation does. Channels
+    without a rail get +inf (-inf).
+    """
+    x = np.atleast_2d(data)
+    hi = np.full(x.shape[0], np.inf)
+    lo = np.full(x.shape[0], -np.inf)
+    for ch in range(x.shape[0]):
+        row = x[ch]
+        for rail, out in ((row.max(), hi), (row.min(), lo)):
+            at = row == rail
+            if at.sum() >= min_run and any(b - a >= min_run for a, b in mask_runs(at)):
+                out[ch] = rail
+    return hi, lo
 
 
 def find_clipped(
     data: np.ndarray,
     *,
-    clip_level: float | None = None,
+    clip_level=None,
     min_run: int = 2,
     dilate: int = 1,
 ) -> np.ndarray:
@@ -24,12 +43,10 @@ def find_clipped(
     Parameters
     ----------
     data : ndarray, shape (n_channels, n_samples)
-    clip_level : float, optional
+    clip_level : float or (ndarray, ndarray), optional
         Known rail (same unit as ``data``): samples with ``|x| >= clip_level``
-        are clipped. Without it, a channel counts as clipped at its maximum
-        (minimum) when that exact value recurs in runs of at least
-        ``min_run`` consecutive samples, which a continuous signal plus noise
-        practically never does.
+        are clipped; or per-channel ``(upper, lower)`` rails. Without it the
+        rails come from :func:`find_rails`.
     min_run : int
         Shortest run of identical extreme values taken as a rail.
     dilate : int
@@ -41,26 +58,20 @@ def find_clipped(
     ndarray of bool, same shape as ``data``
     """
     x = np.atleast_2d(data)
-    mask = np.zeros(x.shape, dtype=bool)
-    for ch in range(x.shape[0]):
-        row = x[ch]
-        if clip_level is not None:
-            m = np.abs(row) >= clip_level
-        else:
-            m = np.zeros(row.size, dtype=bool)
-            for rail in (row.max(), row.min()):
-                at = row == rail
-                if at.sum() >= min_run:
-                    # runs of identical values at the extreme: a rail, not a peak
-                    runs = [(a, b) for a, b in mask_runs(at) if b - a >= min_run]
-                    if runs:
-                        m |= at
-        if dilate and m.any():
+    if clip_level is None:
+        hi, lo = find_rails(x, min_run=min_run)
+    elif np.ndim(clip_level) == 0:
+        hi = np.full(x.shape[0], float(clip_level))
+        lo = -hi
+    else:
+        hi, lo = (np.asarray(v, dtype=float).reshape(-1) for v in clip_level)
+    mask = (x >= hi[:, None]) | (x <= lo[:, None])
+    if dilate and mask.any():
+        for ch in np.flatnonzero(mask.any(axis=1)):
+            m = mask[ch]
             c = np.cumsum(np.concatenate(([0], m.astype(np.int32))))
-            lo = np.clip(np.arange(row.size) - dilate, 0, row.size)
-            hi = np.clip(np.arange(row.size) + dilate + 1, 0, row.size)
-            m = (c[hi] - c[lo]) > 0
-        mask[ch] = m
+            idx = np.arange(m.size)
+            mask[ch] = (c[np.clip(idx + dilate + 1, 0, m.size)] - c[np.clip(idx - dilate, 0, m.size)]) > 0
     return mask.reshape(np.shape(data))
 
 

@@ -59,3 +59,39 @@ def plot_spectra(path: Path, fs: float, raw: np.ndarray, cleaned: dict, truth: n
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return path
+
+
+def plot_survey(path: Path, survey: dict) -> Path:
+    """Blocks on a time line (amplitude per block) and the artifact amplitude per channel."""
+    plt = _plt()
+    fig, (ax0, ax1) = plt.subplots(2, 1, figsize=(9, 5.5))
+    colours = {"active": "tab:red", "sham": "tab:orange"}
+    for b in survey["stimulation"]["blocks"]:
+        if b["kind"] == "off":
+            continue
+        t = [b["start_s"], b["start_s"] + b["ramp_up_s"], b["stop_s"] - b["ramp_down_s"], b["stop_s"]]
+        a = [0, b["amplitude"], b["amplitude"], 0]
+        ax0.fill_between(t, a, color=colours.get(b["kind"], "0.5"), alpha=0.5, label=b["kind"])
+        ax0.text(0.5 * (t[0] + t[-1]), b["amplitude"] * 1.02, f"{b['freq_hz']:.4f} Hz", ha="center", fontsize=8)
+    for e in survey.get("events", []):
+        ax0.axvline(e["time_s"], color="k", lw=0.6, ls=":")
+    ax0.set_xlim(0, survey["duration_s"])
+    ax0.set_xlabel("time (s)")
+    ax0.set_ylabel("artifact amplitude (uV)")
+    handles, labels = ax0.get_legend_handles_labels()
+    if handles:
+        uniq = dict(zip(labels, handles))
+        ax0.legend(uniq.values(), uniq.keys(), fontsize=8)
+    ax0.set_title("stimulation blocks (dotted: events in the file)")
+    names = [c["name"] for c in survey["channels"]]
+    amps = [c["artifact_amplitude_uv"] for c in survey["channels"]]
+    clipped = [c["clipped_fraction"] > 0 for c in survey["channels"]]
+    ax1.bar(range(len(names)), amps, color=["tab:red" if c else "tab:blue" for c in clipped])
+    ax1.set_xticks(range(len(names)))
+    ax1.set_xticklabels(names, rotation=90 if len(names) > 16 else 0, fontsize=7 if len(names) > 16 else 9)
+    ax1.set_ylabel("artifact (uV, fundamental)")
+    ax1.set_title("per channel (red: clipped samples found)")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path

@@ -29,6 +29,9 @@ from scipy import optimize, signal
 from .clipping import mask_runs
 
 __all__ = [
+    "decimate_reader",
+    "decimated_rate",
+    "fit_decimated",
     "StimBlock",
     "StimulationModel",
     "estimate_tone",
@@ -127,6 +130,18 @@ class StimulationModel:
         if t < self.n_samples:
             rows.append(dict(kind="off", start=t, stop=self.n_samples, start_s=t / self.fs, stop_s=self.n_samples / self.fs))
         return rows
+
+    def window(self, start: int, stop: int) -> "StimulationModel":
+        """The model seen by samples ``start..stop`` (indices shifted to start at 0)."""
+        blocks = []
+        for b in self.blocks:
+            if b.stop <= start or b.start >= stop:
+                continue
+            blocks.append(StimBlock(
+                b.kind, max(b.start, start) - start, min(b.stop, stop) - start,
+                int(np.clip(b.ramp_up_stop, start, stop)) - start, int(np.clip(b.ramp_down_start, start, stop)) - start,
+                b.freq_hz, b.phase_ref, b.ref_sample - start, b.amplitude, b.drift_ppm))
+        return StimulationModel(self.fs, stop - start, blocks, self.nominal_freq_hz, self.reference)
 
     def to_dict(self) -> dict:
         main = self.main_block
@@ -239,11 +254,33 @@ def estimate_tone(
 
 
 def _decimate(x: np.ndarray, fs: float, target_fs: float) -> tuple[np.ndarray, float]:
+    return decimate_reader(lambda a, b: x[a:b], x.size, fs, target_fs)
+
+
+def decimate_reader(read, n: int, fs: float, target_fs: float, chunk: int = 2**20) -> tuple[np.ndarray, float]:
+    """Decimate a signal read piece by piece: ``read(a, b)`` returns samples ``a..b``.
+
+    Polyphase FIR (``scipy.signal.resample_poly``, linear phase, so envelopes
+    and phases keep their timing) applied to overlapping pieces whose
+    overlaps exceed the filter's half length; arrays and files go through
+    this same routine, so both give the same decimated reference.
+    """
     q = int(fs // target_fs)
     if q <= 1:
-        return x, fs
-    # polyphase FIR: linear phase, so envelopes and phases keep their timing
-    return signal.resample_poly(x, 1, q, padtype="line"), fs / q
+        return np.asarray(read(0, n), dtype=np.float64), fs
+    half = 10 * q  # resample_poly's default filter reaches 10 q input samples each side
+    pad = -(-2 * half // q) * q
+    step = max(q, (chunk // q) * q)
+    out = []
+    for a in range(0, n, step):
+        b = min(n, a + step)
+        lo, hi = max(0, a - pad), min(n, b + pad)
+        seg = np.asarray(read(lo, hi), dtype=np.float64)
+        y = signal.resample_poly(seg, 1, q, padtype="line")
+        k0 = (a - lo) // q
+        k1 = k0 + -(-(b - a) // q)
+        out.append(y[k0:k1])
+    return np.concatenate(out), fs / q
 
 
 def _envelope(x: np.ndarray, fs: float, f: float, n_cycles: int = 4) -> np.ndarray:
@@ -379,8 +416,35 @@ def fit_stimulation(
         ref = np.asarray(data[ch], dtype=np.float64)
         source = f"data channel {ch}"
 
+    x_ds, fs_ds = _decimate(ref - np.mean(ref), fs, decimated_rate(stim_freq, fmax))
+    return fit_decimated(x_ds, fs_ds, fs, n, stim_freq=stim_freq, source=source,
+                         threshold=threshold, min_cycles=min_cycles, fmax=fmax)
+
+
+def decimated_rate(stim_freq: float | None, fmax: float = 200.0) -> float:
+    """Rate the reference is decimated to before the search: 16 times the top frequency, >= 200 Hz."""
     f_top = stim_freq * 1.02 if stim_freq else fmax
-    x_ds, fs_ds = _decimate(ref - np.mean(ref), fs, max(16 * f_top, 200.0))
+    return max(16 * f_top, 200.0)
+
+
+def fit_decimated(
+    x_ds: np.ndarray,
+    fs_ds: float,
+    fs: float,
+    n: int,
+    *,
+    stim_freq: float | None = None,
+    source: str = "data",
+    threshold: float = 10.0,
+    min_cycles: float = 8.0,
+    fmax: float = 200.0,
+) -> StimulationModel:
+    """:func:`fit_stimulation` on a reference already decimated to ``fs_ds``.
+
+    File readers stream the reference through the same decimation chunk by
+    chunk and call this, so a file gives the same model as its array.
+    ``n`` and ``fs`` are the full-rate length and sampling rate.
+    """
     if stim_freq is None:
         if x_ds.size / fs_ds * 0.5 < 1:
             raise ValueError("recording too short to find a stimulation frequency")

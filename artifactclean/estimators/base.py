@@ -106,7 +106,7 @@ class ArtifactEstimator(BaseEstimator):
         stim_model: StimulationModel | None = None,
         stim_freq: float | None = None,
         stim_reference=None,
-        clip_level: float | None = None,
+        clip_level=None,
         nan_policy: str = "raise",
     ):
         """Learn the artifact of recording ``X``.
@@ -124,8 +124,9 @@ class ArtifactEstimator(BaseEstimator):
             Nominal stimulation frequency (Hz).
         stim_reference : array_like, optional
             Recorded stimulator monitor signal, shape (n_samples,).
-        clip_level : float, optional
-            Amplifier rail in the unit of ``X``; found from the data if None.
+        clip_level : float or (ndarray, ndarray), optional
+            Amplifier rail in the unit of ``X`` (symmetric), or per-channel
+            ``(upper, lower)`` rails; found from the data if None.
         nan_policy : {"raise", "blank"}
 
         Returns
@@ -176,6 +177,15 @@ class ArtifactEstimator(BaseEstimator):
     def context_seconds(self, freq_hz: float) -> float:
         """Context (s) an output sample needs on each side at ``freq_hz`` stimulation."""
         return self.context_cycles / freq_hz
+
+    def work_ranges(self, model: StimulationModel, fs: float) -> list:
+        """Sample ranges ``(start, stop, block)`` the estimator cleans independently.
+
+        The default is the whole recording as one range (block None); an
+        estimator that touches only stimulation blocks returns one range
+        per block, which lets files be cleaned block by block.
+        """
+        return [(0, model.n_samples, None)]
 
     # subclasses ----------------------------------------------------------
     _method_name = "base"

@@ -235,18 +235,29 @@ class TemplateSubtraction(ArtifactEstimator):
             return int(self.n_cycles)
         return int(max(30, round(1.5 * freq)))
 
-    def _estimate(self, x, fs, model, lost):
-        n_ch, n = x.shape
-        art = np.zeros_like(x)
+    def work_ranges(self, model, fs: float) -> list[tuple[int, int]]:
+        """Sample ranges cleaned independently: each block plus its margins.
+
+        Stimulation-free stretches between them are left untouched, so a
+        file can be cleaned range by range with the same result as a whole
+        array.
+        """
         blocks = sorted(model.blocks, key=lambda b: b.start)
-        report = dict(blocks=[])
+        n = model.n_samples
+        out = []
         for i, b in enumerate(blocks):
             margin = int(round(self.margin_cycles * fs / b.freq_hz))
             lo_lim = 0 if i == 0 else (blocks[i - 1].stop + b.start) // 2
             hi_lim = n if i == len(blocks) - 1 else (b.stop + blocks[i + 1].start) // 2
             s, e = max(lo_lim, b.start - margin), min(hi_lim, b.stop + margin)
-            if e - s < 4:
-                continue
+            if e - s >= 4:
+                out.append((s, e, b))
+        return out
+
+    def _estimate(self, x, fs, model, lost):
+        art = np.zeros_like(x)
+        report = dict(blocks=[])
+        for s, e, b in self.work_ranges(model, fs):
             u = model.cycles(b, s, e)
             a, info = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
             art[:, s:e] = a

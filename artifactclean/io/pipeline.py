@@ -1,0 +1,382 @@
+"""Files in, files out: survey a recording, clean it chunk by chunk, write it with provenance.
+
+The recording is read three times, never whole:
+
+1. a scan (all channels, in chunks): per-channel mean and spread, and the
+   amplifier rails (the extreme value when it recurs on consecutive samples);
+2. the reference (the monitor channel, or the channel with the largest
+   spread) streamed through the same decimation as
+   :func:`artifactclean.fit_stimulation`, which gives the stimulation model;
+3. the cleaning pass: each range an estimator cleans independently (a block
+   and its margins for the template) is read, cleaned and written; the
+   stretches between are copied. Ranges longer than ``max_range_s`` are
+   cleaned in pieces with the estimator's declared context on each side.
+
+For recordings whose blocks fit in one range the output equals
+``artifactclean.clean`` on the same samples.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+
+from .._version import __version__
+from ..clipping import find_clipped, mask_runs
+from ..estimators import DEFAULT_METHOD, make_estimator
+from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
+from .reader import NeoRecording, Recording
+from .writers import open_writer, output_paths
+
+__all__ = ["Scan", "scan_recording", "fit_recording_stimulation", "clean_recording", "survey_recording",
+           "input_files", "check_output"]
+
+Progress = Callable[[int, int, str], None]
+
+
+@dataclass
+class Scan:
+    """What one pass over all channels tells: level, spread and rails per channel."""
+
+    mean: np.ndarray
+    std: np.ndarray
+    rail_hi: np.ndarray
+    rail_lo: np.ndarray
+    n_at_rails: np.ndarray
+    n_samples: int
+
+    @property
+    def rails(self) -> tuple[np.ndarray, np.ndarray]:
+        return self.rail_hi, self.rail_lo
+
+
+def _chunks(start: int, stop: int, size: int):
+    for a in range(start, stop, size):
+        yield a, min(stop, a + size)
+
+
+def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int = 2**20,
+                   progress: Progress | None = None) -> Scan:
+    """One pass over ``channels`` of ``rec``: mean, SD and amplifier rails per channel.
+
+    A rail is the channel's maximum (minimum) over the whole recording when
+    that exact value occurs on two consecutive samples, the rule of
+    :func:`artifactclean.clipping.find_rails`.
+    """
+    k = len(channels)
+    s1, s2 = np.zeros(k), np.zeros(k)
+    hi, lo = np.full(k, -np.inf), np.full(k, np.inf)
+    hi_run, lo_run = np.zeros(k, bool), np.zeros(k, bool)
+    n_hi, n_lo = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    n = rec.n_samples
+    for a, b in _chunks(0, n, chunk):
+        x = rec.read(a, b, channels)
+        s1 += x.sum(axis=1)
+        s2 += np.einsum("ij,ij->i", x, x)
+        for vals, best, run, cnt, sign in ((x.max(axis=1), hi, hi_run, n_hi, 1), (x.min(axis=1), lo, lo_run, n_lo, -1)):
+            for ch in range(k):
+                v = vals[ch]
+                if sign * (v - best[ch]) > 0:
+                    best[ch], run[ch], cnt[ch] = v, False, 0
+                if v == best[ch]:
+                    at = x[ch] == v
+                    cnt[ch] += int(at.sum())
+                    run[ch] |= bool(np.any(at[1:] & at[:-1]))
+        if progress:
+            progress(b, n, "scanning")
+    mean = s1 / n
+    std = np.sqrt(np.maximum(s2 / n - mean**2, 0.0))
+    rail_hi = np.where(hi_run, hi, np.inf)
+    rail_lo = np.where(lo_run, lo, -np.inf)
+    n_at = np.where(hi_run, n_hi, 0) + np.where(lo_run, n_lo, 0)
+    return Scan(mean, std, rail_hi, rail_lo, n_at, n)
+
+
+def fit_recording_stimulation(rec: Recording, channels: Sequence[int], scan: Scan, *,
+                              stim_freq: float | None = None, monitor: tuple[Recording, int] | None = None,
+                              fmax: float = 200.0) -> StimulationModel:
+    """Stimulation model of a recording, streamed through the same decimation as arrays."""
+    if stim_freq is not None and stim_freq >= rec.fs / 2:
+        raise ValueError(f"stim_freq {stim_freq} Hz is at or above the Nyquist frequency {rec.fs / 2} Hz")
+    if monitor is not None:
+        mrec, mch = monitor
+        if mrec.n_samples != rec.n_samples or mrec.fs != rec.fs:
+            raise ValueError(f"monitor channel has {mrec.n_samples} samples at {mrec.fs} Hz; "
+                             f"the data have {rec.n_samples} at {rec.fs} Hz")
+        # the monitor's mean from one extra pass keeps the decimation identical to the array path
+        tot = 0.0
+        for a, b in _chunks(0, mrec.n_samples, 2**20):
+            tot += float(mrec.read(a, b, [mch])[0].sum())
+        mean = tot / mrec.n_samples
+        read = lambda a, b: mrec.read(a, b, [mch])[0] - mean  # noqa: E731
+        source = "monitor"
+    else:
+        ref = int(np.argmax(scan.std))
+        mean = scan.mean[ref]
+        read = lambda a, b: rec.read(a, b, [channels[ref]])[0] - mean  # noqa: E731
+        source = f"data channel {ref}"
+    x_ds, fs_ds = decimate_reader(read, rec.n_samples, rec.fs, decimated_rate(stim_freq, fmax))
+    return fit_decimated(x_ds, fs_ds, rec.fs, rec.n_samples, stim_freq=stim_freq, source=source, fmax=fmax)
+
+
+def input_files(path: Path) -> list[Path]:
+    """The files a recording at ``path`` consists of (a directory's files, or same-stem siblings)."""
+    path = Path(path).resolve()
+    if path.is_dir():
+        return [p for p in path.rglob("*") if p.is_file()]
+    return sorted(p for p in path.parent.glob(path.stem + ".*") if p.is_file()) or [path]
+
+
+def check_output(output: Path, source: Path | None, force: bool) -> list[Path]:
+    """Refuse outputs that would overwrite without ``force``, land in a missing folder or in the input."""
+    output = Path(output)
+    paths = output_paths(output)
+    parent = output.resolve().parent
+    if not parent.is_dir():
+        raise ValueError(f"output folder {parent} does not exist; create it first")
+    if source is not None:
+        src = Path(source).resolve()
+        inside = src.is_dir() and (parent == src or src in parent.parents)
+        if inside or any(p.resolve() in set(input_files(src)) for p in paths):
+            raise ValueError(f"{output} would write into the input {source}; choose another place")
+    existing = [p for p in paths if p.exists()]
+    if existing and not force:
+        raise ValueError(f"{', '.join(map(str, existing))} already exist{'s' if len(existing) == 1 else ''}; "
+                         "pass --force to overwrite")
+    return paths
+
+
+def _checksum(path: Path) -> dict:
+    files = input_files(path)
+    root = Path(path).resolve()
+    root = root if root.is_dir() else root.parent
+    h = hashlib.sha256()
+    size = 0
+    for f in sorted(files):
+        h.update(str(f.relative_to(root)).encode())
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
+                size += len(block)
+    return dict(path=str(Path(path).resolve()), size_bytes=size, sha256=h.hexdigest(), files=len(files))
+
+
+def clean_recording(
+    rec: Recording,
+    output,
+    *,
+    channels: Sequence[int] | None = None,
+    method: str = DEFAULT_METHOD,
+    params: dict | None = None,
+    stim_freq: float | None = None,
+    monitor: tuple[Recording, int] | None = None,
+    force: bool = False,
+    gain_uv: float | None = None,
+    chunk_s: float = 10.0,
+    max_range_s: float = 30.0,
+    progress: Progress | None = None,
+    command: str | None = None,
+) -> dict:
+    """Clean a recording into ``output`` (``.dat``/``.bin`` or ``.nix``).
+
+    Parameters
+    ----------
+    rec : Recording
+    output : path
+    channels : sequence of int, optional
+        Channel indices to clean and write (default: all but the monitor).
+    method, params
+        Estimator name and parameters.
+    stim_freq : float, optional
+    monitor : (Recording, int), optional
+        Recording and index of the stimulator monitor channel.
+    force : bool
+        Overwrite an existing output.
+    gain_uv : float, optional
+        int16 step for ``.dat`` (default: the file's own gain when it is
+        stored as integers, else 0.195 uV).
+    chunk_s, max_range_s : float
+        Copy chunk, and the longest range cleaned in one piece, in seconds
+        for 4 channels (scaled down for more channels, so memory stays
+        bounded by the piece, not the recording). Longer blocks are cleaned
+        in pieces with the estimator's context on each side; near piece
+        edges the result then differs slightly from cleaning the whole
+        array at once.
+    progress : callable(done, total, stage), optional
+
+    Returns
+    -------
+    dict
+        Summary: written paths, stimulation model, clipped stretches,
+        saturated samples.
+    """
+    source = Path(rec.path) if isinstance(rec, NeoRecording) else None
+    check_output(Path(output), source, force)
+    if channels is None:
+        channels = [i for i in range(rec.n_channels) if monitor is None or monitor[0] is not rec or i != monitor[1]]
+    channels = list(channels)
+    if not channels:
+        raise ValueError("no channels to clean")
+    est = make_estimator(method, **(params or {}))
+    est._validate_params()
+    chunk = max(1, int(chunk_s * rec.fs))
+    scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
+    model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
+    names = [rec.channel_names[i] for i in channels]
+    if gain_uv is None:
+        gain_uv = 0.195
+        if isinstance(rec, NeoRecording) and np.issubdtype(rec.raw_dtype, np.integer):
+            g = rec.gains[channels] * rec._to_uv[channels]
+            if np.allclose(g, g[0]) and g[0] > 0:
+                gain_uv = float(g[0])
+    rails = scan.rails
+    n = rec.n_samples
+    stretches: list[dict] = []
+    reports = []
+    writer = open_writer(output, rec.fs, names, n, gain_uv=gain_uv) if Path(output).suffix.lower() != ".nix" \
+        else open_writer(output, rec.fs, names, n)
+    fs = rec.fs
+    with writer:
+        def emit(y, lost, a):
+            writer.write(y)
+            for ch in np.flatnonzero(lost.any(axis=1)):
+                for s0, s1 in mask_runs(lost[ch]):
+                    stretches.append(dict(channel=names[ch], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
+            if progress:
+                progress(a + y.shape[1], n, "cleaning")
+
+        def copy(a0, b0):
+            for a, b in _chunks(a0, b0, chunk):
+                x = rec.read(a, b, channels)
+                lost = find_clipped(x, clip_level=rails)
+                x[lost] = 0.0
+                emit(x, lost, a)
+
+        pos = 0
+        max_len = max(int(max_range_s * fs * 4 / len(channels)), chunk)
+        for s, e, blk in est.work_ranges(model, fs):
+            copy(pos, s)
+            f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
+            ctx = int(np.ceil(est.context_seconds(f_ctx) * fs))
+            if e - s <= max_len:
+                pieces, ctx = [(s, e)], 0
+            else:
+                # every piece but the last reads max_len samples (core plus context), whatever
+                # the block's length, so memory follows max_len and not the recording
+                ctx = min(ctx, max_len // 4)
+                pieces, a = [], s
+                while a < e:
+                    lo_ = max(s, a - ctx)
+                    b = min(e, lo_ + max_len - ctx)
+                    pieces.append((a, b))
+                    a = b
+            for a, b in pieces:
+                lo_, hi_ = max(s, a - ctx), min(e, b + ctx)
+                x = rec.read(lo_, hi_, channels)
+                est.fit(x, fs=fs, stim_model=model.window(lo_, hi_), clip_level=rails)
+                y = est.transform(x)[:, a - lo_: b - lo_].copy()
+                lost = est.lost_[:, a - lo_: b - lo_].copy()
+                reports.append(est.report_)
+                # the fitted arrays are a piece long: drop them before the next piece is read
+                del x, est.artifact_, est.lost_
+                emit(y, lost, a)
+                del y, lost
+                _release_memory()
+            pos = e
+        copy(pos, n)
+        meta = dict(
+            provenance=dict(
+                artifactclean_version=__version__,
+                method=method,
+                params=est.get_params(),
+                estimator_report=reports,
+                stimulation=model.to_dict(),
+                input=_checksum(source) if source is not None else dict(path=rec.source),
+                channels=names,
+                created_utc=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+                command=command,
+            ),
+            clipped_stretches=_merge(stretches),
+        )
+        written = writer.close(meta)
+    return dict(written=[str(p) for p in written], stimulation=model.to_dict(),
+                clipped_stretches=meta["clipped_stretches"], saturated=getattr(writer, "saturated", 0),
+                gain_uv=gain_uv if Path(output).suffix.lower() != ".nix" else None)
+
+
+def _release_memory() -> None:
+    """Hand freed heap memory back to the system between pieces (glibc), so peak memory
+    follows the piece size rather than how many pieces came before."""
+    global _TRIM
+    if _TRIM is None:
+        try:
+            import ctypes
+
+            _TRIM = ctypes.CDLL("libc.so.6").malloc_trim
+        except (OSError, AttributeError):
+            _TRIM = False
+    if _TRIM:
+        _TRIM(0)
+
+
+_TRIM = None
+
+
+def _merge(stretches: list[dict]) -> list[dict]:
+    """Join stretches of one channel that touch across chunk edges."""
+    out: list[dict] = []
+    last: dict = {}
+    for s in sorted(stretches, key=lambda d: (d["channel"], d["start_s"])):
+        prev = last.get(s["channel"])
+        if prev is not None and s["start_s"] <= prev["stop_s"] + 1e-12:
+            prev["stop_s"] = max(prev["stop_s"], s["stop_s"])
+        else:
+            d = dict(s)
+            out.append(d)
+            last[s["channel"]] = d
+    return out
+
+
+def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, stim_freq: float | None = None,
+                     monitor: tuple[Recording, int] | None = None, progress: Progress | None = None) -> dict:
+    """What to know before cleaning: blocks, refined frequencies, drift, per-channel artifact and clipping."""
+    if channels is None:
+        channels = [i for i in range(rec.n_channels) if monitor is None or monitor[0] is not rec or i != monitor[1]]
+    channels = list(channels)
+    scan = scan_recording(rec, channels, progress=progress)
+    model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
+    main = model.main_block
+    amps = np.full(len(channels), np.nan)
+    if main is not None:
+        # amplitude of the fundamental per channel over up to 2 s in the middle of the main plateau
+        mid = (main.ramp_up_stop + main.ramp_down_start) // 2
+        half = int(min(1.0 * rec.fs, max(1, (main.ramp_down_start - main.ramp_up_stop) // 2)))
+        a, b = max(main.start, mid - half), min(main.stop, mid + half)
+        x = rec.read(a, b, channels)
+        u = model.cycles(main, a, b)
+        amps = 2 * np.abs((x - x.mean(axis=1, keepdims=True)) @ np.exp(-2j * np.pi * u)) / max(b - a, 1)
+    frac = scan.n_at_rails / max(scan.n_samples, 1)
+    chans = []
+    for k, ch in enumerate(channels):
+        rec_method = "template"
+        note = "" if frac[k] == 0 else f"{100 * frac[k]:.2f}% of samples clipped: reported and blanked"
+        chans.append(dict(name=rec.channel_names[ch], index=int(ch), artifact_amplitude_uv=float(amps[k]),
+                          sd_uv=float(scan.std[k]), clipped_fraction=float(frac[k]),
+                          recommended_method=rec_method, note=note))
+    events = [dict(time_s=e.time_s, duration_s=e.duration_s, label=e.label, channel=e.channel)
+              for e in getattr(rec, "events", [])]
+    return dict(
+        input=rec.source,
+        sampling_rate_hz=rec.fs,
+        n_samples=rec.n_samples,
+        duration_s=rec.n_samples / rec.fs,
+        stimulation=dict(frequency_hz=None if main is None else main.freq_hz,
+                         nominal_freq_hz=stim_freq, reference=model.reference, blocks=model.block_table()),
+        channels=chans,
+        events=events,
+    )

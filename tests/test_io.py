@@ -1,0 +1,205 @@
+"""Files in and out: Open Ephys binary and BrainVision built from scratch, run as a user would."""
+
+import hashlib
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import artifactclean as ac
+from artifactclean.demo_files import write_brainvision, write_openephys_binary
+from artifactclean.io import NeoRecording, open_recording
+from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
+
+from conftest import units4
+
+
+def cli(*args, check=True):
+    r = subprocess.run([sys.executable, "-m", "artifactclean.cli", *map(str, args)], capture_output=True, text=True,
+                       timeout=600)
+    if check:
+        assert r.returncode == 0, r.stderr
+    return r
+
+
+def tree_hash(path: Path) -> str:
+    h = hashlib.sha256()
+    for p in sorted(Path(path).rglob("*")) if Path(path).is_dir() else [Path(path)]:
+        if p.is_file():
+            h.update(str(p).encode())
+            h.update(p.read_bytes())
+    return h.hexdigest()
+
+
+@pytest.fixture(scope="module")
+def oe(tmp_path_factory):
+    rec = simulate_recording(
+        24.0,
+        artifact=ArtifactSpec(freq_hz=20.0, drift_ppm=15.0),
+        neural=NeuralSpec(units=units4()),
+        blocks=[BlockSpec(2.0, 18.0, ramp_s=1.5)],
+        seed=41,
+    )
+    root = write_openephys_binary(tmp_path_factory.mktemp("oe") / "session", rec.data, rec.fs,
+                                  ttl_times_s=[2.0, 20.0])
+    return rec, root
+
+
+def test_reader_reads_lazily_in_microvolts(oe):
+    rec, root = oe
+    r = open_recording(root)
+    assert r.format == "OpenEphysBinary" and r.n_channels == 4 and r.fs == rec.fs
+    part = r.read(1000, 1010, [2])
+    # int16 codes of 0.195 uV: the file holds the data to half a step
+    np.testing.assert_allclose(part[0], rec.data[2, 1000:1010], atol=0.0976)
+    assert r.events and abs(r.events[0].time_s - 2.0) < 1e-6
+    with pytest.raises(ValueError, match="channels are: CH1, CH2, CH3, CH4"):
+        r.channel_index("CH9")
+    with pytest.raises(ValueError, match="streams are"):
+        NeoRecording(root, stream="nope")
+
+
+def test_survey_json_finds_frequency_and_blocks(oe):
+    rec, root = oe
+    out = json.loads(cli("survey", root, "--json").stdout)
+    truth = rec.blocks[0]
+    f = out["stimulation"]["frequency_hz"]
+    assert abs(f / truth["freq_hz"] - 1) * 1e6 < 5.0  # within 5 ppm of the true (drifted) frequency
+    active = [b for b in out["stimulation"]["blocks"] if b["kind"] == "active"]
+    assert len(active) == 1
+    assert abs(active[0]["start_s"] - truth["start_s"]) < 1 / 20.0
+    assert abs(active[0]["stop_s"] - truth["stop_s"]) < 1 / 20.0
+    assert len(out["channels"]) == 4 and out["channels"][0]["artifact_amplitude_uv"] > 1000
+
+
+def test_clean_to_dat_matches_clean_and_protects_files(oe, tmp_path):
+    rec, root = oe
+    before = tree_hash(root)
+    out = tmp_path / "clean.dat"
+    cli("clean", root, "-o", out, "--stim-freq", "20")
+    side = json.loads(out.with_suffix(".json").read_text())
+    y = np.fromfile(out, dtype="<i2").reshape(-1, side["n_channels"]).T * side["gain_uv_per_bit"] + side["offset_uv"]
+    x = open_recording(root).read()
+    ref = ac.clean(x, side["sampling_rate_hz"], stim_freq=20.0)
+    assert np.abs(y - ref).max() <= side["gain_uv_per_bit"]  # within one LSB
+    assert side["channel_names"] == ["CH1", "CH2", "CH3", "CH4"] and side["saturated_samples"] == 0
+    prov = side["provenance"]
+    assert prov["method"] == "template" and prov["artifactclean_version"] == ac.__version__
+    assert len(prov["input"]["sha256"]) == 64 and prov["stimulation"]["frequency_hz"] > 19.9
+    again = cli("clean", root, "-o", out, "--stim-freq", "20", check=False)
+    assert again.returncode == 2 and "--force" in again.stderr and "Traceback" not in again.stderr
+    cli("clean", root, "-o", out, "--stim-freq", "20", "--force")
+    assert tree_hash(root) == before
+    assert not list(tmp_path.glob(".*partial*"))
+
+
+def test_clean_to_nix_roundtrips_with_neo(tmp_path):
+    from neo.io import NixIO
+
+    rec = simulate_recording(12.0, n_channels=2, artifact=ArtifactSpec(clip_uv=3500.0), seed=42)
+    root = write_openephys_binary(tmp_path / "s", rec.data, rec.fs)
+    out = tmp_path / "clean.nix"
+    cli("clean", root, "-o", out, "--stim-freq", "20")
+    io = NixIO(str(out), mode="ro")
+    try:
+        block = io.read_block()
+    finally:
+        io.close()
+    sig = block.segments[0].analogsignals[0]
+    assert str(sig.units.dimensionality) in ("uV", "µV")
+    y = sig.magnitude.T
+    x = open_recording(root).read()
+    ref = ac.clean(x, rec.fs, stim_freq=20.0)
+    assert np.abs(y - ref).max() < 0.5
+    prov = json.loads(block.annotations["provenance"])
+    assert prov["method"] == "template"
+    epochs = block.segments[0].epochs
+    assert epochs and epochs[0].name == "clipped" and len(epochs[0]) > 0
+
+
+def test_brainvision_survey_and_clean(tmp_path):
+    fs = 25000.0
+    rec = simulate_recording(12.0, fs=fs, n_channels=3, artifact=ArtifactSpec(freq_hz=10.0), seed=43)
+    vhdr = write_brainvision(tmp_path / "bv.vhdr", rec.data, fs, markers=[("Stimulus", "S  1", 1.2)])
+    r = open_recording(vhdr)
+    assert r.format == "BrainVision" and r.fs == fs
+    assert any(e.label.strip() == "S  1" for e in r.events)
+    out = json.loads(cli("survey", vhdr, "--json", "--stim-freq", "10").stdout)
+    assert abs(out["stimulation"]["frequency_hz"] / rec.blocks[0]["freq_hz"] - 1) < 5e-6
+    cli("clean", vhdr, "-o", tmp_path / "bv_clean.bin", "--stim-freq", "10")
+    side = json.loads((tmp_path / "bv_clean.json").read_text())
+    assert side["n_samples"] == rec.n_samples
+
+
+def test_profile_roundtrip_sets_up_clean(oe, tmp_path):
+    rec, root = oe
+    prof = tmp_path / "rig.toml"
+    cli("survey", root, "--stim-freq", "20", "--channels", "CH1,CH3", "--save-profile", prof)
+    text = prof.read_text()
+    assert 'format = "OpenEphysBinary"' in text and 'channels = ["CH1", "CH3"]' in text
+    cli("clean", root, "-o", tmp_path / "p.dat", "--profile", prof)
+    side = json.loads((tmp_path / "p.json").read_text())
+    assert side["channel_names"] == ["CH1", "CH3"]
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[cleaning]\nmethod = 'template'\nwindow = 3\n")
+    r = cli("clean", root, "-o", tmp_path / "q.dat", "--profile", bad, check=False)
+    assert r.returncode == 2 and "unknown key" in r.stderr
+
+
+@pytest.mark.parametrize("where, message", [("inside", "write into the input"), ("missing", "does not exist"),
+                                            ("suffix", "unknown output type")])
+def test_bad_outputs_are_refused(oe, tmp_path, where, message):
+    rec, root = oe
+    target = {"inside": Path(root) / "out.dat", "missing": tmp_path / "no" / "out.dat",
+              "suffix": tmp_path / "out.xyz"}[where]
+    r = cli("clean", root, "-o", target, check=False)
+    assert r.returncode == 2 and message in r.stderr
+    assert not target.exists()
+
+
+def test_unreadable_and_unknown_inputs(tmp_path):
+    junk = tmp_path / "junk.vhdr"
+    junk.write_text("not a header")
+    r = cli("survey", junk, check=False)
+    assert r.returncode == 2 and "cannot read" in r.stderr
+    r = cli("survey", tmp_path / "nothing.oebin", check=False)
+    assert r.returncode == 2 and "no such file" in r.stderr
+    r = cli("survey", tmp_path, "--format", "Nonsense", check=False)
+    assert r.returncode == 2 and "unknown format" in r.stderr
+
+
+def test_progress_bar_draws_on_stderr(capsys):
+    from artifactclean.cli import _Bar
+
+    bar = _Bar(True)
+    bar(50, 100, "cleaning")
+    bar(100, 100, "cleaning")
+    err = capsys.readouterr().err
+    assert "cleaning" in err and "100.0%" in err
+
+
+# peak resident memory of this process image: VmHWM (ru_maxrss would include the forking parent's)
+_RSS = """
+import sys
+from artifactclean.io import open_recording, clean_recording
+clean_recording(open_recording(sys.argv[1]), sys.argv[2], stim_freq=20.0, force=True)
+print([l.split()[1] for l in open('/proc/self/status') if l.startswith('VmHWM')][0])
+"""
+
+
+def test_memory_bounded_by_piece_not_length(tmp_path):
+    rss = {}
+    for k in (1, 4):
+        dur = 40.0 * k
+        rec = simulate_recording(dur, artifact=ArtifactSpec(freq_hz=20.0), neural=NeuralSpec(units=[]),
+                                 blocks=[BlockSpec(1.0, dur - 2.0, ramp_s=1.0)], seed=44)
+        root = write_openephys_binary(tmp_path / f"len{k}", rec.data, rec.fs)
+        del rec
+        r = subprocess.run([sys.executable, "-c", _RSS, str(root), str(tmp_path / f"out{k}.dat")],
+                           capture_output=True, text=True, timeout=600)
+        assert r.returncode == 0, r.stderr
+        rss[k] = int(r.stdout.strip().splitlines()[-1])
+    assert rss[4] < 1.10 * rss[1], rss
