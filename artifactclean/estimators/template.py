@@ -111,12 +111,14 @@ def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
             ok = ~holes[ch, row]
             if ok.any():
                 t[ch, row] = np.interp(idx, idx[ok], t[ch, row, ok], period=n_bins)
+    # an alternating-current artifact has no mean over its cycle; a template mean would be
+    # the slow LFP of the window, so it is removed (a stimulation DC offset stays in the data)
+    t -= t.mean(axis=-1, keepdims=True)
     if denoise and n_bins >= 16:
         c = np.fft.rfft(t, axis=-1)
         mean_amp = np.abs(c.mean(axis=1))  # (n_ch, n_harm)
         floor = np.median(mean_amp[:, 1:], axis=1, keepdims=True)
         keep = mean_amp > _KEEP * floor
-        keep[:, 0] = True
         c *= keep[:, None, :]
         t = np.fft.irfft(c, n=n_bins, axis=-1)
     return t.reshape(n_ch, -1)
