@@ -191,9 +191,10 @@ print([l.split()[1] for l in open('/proc/self/status') if l.startswith('VmHWM')]
 
 
 def test_memory_bounded_by_piece_not_length(tmp_path):
+    # 70 s and 280 s single-block files: both longer than one piece (45 s for 4 channels)
     rss = {}
     for k in (1, 4):
-        dur = 40.0 * k
+        dur = 70.0 * k
         rec = simulate_recording(dur, artifact=ArtifactSpec(freq_hz=20.0), neural=NeuralSpec(units=[]),
                                  blocks=[BlockSpec(1.0, dur - 2.0, ramp_s=1.0)], seed=44)
         root = write_openephys_binary(tmp_path / f"len{k}", rec.data, rec.fs)

@@ -178,7 +178,7 @@ def clean_recording(
     force: bool = False,
     gain_uv: float | None = None,
     chunk_s: float = 10.0,
-    max_range_s: float = 30.0,
+    max_range_s: float = 45.0,
     progress: Progress | None = None,
     command: str | None = None,
 ) -> dict:
