@@ -79,7 +79,8 @@ class ArtifactEstimator(BaseEstimator):
     """Base class: learn the stimulation artifact of a recording and subtract it.
 
     Subclasses implement ``_estimate(x, fs, model, lost)`` returning the
-    artifact array and a dict describing what they chose, and
+    artifact array, a dict describing what they chose and, optionally, a
+    mask of further samples they cannot clean (reported as lost), and
     ``context_cycles`` (how many stimulation cycles of context an output
     sample needs on each side, for chunked processing).
 
@@ -143,7 +144,11 @@ class ArtifactEstimator(BaseEstimator):
             stim_model = _fit_model(x, fs, stim_freq, stim_reference, lost)
         elif stim_model.n_samples != x.shape[1]:
             raise ValueError(f"stim_model covers {stim_model.n_samples} samples, data has {x.shape[1]}")
-        artifact, report = self._estimate(x, fs, stim_model, lost)
+        result = self._estimate(x, fs, stim_model, lost)
+        artifact, report = result[:2]
+        if len(result) > 2 and result[2] is not None:
+            # samples the estimator found it cannot clean (e.g. phases clipped nearby)
+            lost |= result[2]
         self.stim_model_ = stim_model
         self.artifact_ = artifact
         self.lost_ = lost

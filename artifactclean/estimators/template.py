@@ -101,8 +101,11 @@ def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
     s = _group_window(s.reshape(n_ch, n_rows, n_bins), n_rows, stride, k_groups)
     g = _group_window(g.reshape(n_ch, n_rows, n_bins), n_rows, stride, k_groups)
     with np.errstate(invalid="ignore", divide="ignore"):
-        t = np.where(g > 0, s / g, 0.0)
-    holes = g <= 0
+        t = np.where(g > 0, s / np.where(g > 0, g, 1.0), 0.0)
+    # a bin whose window holds almost no artifact energy (only cycles of near-zero gain, e.g.
+    # margins, because the rest were clipped there) gives a ratio of noise to nothing: a hole
+    typical = np.array([np.median(gc[gc > 0]) if np.any(gc > 0) else 0.0 for gc in g.reshape(n_ch, -1)])
+    holes = g <= 0.05 * typical[:, None, None]
     if holes.any():
         # bins with no data (phases clipped in every cycle of the window): interpolate
         # along the cycle so that samples next to a lost stretch read a sensible template
@@ -112,15 +115,21 @@ def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
             if ok.any():
                 t[ch, row] = np.interp(idx, idx[ok], t[ch, row, ok], period=n_bins)
     # an alternating-current artifact has no mean over its cycle; a template mean would be
-    # the slow LFP of the window, so it is removed (a stimulation DC offset stays in the data)
-    t -= t.mean(axis=-1, keepdims=True)
+    # the slow LFP of the window, so it is removed (a stimulation DC offset stays in the data).
+    # Templates with empty bins keep theirs: the mean of a gap-filled cycle is not the artifact's.
+    whole_rows = ~holes.any(axis=-1, keepdims=True)
+    t -= np.where(whole_rows, t.mean(axis=-1, keepdims=True), 0.0)
     if denoise and n_bins >= 16:
         c = np.fft.rfft(t, axis=-1)
-        mean_amp = np.abs(c.mean(axis=1))  # (n_ch, n_harm)
+        whole = whole_rows[..., 0]  # (n_ch, n_groups)
+        mean_amp = np.abs(np.where(whole[..., None], c, 0).sum(axis=1)) / np.maximum(whole.sum(axis=1), 1)[:, None]
         floor = np.median(mean_amp[:, 1:], axis=1, keepdims=True)
         keep = mean_amp > _KEEP * floor
         c *= keep[:, None, :]
-        t = np.fft.irfft(c, n=n_bins, axis=-1)
+        smooth = np.fft.irfft(c, n=n_bins, axis=-1)
+        # templates with empty bins (phases lost in every cycle of the window) keep their raw
+        # values: a truncated harmonic series would ring from the filled gap over the whole cycle
+        t = np.where(whole_rows, smooth, t)
     return t.reshape(n_ch, -1)
 
 
@@ -258,13 +267,16 @@ class TemplateSubtraction(ArtifactEstimator):
 
     def _estimate(self, x, fs, model, lost):
         art = np.zeros_like(x)
+        extra = np.zeros(x.shape, dtype=bool)
         report = dict(blocks=[])
         for s, e, b in self.work_ranges(model, fs):
             u = model.cycles(b, s, e)
-            a, info = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
+            a, info, cen = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
             art[:, s:e] = a
+            if cen is not None:
+                extra[:, s:e] |= cen
             report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))
-        return art, report
+        return art, report, extra
 
     # ------------------------------------------------------------------ one block
     def _block(self, xb, wb, u, fs, blk, offset):
@@ -324,6 +336,10 @@ class TemplateSubtraction(ArtifactEstimator):
         seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
         seg_u = (seg[seg_starts] + 0.5) / per_cycle
 
+        censored = None
+        if np.any(wb == 0):
+            censored = self._censored(wb, sampler, key, reader if sampler is not None else None,
+                                      n_rows, n_bins, stride, k_groups, n_groups)
         gain = np.ones((n_ch, n))
         w = wb
         n_out = 0
@@ -353,8 +369,36 @@ class TemplateSubtraction(ArtifactEstimator):
             dac_concentration=None if grid is None else grid.concentration,
             gain_segments_per_cycle=per_cycle if self.track_amplitude else 0,
             outliers_left_out=int(n_out),
+            censored_samples=0 if censored is None else int(censored.sum() - (wb == 0).sum()),
         )
-        return gain * t_n, info
+        return gain * t_n, info, censored
+
+    def _censored(self, wb, sampler, key, reader, n_rows, n_bins, stride, k_groups, n_groups):
+        """Samples whose template comes from phases clipped in some cycle of the window.
+
+        Clipping cuts off the largest samples of a phase; the cycles that remain
+        there are the ones that stayed below the rail, so their average is
+        biased. Such samples cannot be cleaned reliably and are reported as
+        lost, like the clipped ones.
+        """
+        n_ch, n = wb.shape
+        if sampler is None:
+            ones = np.ones_like(wb)
+            counts, _ = tick_sums(1.0 - wb, ones, ones, key, n_rows * n_bins, compiled=self.compiled)
+        else:
+            gi, _, inside = sampler
+            counts = (1.0 - wb[:, gi] * wb[:, gi + 1]) * inside
+        bad = (_group_window(counts.reshape(n_ch, n_rows, n_bins), n_rows, stride, k_groups) > 0)
+        bad = bad.astype(np.float64).reshape(n_ch, -1)
+        half = np.full(n, 0.5)
+        if sampler is None:
+            row, b = np.divmod(key, n_bins)
+            i0, i1, _ = _group_position(row + (b + 0.5) / n_bins, stride, n_groups)
+            cen = grouped_eval(bad, n_bins, i0, i1, half, b, b, half, compiled=self.compiled) > 0
+        else:
+            i0, i1, _, b0, b1, _ = reader
+            cen = grouped_eval(bad, n_bins, i0, i1, half, b0, b1, half, compiled=self.compiled) > 0
+        return cen | (wb == 0)
 
     def _read_ticks(self, tmpl, key, n_bins, stride, n_groups):
         """Template at DAC tick keys, interpolated between group centres."""
@@ -375,12 +419,16 @@ class TemplateSubtraction(ArtifactEstimator):
         num, den, full = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
         g = np.zeros_like(num)
         for ch in range(g.shape[0]):
-            # a segment mostly left out (outliers, clipping) takes its gain from its neighbours
-            ok = den[ch] > 0.5 * full[ch]
+            # a segment with too little usable template energy (outliers, clipping) takes its
+            # gain from its neighbours; clipping removes the peaks of every cycle, so usable
+            # energy is judged against the typical segment, not against the segment's own total
+            ok = den[ch] > 0.1 * max(float(np.median(full[ch])), 1e-300)
             if ok.sum() >= 2:
                 g[ch] = np.interp(seg_u, seg_u[ok], num[ch, ok] / den[ch, ok])
             elif ok.any():
                 g[ch] = (num[ch, ok] / den[ch, ok]).mean()
+            else:
+                g[ch] = 1.0
         if seg_rate / 2 > self.tracking_hz and g.shape[1] > 12:
             sos = signal.butter(2, self.tracking_hz, fs=seg_rate, output="sos")
             g = signal.sosfiltfilt(sos, g, axis=1, padlen=min(g.shape[1] - 1, 3 * int(seg_rate / self.tracking_hz)))
