@@ -65,10 +65,12 @@ def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
             spread = np.convolve(lost[ch].astype(float), np.ones(int(4e-3 * fs) + 1), mode="same") > 0
             ok &= ~spread
         out["spikeband_residual"].append(float(np.sqrt(np.mean(sb_res[ch, ok] ** 2)) / noise) if ok.any() else np.nan)
-        if f0 is not None and ok.sum() > 4 * fs:
+        seg = _longest_run(stim)
+        if f0 is not None and seg.stop - seg.start > 4 * fs:
             bands = [(k * f0 - 1.0, k * f0 + 1.0) for k in range(1, int(300 // f0) + 1)]
-            seg = _longest_run(ok)
-            out["harmonic_residual"].append(_band_power(resid[ch, seg], fs, bands) / _band_power(neural[ch, seg], fs, bands))
+            # lost samples count as zero in both, so a blanked stretch is neither residual nor signal
+            ref = _band_power(np.where(lost[ch, seg], 0.0, neural[ch, seg]), fs, bands)
+            out["harmonic_residual"].append(_band_power(resid[ch, seg], fs, bands) / ref if ref > 0 else np.nan)
         else:
             out["harmonic_residual"].append(np.nan)
     # spikes: detect on each unit's channel in the cleaned and the artifact-free trace

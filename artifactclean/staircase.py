@@ -72,7 +72,7 @@ def find_dac_grid(
     freq: float,
     *,
     min_rate_hz: float = 200.0,
-    z_threshold: float = 6.0,
+    z_threshold: float = 4.5,
     min_concentration: float = 0.85,
     max_steps: int = 2000,
 ) -> DacGrid | None:

@@ -118,6 +118,16 @@ def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
     # the slow LFP of the window, so it is removed (a stimulation DC offset stays in the data).
     # Templates with empty bins keep theirs: the mean of a gap-filled cycle is not the artifact's.
     whole_rows = ~holes.any(axis=-1, keepdims=True)
+    # one amplitude for every template of the block (the gain carries the amplitude): each
+    # template is scaled to the block-average shape over its own usable bins, so gains fitted
+    # against different templates agree and the template/gain alternation settles fast
+    valid = ~holes
+    ref = np.where(valid, t, 0.0).sum(axis=1) / np.maximum(valid.sum(axis=1), 1)  # (n_ch, n_bins)
+    num = np.einsum("cgb,cb->cg", np.where(valid, t, 0.0), ref)
+    den = np.einsum("cgb,cb->cg", valid.astype(np.float64), ref * ref)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where((den > 0) & (num > 0), num / np.where(den > 0, den, 1.0), 1.0)
+    t /= scale[..., None]
     t -= np.where(whole_rows, t.mean(axis=-1, keepdims=True), 0.0)
     if denoise and n_bins >= 16:
         c = np.fft.rfft(t, axis=-1)
@@ -137,6 +147,16 @@ def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
 #: times the median harmonic amplitude (noise); common practice for a
 #: detection threshold on Rayleigh-distributed amplitudes
 _KEEP = 5.0
+
+
+def _trapezoid(n: int, blk, offset: int) -> np.ndarray:
+    """Block envelope on samples ``offset .. offset + n``: linear ramps, plateau 1, 0 outside."""
+    i = np.arange(offset, offset + n, dtype=np.float64)
+    up = (i - blk.start) / max(blk.ramp_up_stop - blk.start, 1) if blk.ramp_up_stop > blk.start else np.where(i >= blk.start, 1.0, 0.0)
+    down = (blk.stop - i) / max(blk.stop - blk.ramp_down_start, 1) if blk.stop > blk.ramp_down_start else np.where(i < blk.stop, 1.0, 0.0)
+    env = np.clip(np.minimum(up, down), 0.0, 1.0)
+    # a small floor keeps margin cycles (no artifact expected) from dividing by zero
+    return np.maximum(env, 1e-3)
 
 
 def _settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
@@ -284,8 +304,10 @@ class TemplateSubtraction(ArtifactEstimator):
         f = blk.freq_hz
         k_half = self._window(f)
         grid = None
-        # the strongest channel shows the DAC steps best
-        ref = int(np.argmax(np.std(xb, axis=1)))
+        # the strongest channel shows the DAC steps best; a clipped one shows rail edges instead
+        spread = np.std(xb, axis=1)
+        intact = np.mean(wb == 0, axis=1) < 0.001
+        ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if self.dac == "auto":
             p0 = max(0, blk.ramp_up_stop - offset)
             p1 = min(n, blk.ramp_down_start - offset)
@@ -340,7 +362,13 @@ class TemplateSubtraction(ArtifactEstimator):
         if np.any(wb == 0):
             censored = self._censored(wb, sampler, key, reader if sampler is not None else None,
                                       n_rows, n_bins, stride, k_groups, n_groups)
-        gain = np.ones((n_ch, n))
+        # start from the block's trapezoid (linear ramps), so that the first templates are not
+        # ramp averages; the fitted gain takes over from the second pass
+        gain = np.repeat(_trapezoid(n, blk, offset)[None, :], n_ch, axis=0)
+        # phases clipped anywhere in the window are left out of every fit, not only the
+        # clipped samples: the cycles that escaped the rail there are a biased selection
+        if censored is not None:
+            wb = wb * ~censored
         w = wb
         n_out = 0
         passes = 3 if self.robust else 2
@@ -369,7 +397,7 @@ class TemplateSubtraction(ArtifactEstimator):
             dac_concentration=None if grid is None else grid.concentration,
             gain_segments_per_cycle=per_cycle if self.track_amplitude else 0,
             outliers_left_out=int(n_out),
-            censored_samples=0 if censored is None else int(censored.sum() - (wb == 0).sum()),
+            censored_samples=0 if censored is None else int(censored.sum()),
         )
         return gain * t_n, info, censored
 
@@ -440,10 +468,18 @@ class TemplateSubtraction(ArtifactEstimator):
     def _drop_outliers(self, resid, wb, fs):
         """Zero the weight of spike-band outliers (and 1 ms around them)."""
         sos = signal.butter(2, min(300.0, 0.4 * fs), btype="highpass", fs=fs, output="sos")
-        hp = signal.sosfilt(sos, resid, axis=1)
-        # robust SD (MAD) from every 7th sample: plenty for a noise level, 7x cheaper
-        sigma = 1.4826 * np.median(np.abs(hp[:, ::7]), axis=1, keepdims=True)
-        bad = np.abs(hp) > self.outlier_z * np.maximum(sigma, 1e-12)
+        # lost samples carry no residual (zero), so their edges do not ring into flags
+        hp = np.abs(signal.sosfilt(sos, resid * (wb > 0), axis=1))
+        bad = np.zeros(hp.shape, dtype=bool)
+        for ch in range(hp.shape[0]):
+            use = hp[ch, ::7][wb[ch, ::7] > 0]  # every 7th sample: plenty for a noise level
+            if use.size == 0:
+                continue
+            # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
+            # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
+            sigma = 1.4826 * np.median(use)
+            thr = max(self.outlier_z * sigma, float(np.quantile(use, 0.99)), 1e-12)
+            bad[ch] = (hp[ch] > thr) & (wb[ch] > 0)
         half = max(1, int(round(1e-3 * fs)))
         # widen each flag by `half` samples: a difference array over the (few) flagged samples
         n = bad.shape[1]
