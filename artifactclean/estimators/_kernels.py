@@ -30,26 +30,36 @@ def _jit(fn):
 # ----------------------------------------------------------------------------- numpy twins
 
 
-def phase_sums_np(x, w, gain, gi, ga, inside):
-    """Weighted sums on the phase grid: S = w g r, G = w g^2, r resampled linearly."""
+def _group(a: np.ndarray, n_bins: int, stride: int, n_groups: int) -> np.ndarray:
+    """Sum a (n_ch, n_rows * n_bins) grid over groups of ``stride`` rows -> (n_ch, n_groups, n_bins)."""
+    n_ch = a.shape[0]
+    rows = a.shape[1] // n_bins
+    full = np.zeros((n_ch, n_groups * stride * n_bins))
+    full[:, : rows * n_bins] = a
+    return full.reshape(n_ch, n_groups, stride, n_bins).sum(axis=2)
+
+
+def phase_sums_np(x, w, gain, gi, ga, inside, n_bins, stride, n_groups):
+    """Weighted sums on the phase grid per group of cycles: S = w g r, G = w g^2, r resampled linearly."""
     r = (1 - ga) * x[:, gi] + ga * x[:, gi + 1]
     # a bin is usable only if both samples it is read from are
     wr = w[:, gi] * w[:, gi + 1] * inside
     gr = np.take(gain, gi, axis=1)
     wgr = wr * gr
-    return wgr * r, wgr * gr
+    return _group(wgr * r, n_bins, stride, n_groups), _group(wgr * gr, n_bins, stride, n_groups)
 
 
-def tick_sums_np(x, w, gain, key, n_grid):
-    """Sums of w g x and w g^2 over the samples of each DAC tick."""
+def tick_sums_np(x, w, gain, key, n_bins, stride, n_groups):
+    """Sums of w g x and w g^2 over the samples of each DAC tick, per group of cycles."""
     n_ch = x.shape[0]
+    n_grid = (int(key.max()) // n_bins + 1) * n_bins
     s = np.zeros((n_ch, n_grid))
     g = np.zeros((n_ch, n_grid))
     starts = np.concatenate(([0], np.flatnonzero(np.diff(key)) + 1))
     wg = w * gain
     s[:, key[starts]] = np.add.reduceat(wg * x, starts, axis=-1)
     g[:, key[starts]] = np.add.reduceat(wg * gain, starts, axis=-1)
-    return s, g
+    return _group(s, n_bins, stride, n_groups), _group(g, n_bins, stride, n_groups)
 
 
 def interp_eval_np(t, j0, j1, alpha):
@@ -79,25 +89,32 @@ def segment_stats_np(x, w, t, seg_starts):
 # ----------------------------------------------------------------------------- compiled
 
 
-def _phase_sums_loop(x, w, gain, gi, ga, inside, s_out, g_out):
+def _phase_sums_loop(x, w, gain, gi, ga, inside, n_bins, stride, s_out, g_out):
     n_ch = x.shape[0]
     for ch in range(n_ch):
         for j in range(gi.size):
             i = gi[j]
             wr = w[ch, i] * w[ch, i + 1] * inside[j]
+            if wr == 0.0:
+                continue
             a = ga[j]
             r = (1 - a) * x[ch, i] + a * x[ch, i + 1]
             wgr = wr * gain[ch, i]
-            s_out[ch, j] = wgr * r
-            g_out[ch, j] = wgr * gain[ch, i]
+            row = j // n_bins
+            k = (row // stride) * n_bins + (j - row * n_bins)
+            s_out[ch, k] += wgr * r
+            g_out[ch, k] += wgr * gain[ch, i]
 
 
-def _tick_sums_loop(x, w, gain, key, s_out, g_out):
+def _tick_sums_loop(x, w, gain, key, n_bins, stride, s_out, g_out):
     n_ch, n = x.shape
     for ch in range(n_ch):
         for i in range(n):
             wg = w[ch, i] * gain[ch, i]
-            k = key[i]
+            if wg == 0.0:
+                continue
+            row = key[i] // n_bins
+            k = (row // stride) * n_bins + (key[i] - row * n_bins)
             s_out[ch, k] += wg * x[ch, i]
             g_out[ch, k] += wg * gain[ch, i]
 
@@ -158,22 +175,24 @@ def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, compiled: bool = Tru
     return out
 
 
-def phase_sums(x, w, gain, gi, ga, inside, *, compiled: bool = True):
+def phase_sums(x, w, gain, gi, ga, inside, n_bins, stride, n_groups, *, compiled: bool = True):
+    """Grouped phase-grid sums (n_ch, n_groups, n_bins): see :func:`phase_sums_np`."""
     if not (compiled and HAVE_NUMBA):
-        return phase_sums_np(x, w, gain, gi, ga, inside)
-    s = np.empty((x.shape[0], gi.size))
-    g = np.empty_like(s)
-    _phase_sums_c(x, w, gain, gi, ga, inside.astype(np.float64), s, g)
-    return s, g
-
-
-def tick_sums(x, w, gain, key, n_grid, *, compiled: bool = True):
-    if not (compiled and HAVE_NUMBA):
-        return tick_sums_np(x, w, gain, key, n_grid)
-    s = np.zeros((x.shape[0], n_grid))
+        return phase_sums_np(x, w, gain, gi, ga, inside, n_bins, stride, n_groups)
+    s = np.zeros((x.shape[0], n_groups * n_bins))
     g = np.zeros_like(s)
-    _tick_sums_c(x, w, gain, key, s, g)
-    return s, g
+    _phase_sums_c(x, w, gain, gi, ga, inside.astype(np.float64), n_bins, stride, s, g)
+    return s.reshape(-1, n_groups, n_bins), g.reshape(-1, n_groups, n_bins)
+
+
+def tick_sums(x, w, gain, key, n_bins, stride, n_groups, *, compiled: bool = True):
+    """Grouped DAC-tick sums (n_ch, n_groups, n_bins): see :func:`tick_sums_np`."""
+    if not (compiled and HAVE_NUMBA):
+        return tick_sums_np(x, w, gain, key, n_bins, stride, n_groups)
+    s = np.zeros((x.shape[0], n_groups * n_bins))
+    g = np.zeros_like(s)
+    _tick_sums_c(x, w, gain, key, n_bins, stride, s, g)
+    return s.reshape(-1, n_groups, n_bins), g.reshape(-1, n_groups, n_bins)
 
 
 def interp_eval(t, j0, j1, alpha, *, compiled: bool = True):

@@ -50,16 +50,9 @@ from .base import ArtifactEstimator
 __all__ = ["TemplateSubtraction"]
 
 
-def _group_window(a: np.ndarray, n_rows: int, stride: int, k_groups: int) -> np.ndarray:
-    """Sum rows (cycles) in groups of ``stride``, then over groups ``i-k .. i+k`` (clamped).
-
-    ``a`` has shape (n_ch, n_rows, n_bins); returns (n_ch, n_groups, n_bins).
-    """
-    n_ch, _, n_bins = a.shape
-    n_groups = -(-n_rows // stride)
-    if n_groups * stride != n_rows:
-        a = np.concatenate([a, np.zeros((n_ch, n_groups * stride - n_rows, n_bins))], axis=1)
-    grp = a.reshape(n_ch, n_groups, stride, n_bins).sum(axis=2)
+def _group_window(grp: np.ndarray, k_groups: int) -> np.ndarray:
+    """Sums over groups ``i-k .. i+k`` (clamped) of (n_ch, n_groups, n_bins) group sums."""
+    n_ch, n_groups, n_bins = grp.shape
     c = np.zeros((n_ch, n_groups + 1, n_bins))
     np.cumsum(grp, axis=1, out=c[:, 1:])
     idx = np.arange(n_groups)
@@ -79,7 +72,7 @@ def _group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
     return i0, i1, beta
 
 
-def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
+def _shape(s, g, n_bins, k_groups, denoise, stride):
     """Least-squares templates every ``stride`` cycles: windowed sum(w g x) / sum(w g^2).
 
     The window (``2 k_groups + 1`` groups of ``stride`` cycles) is centred on
@@ -98,8 +91,8 @@ def _shape(s, g, n_rows, n_bins, k_groups, denoise, stride):
     ndarray, shape (n_channels, n_groups * n_bins)
     """
     n_ch = s.shape[0]
-    s = _group_window(s.reshape(n_ch, n_rows, n_bins), n_rows, stride, k_groups)
-    g = _group_window(g.reshape(n_ch, n_rows, n_bins), n_rows, stride, k_groups)
+    s = _group_window(s, k_groups)
+    g = _group_window(g, k_groups)
     with np.errstate(invalid="ignore", divide="ignore"):
         t = np.where(g > 0, s / np.where(g > 0, g, 1.0), 0.0)
     # a bin whose window holds almost no artifact energy (only cycles of near-zero gain, e.g.
@@ -379,10 +372,10 @@ class TemplateSubtraction(ArtifactEstimator):
                 if it > 0:
                     key = _settle_edges(xb[ref], gain[ref], lambda k: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
                                         key, base_key, amb_lo, amb_hi)
-                tmpl = self._tick_template(xb, w, gain, key, n_rows, n_bins, k_groups, denoise, stride)
+                tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups)
             else:
-                tmpl = self._phase_template(xb, w, gain, sampler, n_rows, n_bins, k_groups, denoise, stride)
+                tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride)
                 t_n = grouped_eval(tmpl, n_bins, *reader, compiled=self.compiled)
             if self.track_amplitude:
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle)
@@ -410,13 +403,15 @@ class TemplateSubtraction(ArtifactEstimator):
         lost, like the clipped ones.
         """
         n_ch, n = wb.shape
+        ones = np.ones_like(wb)
         if sampler is None:
-            ones = np.ones_like(wb)
-            counts, _ = tick_sums(1.0 - wb, ones, ones, key, n_rows * n_bins, compiled=self.compiled)
+            counts, _ = tick_sums(1.0 - wb, ones, ones, key, n_bins, stride, n_groups, compiled=self.compiled)
         else:
-            gi, _, inside = sampler
-            counts = (1.0 - wb[:, gi] * wb[:, gi + 1]) * inside
-        bad = (_group_window(counts.reshape(n_ch, n_rows, n_bins), n_rows, stride, k_groups) > 0)
+            gi, ga, inside = sampler
+            _, usable = phase_sums(ones, wb, ones, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
+            _, every = phase_sums(ones, ones, ones, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
+            counts = every - usable
+        bad = (_group_window(counts, k_groups) > 0.5)
         bad = bad.astype(np.float64).reshape(n_ch, -1)
         half = np.full(n, 0.5)
         if sampler is None:
@@ -434,14 +429,14 @@ class TemplateSubtraction(ArtifactEstimator):
         i0, i1, beta = _group_position(row + (b + 0.5) / n_bins, stride, n_groups)
         return grouped_eval(tmpl, n_bins, i0, i1, beta, b, b, np.zeros(key.size), compiled=self.compiled)
 
-    def _tick_template(self, xb, w, gain, key, n_rows, n_bins, k_groups, denoise, stride):
-        s, g = tick_sums(xb, w, gain, key, n_rows * n_bins, compiled=self.compiled)
-        return _shape(s, g, n_rows, n_bins, k_groups, denoise, stride)
+    def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride):
+        s, g = tick_sums(xb, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
+        return _shape(s, g, n_bins, k_groups, denoise, stride)
 
-    def _phase_template(self, xb, w, gain, sampler, n_rows, n_bins, k_groups, denoise, stride):
+    def _phase_template(self, xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride):
         gi, ga, inside = sampler
-        s, g = phase_sums(xb, w, gain, gi, ga, inside, compiled=self.compiled)
-        return _shape(s, g, n_rows, n_bins, k_groups, denoise, stride)
+        s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
+        return _shape(s, g, n_bins, k_groups, denoise, stride)
 
     def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate):
         num, den, full = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
