@@ -56,6 +56,8 @@ def _parser() -> argparse.ArgumentParser:
         sp.add_argument("input", help="recording: a file or folder neo can read (Open Ephys, BrainVision, ...)")
         sp.add_argument("--format", help="neo rawio format name (e.g. OpenEphysBinary, BrainVision); guessed if omitted")
         sp.add_argument("--stream", help="signal stream by name, id or index (default: the first)")
+        sp.add_argument("--block", type=int, default=0, help="neo block index (default 0)")
+        sp.add_argument("--segment", type=int, default=0, help="neo segment index (default 0)")
         sp.add_argument("--channels", help="comma-separated channel names or indices (default: all but the monitor)")
         sp.add_argument("--stim-freq", type=float, help="nominal stimulation frequency in Hz (refined from the data)")
         sp.add_argument("--stim-channel", help="stimulator monitor channel (name or index) to take the phase from")
@@ -93,7 +95,7 @@ def _open(args, prof: dict):
     rp = prof.get("recording", {})
     fmt = args.format or rp.get("format")
     stream = args.stream if args.stream is not None else rp.get("stream")
-    rec = NeoRecording(args.input, format=fmt, stream=stream)
+    rec = NeoRecording(args.input, format=fmt, stream=stream, block=args.block, segment=args.segment)
     chans = args.channels.split(",") if args.channels else rp.get("channels")
     channels = [rec.channel_index(c.strip() if isinstance(c, str) else c) for c in chans] if chans else None
     mon_name = args.stim_channel or rp.get("monitor_channel")
@@ -104,7 +106,7 @@ def _open(args, prof: dict):
         except ValueError:
             # Open Ephys puts ADC channels in their own stream: look there
             for i in range(len(rec._r.header["signal_streams"])):
-                other = NeoRecording(args.input, format=fmt, stream=i)
+                other = NeoRecording(args.input, format=fmt, stream=i, block=args.block, segment=args.segment)
                 if mon_name in other.channel_names:
                     monitor = (other, other.channel_index(mon_name))
                     break

@@ -171,6 +171,12 @@ def test_unreadable_and_unknown_inputs(tmp_path):
     assert r.returncode == 2 and "unknown format" in r.stderr
 
 
+def test_segment_that_does_not_exist(oe):
+    rec, root = oe
+    r = cli("survey", root, "--segment", "3", check=False)
+    assert r.returncode == 2 and "segment 3 does not exist" in r.stderr
+
+
 def test_progress_bar_draws_on_stderr(capsys):
     from artifactclean.cli import _Bar
 
