@@ -41,8 +41,9 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy import signal
+from scipy import ndimage, signal
 
+from ..clipping import find_clipped
 from ..staircase import find_dac_grid
 from ._kernels import grouped_eval, phase_sums, segment_stats, tick_sums
 from .base import ArtifactEstimator
@@ -82,9 +83,9 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
     reach into the spike band).
 
     With ``denoise``, each template keeps only the harmonics of the cycle
-    that stand out of the noise in the block-average template (amplitude
-    above ``_KEEP`` times the median harmonic amplitude): averaging 2K+1
-    cycles leaves noise in every harmonic, and a smooth artifact has few.
+    that stand out of its noise (amplitude above ``_KEEP`` times its median
+    harmonic amplitude): averaging 2K+1 cycles leaves noise in every
+    harmonic, and a smooth artifact has few.
 
     Returns
     -------
@@ -97,8 +98,9 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
         t = np.where(g > 0, s / np.where(g > 0, g, 1.0), 0.0)
     # a bin whose window holds almost no artifact energy (only cycles of near-zero gain, e.g.
     # margins, because the rest were clipped there) gives a ratio of noise to nothing: a hole
-    typical = np.array([np.median(gc[gc > 0]) if np.any(gc > 0) else 0.0 for gc in g.reshape(n_ch, -1)])
-    holes = g <= 0.05 * typical[:, None, None]
+    # judged per template (locally), so a piece of a block decides as the whole block
+    typical = np.median(g, axis=-1, keepdims=True)
+    holes = g <= 0.05 * typical
     if holes.any():
         # bins with no data (phases clipped in every cycle of the window): interpolate
         # along the cycle so that samples next to a lost stretch read a sensible template
@@ -115,20 +117,23 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
     # template is scaled to the block-average shape over its own usable bins, so gains fitted
     # against different templates agree and the template/gain alternation settles fast
     valid = ~holes
-    ref = np.where(valid, t, 0.0).sum(axis=1) / np.maximum(valid.sum(axis=1), 1)  # (n_ch, n_bins)
-    num = np.einsum("cgb,cb->cg", np.where(valid, t, 0.0), ref)
-    den = np.einsum("cgb,cb->cg", valid.astype(np.float64), ref * ref)
+    # the reference shape is the mean of the neighbouring templates (two groups each side):
+    # local, so that a piece of a block scales its templates as the whole block does
+    tv = np.where(valid, t, 0.0)
+    ref = _group_window(tv, 2) / np.maximum(_group_window(valid.astype(np.float64), 2), 1)
+    num = np.einsum("cgb,cgb->cg", tv, ref)
+    den = np.einsum("cgb,cgb->cg", valid.astype(np.float64), ref * ref)
     with np.errstate(invalid="ignore", divide="ignore"):
         scale = np.where((den > 0) & (num > 0), num / np.where(den > 0, den, 1.0), 1.0)
     t /= scale[..., None]
     t -= np.where(whole_rows, t.mean(axis=-1, keepdims=True), 0.0)
     if denoise and n_bins >= 16:
         c = np.fft.rfft(t, axis=-1)
-        whole = whole_rows[..., 0]  # (n_ch, n_groups)
-        mean_amp = np.abs(np.where(whole[..., None], c, 0).sum(axis=1)) / np.maximum(whole.sum(axis=1), 1)[:, None]
-        floor = np.median(mean_amp[:, 1:], axis=1, keepdims=True)
-        keep = mean_amp > _KEEP * floor
-        c *= keep[:, None, :]
+        # each template decides from its own window (so a piece of a block decides as the
+        # whole block would): harmonics above _KEEP times its median harmonic amplitude stay
+        amp = np.abs(c)
+        floor = np.median(amp[..., 1:], axis=-1, keepdims=True)
+        c *= amp > _KEEP * floor
         smooth = np.fft.irfft(c, n=n_bins, axis=-1)
         # templates with empty bins (phases lost in every cycle of the window) keep their raw
         # values: a truncated harmonic series would ring from the filled gap over the whole cycle
@@ -136,10 +141,19 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
     return t.reshape(n_ch, -1)
 
 
-#: a harmonic is kept when its block-average amplitude exceeds this many
-#: times the median harmonic amplitude (noise); common practice for a
+#: a harmonic is kept when its amplitude in a template exceeds this many
+#: times the template's median harmonic amplitude (noise); common practice for a
 #: detection threshold on Rayleigh-distributed amplitudes
 _KEEP = 5.0
+
+
+#: seconds of plateau the DAC grid is searched in
+_PLAN_S = 20.0
+
+
+def _block_key(blk) -> tuple:
+    """Identity of a stimulation block that survives StimulationModel.window()."""
+    return (round(blk.freq_hz, 9), round(blk.phase_ref, 9), blk.kind)
 
 
 def _trapezoid(n: int, blk, offset: int) -> np.ndarray:
@@ -239,8 +253,22 @@ class TemplateSubtraction(ArtifactEstimator):
 
     @property
     def context_cycles(self) -> float:  # type: ignore[override]
+        # at the default window (K depends on the frequency) see context_seconds
         k = 30 if self.n_cycles is None else self.n_cycles
-        return float(k + 2 + self.margin_cycles)
+        return float((3 if self.robust else 2) * (k + 2 * max(1, k // 4) + 2) + self.margin_cycles)
+
+    def context_seconds(self, freq_hz: float) -> float:
+        """Context (s) an output sample needs on each side.
+
+        The window reaches K cycles plus two template groups (alignment and
+        interpolation between groups), once per pass; the gain's low-pass
+        settles within a few periods of ``tracking_hz``.
+        """
+        k = self._window(freq_hz)
+        reach = k + 2 * max(1, k // 4) + 2
+        # each pass builds on the previous pass's residual, so edge effects travel one window per pass
+        passes = 3 if self.robust else 2
+        return (passes * reach + self.margin_cycles) / freq_hz + 3.0 / self.tracking_hz
 
     def _validate_params(self) -> None:
         if self.n_cycles is not None and (int(self.n_cycles) != self.n_cycles or self.n_cycles < 1):
@@ -296,17 +324,11 @@ class TemplateSubtraction(ArtifactEstimator):
         n_ch, n = xb.shape
         f = blk.freq_hz
         k_half = self._window(f)
-        grid = None
-        # the strongest channel shows the DAC steps best; a clipped one shows rail edges instead
-        spread = np.std(xb, axis=1)
-        intact = np.mean(wb == 0, axis=1) < 0.001
-        ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
-        if self.dac == "auto":
-            p0 = max(0, blk.ramp_up_stop - offset)
-            p1 = min(n, blk.ramp_down_start - offset)
-            if p1 - p0 < 10 * fs / f:
-                p0, p1 = 0, n
-            grid = find_dac_grid(xb[ref, p0:p1], u[p0:p1], fs, f)
+        plan = getattr(self, "_plans", {}).get(_block_key(blk))
+        if plan is None:
+            # the block's stretch for the DAC search lies inside this array
+            plan = self._plan(lambda a, b: xb[:, a - offset:b - offset], blk, fs)
+        ref, grid = plan
         if grid is not None:
             n_bins = grid.ticks_per_cycle
             key = grid.tick_index(u)
@@ -318,12 +340,14 @@ class TemplateSubtraction(ArtifactEstimator):
         else:
             n_bins = max(4, int(round(fs / f)))
             key = np.floor(u * n_bins).astype(np.int64)
-        row0 = key[0] // n_bins
-        key = key - row0 * n_bins  # first cycle becomes row 0
+        # templates are computed every `stride` cycles and interpolated between (see _shape);
+        # groups start at multiples of `stride` in absolute cycle numbers, so a piece of a
+        # block groups its cycles exactly as the whole block does
+        stride = max(1, k_half // 4)
+        row0 = (key[0] // n_bins) // stride * stride
+        key = key - row0 * n_bins  # first group starts at row 0
         n_rows = int(key[-1] // n_bins) + 1
         n_grid = n_rows * n_bins
-        # templates are computed every `stride` cycles and interpolated between (see _shape)
-        stride = max(1, k_half // 4)
         n_groups = -(-n_rows // stride)
         k_groups = max(1, int(round(k_half / stride)))
         if grid is not None:
@@ -380,7 +404,7 @@ class TemplateSubtraction(ArtifactEstimator):
             if self.track_amplitude:
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle)
             if self.robust and it == passes - 2:
-                w, n_out = self._drop_outliers(xb - gain * t_n, wb, fs)
+                w, n_out = self._drop_outliers(xb - gain * t_n, wb, fs, u, max(4, k_half // 2))
         info = dict(
             freq_hz=f,
             n_cycles=(2 * k_groups + 1) * stride,
@@ -393,6 +417,38 @@ class TemplateSubtraction(ArtifactEstimator):
             censored_samples=0 if censored is None else int(censored.sum()),
         )
         return gain * t_n, info, censored
+
+    def prepare(self, read, model, fs: float) -> None:
+        """Decide, once per block, what must not depend on how a recording is cut.
+
+        File pieces call this before cleaning a block piece by piece:
+        ``read(a, b)`` returns samples ``a..b`` of all channels. The DAC grid
+        (and the channel it is read from) comes from the middle of the
+        block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
+        whole array is cleaned at once.
+        """
+        self._plans = {_block_key(b): self._plan(read, b, fs) for b in model.blocks}
+
+    def _plan(self, read, blk, fs):
+        f = blk.freq_hz
+        p0, p1 = blk.ramp_up_stop, blk.ramp_down_start
+        if p1 - p0 < 10 * fs / f:
+            p0, p1 = blk.start, blk.stop
+        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+        # at most _PLAN_S s, less for many channels (memory), never under a second
+        span = max(1.0, min(_PLAN_S, _PLAN_S * 8 / max(n_ch, 1)))
+        half = int(min(span * fs, p1 - p0) // 2)
+        mid = (p0 + p1) // 2
+        a, b = mid - half, mid + half
+        x = np.asarray(read(a, b), dtype=np.float64)
+        # the strongest channel shows the DAC steps best; a clipped one shows rail edges instead
+        spread = np.std(x, axis=1)
+        intact = ~find_clipped(x, dilate=0).any(axis=1)
+        ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
+        if self.dac != "auto" or b - a < 16:
+            return ref, None
+        cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        return ref, find_dac_grid(x[ref], cycles, fs, f)
 
     def _censored(self, wb, sampler, key, reader, n_rows, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.
@@ -445,7 +501,8 @@ class TemplateSubtraction(ArtifactEstimator):
             # a segment with too little usable template energy (outliers, clipping) takes its
             # gain from its neighbours; clipping removes the peaks of every cycle, so usable
             # energy is judged against the typical segment, not against the segment's own total
-            ok = den[ch] > 0.1 * max(float(np.median(full[ch])), 1e-300)
+            local = ndimage.median_filter(full[ch], size=41, mode="nearest")  # ~20 segments each side
+            ok = den[ch] > 0.1 * np.maximum(local, 1e-300)
             if ok.sum() >= 2:
                 g[ch] = np.interp(seg_u, seg_u[ok], num[ch, ok] / den[ch, ok])
             elif ok.any():
@@ -460,21 +517,30 @@ class TemplateSubtraction(ArtifactEstimator):
             out[ch] = np.interp(u, seg_u, g[ch])
         return out
 
-    def _drop_outliers(self, resid, wb, fs):
-        """Zero the weight of spike-band outliers (and 1 ms around them)."""
+    def _drop_outliers(self, resid, wb, fs, u, span_cycles):
+        """Zero the weight of spike-band outliers (and 1 ms around them).
+
+        The threshold is set stretch by stretch (``span_cycles`` cycles, counted
+        from absolute cycle numbers), so it follows slow changes of the noise
+        and a piece of a block flags what the whole block would.
+        """
         sos = signal.butter(2, min(300.0, 0.4 * fs), btype="highpass", fs=fs, output="sos")
         # lost samples carry no residual (zero), so their edges do not ring into flags
         hp = np.abs(signal.sosfilt(sos, resid * (wb > 0), axis=1))
         bad = np.zeros(hp.shape, dtype=bool)
+        stretch = np.floor(u / span_cycles).astype(np.int64)
+        bounds = np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
         for ch in range(hp.shape[0]):
-            use = hp[ch, ::7][wb[ch, ::7] > 0]  # every 7th sample: plenty for a noise level
-            if use.size == 0:
-                continue
-            # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
-            # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
-            sigma = 1.4826 * np.median(use)
-            thr = max(self.outlier_z * sigma, float(np.quantile(use, 0.99)), 1e-12)
-            bad[ch] = (hp[ch] > thr) & (wb[ch] > 0)
+            for a, b in zip(bounds[:-1], bounds[1:]):
+                seg, ok = hp[ch, a:b], wb[ch, a:b] > 0
+                use = seg[ok]
+                if use.size < 16:
+                    continue
+                # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
+                # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
+                sigma = 1.4826 * np.median(use)
+                thr = max(self.outlier_z * sigma, float(np.quantile(use, 0.99)), 1e-12)
+                bad[ch, a:b] = (seg > thr) & ok
         half = max(1, int(round(1e-3 * fs)))
         # widen each flag by `half` samples: a difference array over the (few) flagged samples
         n = bad.shape[1]

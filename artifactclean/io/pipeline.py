@@ -178,7 +178,7 @@ def clean_recording(
     force: bool = False,
     gain_uv: float | None = None,
     chunk_s: float = 10.0,
-    max_range_s: float = 45.0,
+    max_range_s: float = 30.0,
     progress: Progress | None = None,
     command: str | None = None,
 ) -> dict:
@@ -259,20 +259,27 @@ def clean_recording(
 
         pos = 0
         max_len = max(int(max_range_s * fs * 4 / len(channels)), chunk)
+        if hasattr(est, "prepare"):
+            # block-level decisions from the same stretch an array run would use
+            est.prepare(lambda a, b: rec.read(a, b, channels), model, fs)
         for s, e, blk in est.work_ranges(model, fs):
             copy(pos, s)
             f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
             ctx = int(np.ceil(est.context_seconds(f_ctx) * fs))
-            if e - s <= max_len:
+            # a piece holds at least twice its context as core, up to twice the memory budget;
+            # at low frequencies (long context) the context is cut there, and pieces then
+            # differ from a whole-array run by a fraction of a microvolt near their edges
+            piece_len = min(max(max_len, 4 * ctx), 2 * max_len)
+            ctx = min(ctx, piece_len // 4)
+            if e - s <= piece_len:
                 pieces, ctx = [(s, e)], 0
             else:
-                # every piece but the last reads max_len samples (core plus context), whatever
-                # the block's length, so memory follows max_len and not the recording
-                ctx = min(ctx, max_len // 4)
+                # every piece but the last reads piece_len samples (core plus context), whatever
+                # the block's length, so memory follows the piece and not the recording
                 pieces, a = [], s
                 while a < e:
                     lo_ = max(s, a - ctx)
-                    b = min(e, lo_ + max_len - ctx)
+                    b = min(e, lo_ + piece_len - ctx)
                     pieces.append((a, b))
                     a = b
             for a, b in pieces:
