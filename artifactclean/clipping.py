@@ -26,7 +26,8 @@ def find_rails(data: np.ndarray, *, min_run: int = 2) -> tuple[np.ndarray, np.nd
         row = x[ch]
         for rail, out in ((row.max(), hi), (row.min(), lo)):
             at = row == rail
-            if at.sum() >= min_run and any(b - a >= min_run for a, b in mask_runs(at)):
+            # two equal neighbours at the extreme make a run; only then look for longer ones
+            if np.any(at[1:] & at[:-1]) and any(b - a >= min_run for a, b in mask_runs(at)):
                 out[ch] = rail
     return hi, lo
 
@@ -65,7 +66,10 @@ def find_clipped(
         lo = -hi
     else:
         hi, lo = (np.asarray(v, dtype=float).reshape(-1) for v in clip_level)
-    mask = (x >= hi[:, None]) | (x <= lo[:, None])
+    mask = np.zeros(x.shape, dtype=bool)
+    for ch in np.flatnonzero(np.isfinite(hi) | np.isfinite(lo)):
+        # most channels have no rail: they cost nothing here
+        mask[ch] = (x[ch] >= hi[ch]) | (x[ch] <= lo[ch])
     if dilate and mask.any():
         for ch in np.flatnonzero(mask.any(axis=1)):
             m = mask[ch]

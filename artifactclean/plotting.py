@@ -76,6 +76,9 @@ def plot_survey(path: Path, survey: dict) -> Path:
     for e in survey.get("events", []):
         ax0.axvline(e["time_s"], color="k", lw=0.6, ls=":")
     ax0.set_xlim(0, survey["duration_s"])
+    tops = [b["amplitude"] for b in survey["stimulation"]["blocks"] if b["kind"] != "off"]
+    if tops:
+        ax0.set_ylim(0, 1.15 * max(tops))
     ax0.set_xlabel("time (s)")
     ax0.set_ylabel("artifact amplitude (uV)")
     handles, labels = ax0.get_legend_handles_labels()

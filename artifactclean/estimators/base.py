@@ -151,6 +151,9 @@ class ArtifactEstimator(BaseEstimator):
             lost |= result[2]
         self.stim_model_ = stim_model
         self.artifact_ = artifact
+        if self._keep_copy:
+            # fit_transform subtracts in this validated copy instead of copying X again
+            self._validated = x
         self.lost_ = lost
         self.report_ = dict(method=self._method_name, **report)
         self.fs_ = fs
@@ -175,9 +178,21 @@ class ArtifactEstimator(BaseEstimator):
         x[self.lost_] = 0.0
         return x.reshape(arr.shape) if arr.ndim == 1 else x
 
+    _keep_copy = False
+
     def fit_transform(self, X, y=None, **fit_params) -> np.ndarray:
-        """``fit(X, **fit_params)`` then ``transform(X)``."""
-        return self.fit(X, y, **fit_params).transform(X)
+        """``fit(X, **fit_params)`` then ``transform(X)`` (without a second copy of ``X``)."""
+        self._keep_copy = True
+        try:
+            self.fit(X, y, **fit_params)
+        finally:
+            self._keep_copy = False
+        arr = np.asarray(X)
+        out = self._validated
+        del self._validated
+        out -= self.artifact_
+        out[self.lost_] = 0.0
+        return out.reshape(arr.shape) if arr.ndim == 1 else out
 
     def context_seconds(self, freq_hz: float) -> float:
         """Context (s) an output sample needs on each side at ``freq_hz`` stimulation."""
