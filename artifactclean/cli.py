@@ -207,8 +207,17 @@ def _clean(args) -> int:
     return 0
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    # one readable line per warning, not the Python source location
+    print(f"artifactclean: warning: {message}", file=sys.stderr)
+
+
 def main(argv=None) -> int:
     args = _parser().parse_args(argv)
+    import warnings
+
+    if not args.debug:
+        warnings.showwarning = _show_warning
     try:
         if args.command == "demo":
             from .demo import run_demo

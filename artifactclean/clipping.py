@@ -24,6 +24,8 @@ def find_rails(data: np.ndarray, *, min_run: int = 2) -> tuple[np.ndarray, np.nd
     lo = np.full(x.shape[0], -np.inf)
     for ch in range(x.shape[0]):
         row = x[ch]
+        if row.max() == row.min():
+            continue  # flat: constant, not clipped
         for rail, out in ((row.max(), hi), (row.min(), lo)):
             at = row == rail
             # two equal neighbours at the extreme make a run; only then look for longer ones

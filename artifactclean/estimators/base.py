@@ -13,6 +13,8 @@ only that same recording.
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from sklearn.base import BaseEstimator
 
@@ -140,12 +142,23 @@ class ArtifactEstimator(BaseEstimator):
         if lost.any():
             x[lost] = 0.0
         lost |= find_clipped(x, clip_level=clip_level)
+        flat = np.flatnonzero(np.ptp(x, axis=1) == 0)
+        if flat.size:
+            # a dead channel would otherwise read as clipped from end to end
+            lost[flat] = False
+            warnings.warn(f"channel(s) {flat.tolist()} are flat (constant): left as they are; "
+                          "check the electrode or the channel list", stacklevel=2)
         if stim_model is None:
             stim_model = _fit_model(x, fs, stim_freq, stim_reference, lost)
+            if not stim_model.blocks:
+                hint = f" near {stim_freq} Hz" if stim_freq else ""
+                warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
+                              "frequency hint may be wrong, run `artifactclean survey` without it", stacklevel=2)
         elif stim_model.n_samples != x.shape[1]:
             raise ValueError(f"stim_model covers {stim_model.n_samples} samples, data has {x.shape[1]}")
         result = self._estimate(x, fs, stim_model, lost)
         artifact, report = result[:2]
+        artifact[flat] = 0.0  # nothing to subtract from a constant
         if len(result) > 2 and result[2] is not None:
             # samples the estimator found it cannot clean (e.g. phases clipped nearby)
             lost |= result[2]

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import hashlib
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Sequence
@@ -91,8 +92,10 @@ def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int = 2**2
             progress(b, n, "scanning")
     mean = s1 / n
     std = np.sqrt(np.maximum(s2 / n - mean**2, 0.0))
-    rail_hi = np.where(hi_run, hi, np.inf)
-    rail_lo = np.where(lo_run, lo, -np.inf)
+    # a flat (dead) channel has no rail: it is constant, not clipped
+    flat = hi == lo
+    rail_hi = np.where(hi_run & ~flat, hi, np.inf)
+    rail_lo = np.where(lo_run & ~flat, lo, -np.inf)
     n_at = np.where(hi_run, n_hi, 0) + np.where(lo_run, n_lo, 0)
     return Scan(mean, std, rail_hi, rail_lo, n_at, n)
 
@@ -228,6 +231,13 @@ def clean_recording(
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
     model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
     names = [rec.channel_names[i] for i in channels]
+    if not model.blocks:
+        hint = f" near {stim_freq} Hz" if stim_freq else ""
+        warnings.warn(f"no stimulation found{hint}: the output is a copy of the input. If the frequency "
+                      "hint may be wrong, run `artifactclean survey` without it", stacklevel=2)
+    if np.any(scan.std == 0):
+        flat = [names[k] for k in np.flatnonzero(scan.std == 0)]
+        warnings.warn(f"flat (constant) channel(s) {', '.join(flat)}: copied as they are", stacklevel=2)
     if gain_uv is None:
         gain_uv = 0.195
         if isinstance(rec, NeoRecording) and np.issubdtype(rec.raw_dtype, np.integer):
