@@ -80,7 +80,10 @@ def test_interrupted_run_leaves_no_output(tmp_path):
     out = tmp_path / "o.dat"
     p = subprocess.Popen([sys.executable, "-m", "artifactclean.cli", "clean", str(root), "-o", str(out),
                           "--stim-freq", "20"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    time.sleep(4.0)
+    # interrupt while the output is being written: its temporary file exists then
+    deadline = time.monotonic() + 120
+    while not list(tmp_path.glob(".o.dat.partial-*")) and p.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
     p.send_signal(signal.SIGINT)
     _, err = p.communicate(timeout=120)
     if p.returncode == 0:  # finished before the signal: nothing to check on this machine

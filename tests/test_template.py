@@ -40,7 +40,11 @@ def test_no_stimulation_no_change(kind):
     else:
         rec = simulate_recording(12.0, blocks=[BlockSpec(3.0, 0.0, kind="sham", ramp_s=2.0)], seed=22)
         keep = np.r_[0:int(2.5 * rec.fs), int(7.5 * rec.fs):rec.n_samples]  # away from the sham's ramps
-    y = clean(rec.data, rec.fs, stim_freq=20.0)
+    if kind == "off":
+        with pytest.warns(UserWarning, match="no stimulation found"):
+            y = clean(rec.data, rec.fs, stim_freq=20.0)
+    else:
+        y = clean(rec.data, rec.fs, stim_freq=20.0)
     noise = rec.spec["neural"]["noise_uv"]
     assert np.max(np.abs(y[:, keep] - rec.data[:, keep])) <= 0.01 * noise
 
