@@ -21,7 +21,6 @@ Processing: Estimation Theory, ch. 7).
 from __future__ import annotations
 
 from dataclasses import dataclass, field, asdict
-from typing import Sequence
 
 import numpy as np
 from scipy import optimize, signal

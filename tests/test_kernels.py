@@ -23,10 +23,12 @@ def test_kernels_match_numpy(rng):
     key = np.sort(rng.integers(0, 700, x.shape[1]))
     for a, b in zip(K.tick_sums(x, w, gain, key, 50, 3, 5), K.tick_sums_np(x, w, gain, key, 50, 3, 5)):
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-10)
-    t = rng.standard_normal((3, 800))
-    j0 = rng.integers(0, 799, x.shape[1])
-    al = rng.uniform(size=j0.size)
-    np.testing.assert_allclose(K.interp_eval(t, j0, j0 + 1, al), K.interp_eval_np(t, j0, j0 + 1, al), rtol=1e-12)
+    t = rng.standard_normal((3, 8 * 100))
+    i0 = rng.integers(0, 7, x.shape[1])
+    b0 = rng.integers(0, 100, x.shape[1])
+    be, al = rng.uniform(size=i0.size), rng.uniform(size=i0.size)
+    np.testing.assert_allclose(K.grouped_eval(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al),
+                               K.grouped_eval_np(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al), rtol=1e-12)
     starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
     for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
         np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)

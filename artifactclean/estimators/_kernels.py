@@ -18,7 +18,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
     HAVE_NUMBA = False
 
-__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "interp_eval", "grouped_eval", "segment_stats"]
+__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats"]
 
 
 def _jit(fn):
@@ -60,11 +60,6 @@ def tick_sums_np(x, w, gain, key, n_bins, stride, n_groups):
     s[:, key[starts]] = np.add.reduceat(wg * x, starts, axis=-1)
     g[:, key[starts]] = np.add.reduceat(wg * gain, starts, axis=-1)
     return _group(s, n_bins, stride, n_groups), _group(g, n_bins, stride, n_groups)
-
-
-def interp_eval_np(t, j0, j1, alpha):
-    """Template read back at each sample: linear interpolation between bin centres."""
-    return (1 - alpha) * t[:, j0] + alpha * t[:, j1]
 
 
 def grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha):
@@ -119,14 +114,6 @@ def _tick_sums_loop(x, w, gain, key, n_bins, stride, s_out, g_out):
             g_out[ch, k] += wg * gain[ch, i]
 
 
-def _interp_eval_loop(t, j0, j1, alpha, out):
-    n_ch = t.shape[0]
-    for ch in range(n_ch):
-        for i in range(j0.size):
-            a = alpha[i]
-            out[ch, i] = (1 - a) * t[ch, j0[i]] + a * t[ch, j1[i]]
-
-
 def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
     n_ch = t.shape[0]
     for ch in range(n_ch):
@@ -162,7 +149,6 @@ def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
 
 _phase_sums_c = _jit(_phase_sums_loop)
 _tick_sums_c = _jit(_tick_sums_loop)
-_interp_eval_c = _jit(_interp_eval_loop)
 _segment_stats_c = _jit(_segment_stats_loop)
 _grouped_eval_c = _jit(_grouped_eval_loop)
 
@@ -193,14 +179,6 @@ def tick_sums(x, w, gain, key, n_bins, stride, n_groups, *, compiled: bool = Tru
     g = np.zeros_like(s)
     _tick_sums_c(x, w, gain, key, n_bins, stride, s, g)
     return s.reshape(-1, n_groups, n_bins), g.reshape(-1, n_groups, n_bins)
-
-
-def interp_eval(t, j0, j1, alpha, *, compiled: bool = True):
-    if not (compiled and HAVE_NUMBA):
-        return interp_eval_np(t, j0, j1, alpha)
-    out = np.empty((t.shape[0], j0.size))
-    _interp_eval_c(t, j0, j1, alpha, out)
-    return out
 
 
 def segment_stats(x, w, t, seg_starts, *, compiled: bool = True):

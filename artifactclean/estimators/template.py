@@ -38,7 +38,6 @@ tenth of the noise.
 
 from __future__ import annotations
 
-import warnings
 
 import numpy as np
 from scipy import ndimage, signal

@@ -10,7 +10,7 @@ from the file and units converted with ``quantities``.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
 
