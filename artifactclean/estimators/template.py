@@ -537,8 +537,8 @@ class TemplateSubtraction(ArtifactEstimator):
                     continue
                 # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
                 # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
-                sigma = 1.4826 * np.median(use)
-                thr = max(self.outlier_z * sigma, float(np.quantile(use, 0.99)), 1e-12)
+                med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
+                thr = max(self.outlier_z * 1.4826 * med, q99, 1e-12)
                 bad[ch, a:b] = (seg > thr) & ok
         half = max(1, int(round(1e-3 * fs)))
         # widen each flag by `half` samples: a difference array over the (few) flagged samples
