@@ -228,3 +228,22 @@ def test_long_block_cleaned_in_pieces_equals_array(tmp_path):
     y = np.fromfile(tmp_path / "long.dat", dtype="<i2").reshape(-1, 4).T * side["gain_uv_per_bit"]
     ref = ac.clean(r.read(), rec.fs, stim_freq=10.0)
     assert np.abs(y - ref).max() <= side["gain_uv_per_bit"]
+
+
+def test_arrays_and_neo_signals_are_recordings_too(tmp_path):
+    import neo
+    import quantities as pq
+
+    from artifactclean.io import clean_recording
+
+    rec = simulate_recording(8.0, n_channels=2, seed=46)
+    sig = neo.AnalogSignal((rec.data / 1000.0).T, units=pq.mV, sampling_rate=rec.fs * pq.Hz,
+                           array_annotations={"channel_names": np.array(["a", "b"])})
+    r = open_recording(sig)
+    assert r.channel_names == ["a", "b"]
+    np.testing.assert_allclose(r.read(0, 100), rec.data[:, :100])  # mV -> uV
+    out = clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "arr.dat", stim_freq=20.0)
+    side = json.loads((tmp_path / "arr.json").read_text())
+    assert side["provenance"]["input"] == {"path": "array"} and out["saturated"] == 0
+    with pytest.raises(TypeError, match="fs="):
+        open_recording(rec.data)

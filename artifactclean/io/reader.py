@@ -249,16 +249,13 @@ def open_recording(source, *, fs: float | None = None, format: str | None = None
         return source
     if isinstance(source, (str, os.PathLike)):
         return NeoRecording(source, format=format, stream=stream, block=block, segment=segment)
-    try:
-        import neo
+    import neo
 
-        if isinstance(source, neo.AnalogSignal):
-            data = source.rescale(pq.uV).magnitude.T
-            names = source.array_annotations.get("channel_names")
-            return ArrayRecording(data, float(source.sampling_rate.rescale(pq.Hz).magnitude),
-                                  None if names is None else [str(n) for n in names])
-    except ImportError:  # pragma: no cover
-        pass
+    if isinstance(source, neo.AnalogSignal):
+        data = source.rescale(pq.uV).magnitude.T
+        names = source.array_annotations.get("channel_names")
+        return ArrayRecording(data, float(source.sampling_rate.rescale(pq.Hz).magnitude),
+                              None if names is None else [str(n) for n in names])
     if fs is None:
         raise TypeError("an array recording needs fs= (Hz)")
     return ArrayRecording(source, fs)
