@@ -20,7 +20,14 @@ artifacts need:
   left out of the template and gain fits, so spikes are not smeared into
   neighbouring cycles;
 * **no stimulation, no change**: only samples inside stimulation blocks (plus
-  ``margin_cycles``) are touched.
+  ``margin_cycles``) are touched;
+* **clipping**: samples at the rails, and every phase clipped in some cycle of
+  the window (the cycles that escaped the rail there are a biased sample), are
+  left out of all fits and reported as lost;
+* **pieces**: every decision is either local (per template, per stretch of
+  cycles, groups aligned to absolute cycle numbers) or made once per block
+  (:meth:`TemplateSubtraction.prepare`), so a long block cleaned in pieces with
+  :meth:`context_seconds` of overlap gives the whole-array result.
 
 What it removes and what it cannot
 ----------------------------------
