@@ -144,8 +144,6 @@ class ArtifactEstimator(BaseEstimator):
         lost |= find_clipped(x, clip_level=clip_level)
         flat = np.flatnonzero(np.ptp(x, axis=1) == 0)
         if flat.size:
-            # a dead channel would otherwise read as clipped from end to end
-            lost[flat] = False
             warnings.warn(f"channel(s) {flat.tolist()} are flat (constant): left as they are; "
                           "check the electrode or the channel list", stacklevel=2)
         if stim_model is None:
