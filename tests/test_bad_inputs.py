@@ -91,3 +91,13 @@ def test_interrupted_run_leaves_no_output(tmp_path):
     assert p.returncode == 130 and "interrupted" in err
     assert not out.exists() and not out.with_suffix(".json").exists()
     assert not list(tmp_path.glob(".*partial*"))
+
+
+def test_monitor_at_another_rate_or_length():
+    from artifactclean.io import ArrayRecording, clean_recording
+
+    rec = simulate_recording(4.0, n_channels=2, seed=58)
+    data = ArrayRecording(rec.data, rec.fs)
+    monitor = ArrayRecording(rec.artifact[:1, : rec.n_samples // 2], rec.fs)
+    with pytest.raises(ValueError, match="monitor channel has"):
+        clean_recording(data, "unused.dat", monitor=(monitor, 0))
