@@ -62,12 +62,19 @@ class NotchComb(ArtifactEstimator):
             return np.zeros((0, 6))
         return np.vstack([signal.tf2sos(*signal.iirnotch(h, h / self.bandwidth_hz, fs=fs)) for h in harmonics])
 
+    def prepare(self, read, model, fs: float) -> None:
+        """Take the notch frequency from the whole recording's main block (file pieces call this),
+        so pieces without a block of their own are filtered like the rest."""
+        main = model.main_block
+        self._freq = None if main is None else main.freq_hz
+
     def _estimate(self, x, fs, model, lost):
         main = model.main_block
-        if main is None:
+        freq = getattr(self, "_freq", None) or (None if main is None else main.freq_hz)
+        if freq is None:
             return np.zeros_like(x), dict(harmonics=0, freq_hz=None)
-        sos = self.sos(main.freq_hz, fs)
+        sos = self.sos(freq, fs)
         if sos.shape[0] == 0:
-            return np.zeros_like(x), dict(harmonics=0, freq_hz=main.freq_hz)
+            return np.zeros_like(x), dict(harmonics=0, freq_hz=freq)
         filtered = signal.sosfiltfilt(sos, x, axis=-1)
-        return x - filtered, dict(harmonics=int(sos.shape[0]), freq_hz=main.freq_hz)
+        return x - filtered, dict(harmonics=int(sos.shape[0]), freq_hz=freq)
