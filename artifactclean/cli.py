@@ -165,6 +165,11 @@ def _print_survey(res: dict) -> None:
     print(f"{len(res['channels'])} channels at {res['sampling_rate_hz']:g} Hz, {res['duration_s']:.2f} s")
     f = st["frequency_hz"]
     print(f"stimulation: {'none found' if f is None else f'{f:.6f} Hz (main block)'}; phase from {st['reference']}")
+    dac = st.get("dac", {})
+    if dac.get("locked"):
+        print(f"DAC staircase: {dac['ticks_per_cycle']} updates per cycle (modelled exactly)")
+    elif dac.get("steps_per_s", 0) > 50:
+        print(f"DAC staircase: {dac['steps_per_s']:.0f} steps/s, not locked to the cycle (not modelled)")
     print(f"\n{'kind':<7} {'start s':>9} {'stop s':>9} {'ramp up s':>10} {'ramp down s':>12} {'freq Hz':>12} {'drift ppm':>10} {'amplitude uV':>13}")
     for b in st["blocks"]:
         if b["kind"] == "off":

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["DacGrid", "find_dac_grid"]
+__all__ = ["DacGrid", "find_dac_grid", "step_rate"]
 
 
 @dataclass(frozen=True)
@@ -155,6 +155,22 @@ def find_dac_grid(
         ends = np.array([u_all[0] - 1e6, u_all[-1] + 1e6])
         track = (ends, np.polyval(coef, ends - centres.mean()))
     return DacGrid(m, c, float(r[best]), int(big.size), track)
+
+
+def step_rate(x: np.ndarray, fs: float, *, z_threshold: float = 8.0) -> float:
+    """Steps per second in ``x`` far above the noise (a DAC staircase, locked or not).
+
+    Uses the step statistic of :func:`find_dac_grid` at a threshold no noise
+    sample and no spike reaches (``z_threshold`` robust SDs).
+    """
+    x = np.asarray(x, dtype=np.float64)
+    if x.size < 16:
+        return 0.0
+    q = 0.5 * (-x[:-3] + 3 * x[1:-2] - 3 * x[2:-1] + x[3:])
+    sigma = 1.4826 * np.median(np.abs(q - np.median(q)))
+    if sigma <= 0:
+        return 0.0
+    return float(_step_positions(q, z_threshold * sigma).size / (x.size / fs))
 
 
 def _step_positions(q: np.ndarray, level: float) -> np.ndarray:

@@ -101,3 +101,18 @@ def test_monitor_at_another_rate_or_length():
     monitor = ArrayRecording(rec.artifact[:1, : rec.n_samples // 2], rec.fs)
     with pytest.raises(ValueError, match="monitor channel has"):
         clean_recording(data, "unused.dat", monitor=(monitor, 0))
+
+
+def test_unlocked_dac_staircase_is_reported_not_hidden():
+    # 13 Hz from a 1 kHz DAC: 76.9 updates per cycle, no grid locked to the cycle exists
+    rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=13.0, dac_rate_hz=1000.0), seed=59)
+    with pytest.warns(UserWarning, match="not locked to the 13.0"):
+        est = ac.TemplateSubtraction().fit(rec.data, fs=rec.fs, stim_freq=13.0)
+    assert est.report_["blocks"][0]["unlocked_dac_steps_per_s"] > 300  # ~1000 updates/s, steep ones seen
+    locked = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=10.0, dac_rate_hz=1000.0), seed=59)
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        est = ac.TemplateSubtraction().fit(locked.data, fs=locked.fs, stim_freq=10.0)
+    assert est.report_["blocks"][0]["dac_ticks_per_cycle"] == 100

@@ -46,11 +46,13 @@ tenth of the noise.
 from __future__ import annotations
 
 
+import warnings
+
 import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
-from ..staircase import find_dac_grid
+from ..staircase import find_dac_grid, step_rate
 from ._kernels import grouped_eval, phase_sums, segment_stats, tick_sums
 from .base import ArtifactEstimator
 
@@ -155,6 +157,9 @@ _KEEP = 5.0
 
 #: seconds of plateau the DAC grid is searched in
 _PLAN_S = 20.0
+
+#: steps per second (far above noise) that reveal a staircase no locked grid explains
+_UNLOCKED_STEPS = 50.0
 
 
 def _block_key(blk) -> tuple:
@@ -334,7 +339,12 @@ class TemplateSubtraction(ArtifactEstimator):
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
             plan = self._plan(lambda a, b: xb[:, a - offset:b - offset], blk, fs)
-        ref, grid = plan
+        ref, grid, unlocked = plan
+        if unlocked > _UNLOCKED_STEPS:
+            warnings.warn(
+                f"a DAC staircase ({unlocked:.0f} steps/s) that is not locked to the {f:.3f} Hz cycle: the "
+                "template cannot follow it and a spike-band residual will remain; check the result with "
+                "the validation figures", stacklevel=4)
         if grid is not None:
             n_bins = grid.ticks_per_cycle
             key = grid.tick_index(u)
@@ -421,6 +431,7 @@ class TemplateSubtraction(ArtifactEstimator):
             gain_segments_per_cycle=per_cycle if self.track_amplitude else 0,
             outliers_left_out=int(n_out),
             censored_samples=0 if censored is None else int(censored.sum()),
+            unlocked_dac_steps_per_s=float(unlocked),
         )
         return gain * t_n, info, censored
 
@@ -452,9 +463,12 @@ class TemplateSubtraction(ArtifactEstimator):
         intact = ~find_clipped(x, dilate=0).any(axis=1)
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if self.dac != "auto" or b - a < 16:
-            return ref, None
+            return ref, None, 0.0
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        return ref, find_dac_grid(x[ref], cycles, fs, f)
+        grid = find_dac_grid(x[ref], cycles, fs, f)
+        # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow
+        unlocked = step_rate(x[ref], fs) if grid is None else 0.0
+        return ref, grid, unlocked
 
     def _censored(self, wb, sampler, key, reader, n_rows, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.

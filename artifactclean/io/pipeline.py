@@ -30,6 +30,7 @@ import numpy as np
 from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
+from ..staircase import find_dac_grid, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from .reader import NeoRecording, Recording
 from .writers import open_writer, output_paths
@@ -377,11 +378,24 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         x = rec.read(a, b, channels)
         u = model.cycles(main, a, b)
         amps = 2 * np.abs((x - x.mean(axis=1, keepdims=True)) @ np.exp(-2j * np.pi * u)) / max(b - a, 1)
+        strongest = int(np.argmax(amps))
+        grid = find_dac_grid(x[strongest], u, rec.fs, main.freq_hz)
+        dac = dict(ticks_per_cycle=None if grid is None else grid.ticks_per_cycle,
+                   steps_per_s=step_rate(x[strongest], rec.fs),
+                   locked=grid is not None)
+    else:
+        dac = dict(ticks_per_cycle=None, steps_per_s=0.0, locked=False)
+    unlocked = not dac["locked"] and dac["steps_per_s"] > 50.0
     frac = scan.n_at_rails / max(scan.n_samples, 1)
     chans = []
     for k, ch in enumerate(channels):
         rec_method = "template"
-        note = "" if frac[k] == 0 else f"{100 * frac[k]:.2f}% of samples clipped: reported and blanked"
+        notes = []
+        if frac[k] > 0:
+            notes.append(f"{100 * frac[k]:.2f}% of samples clipped: reported and blanked")
+        if unlocked:
+            notes.append("DAC staircase not locked to the cycle: spike-band residual expected")
+        note = "; ".join(notes)
         chans.append(dict(name=rec.channel_names[ch], index=int(ch), artifact_amplitude_uv=float(amps[k]),
                           sd_uv=float(scan.std[k]), clipped_fraction=float(frac[k]),
                           recommended_method=rec_method, note=note))
@@ -393,7 +407,8 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         n_samples=rec.n_samples,
         duration_s=rec.n_samples / rec.fs,
         stimulation=dict(frequency_hz=None if main is None else main.freq_hz,
-                         nominal_freq_hz=stim_freq, reference=model.reference, blocks=model.block_table()),
+                         nominal_freq_hz=stim_freq, reference=model.reference, blocks=model.block_table(),
+                         dac=dac),
         channels=chans,
         events=events,
     )
