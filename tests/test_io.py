@@ -247,3 +247,19 @@ def test_arrays_and_neo_signals_are_recordings_too(tmp_path):
     assert side["provenance"]["input"] == {"path": "array"} and out["saturated"] == 0
     with pytest.raises(TypeError, match="fs="):
         open_recording(rec.data)
+
+
+def test_monitor_channel_in_its_own_stream(tmp_path):
+    # Open Ephys puts channels named ADC* in a stream of their own; --stim-channel finds it there
+    rec = simulate_recording(10.0, artifact=ArtifactSpec(freq_hz=20.0, drift_ppm=30.0), seed=47)
+    monitor = rec.artifact[:1] / 4.0  # a current monitor: the stimulator waveform, scaled
+    root = write_openephys_binary(tmp_path / "s", np.vstack([rec.data, monitor]), rec.fs,
+                                  channel_names=["CH1", "CH2", "CH3", "CH4", "ADC1"])
+    out = json.loads(cli("survey", root, "--stim-channel", "ADC1", "--json").stdout)
+    assert out["stimulation"]["reference"] == "monitor"
+    assert abs(out["stimulation"]["frequency_hz"] / rec.blocks[0]["freq_hz"] - 1) < 2e-6
+    cli("clean", root, "--stim-channel", "ADC1", "-o", tmp_path / "m.dat")
+    side = json.loads((tmp_path / "m.json").read_text())
+    assert side["channel_names"] == ["CH1", "CH2", "CH3", "CH4"]
+    r = cli("survey", root, "--stim-channel", "ADC9", check=False)
+    assert r.returncode == 2 and "ADC9" in r.stderr
