@@ -331,7 +331,7 @@ class _Segment:
     level: float
 
 
-def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, min_cycles: float) -> tuple[list, float]:
+def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, min_cycles: float) -> list:
     env = _envelope(x_ds, fs_ds, f)
     bg = np.sqrt(np.median(_envelope(x_ds, fs_ds, 0.5 * f)) * np.median(_envelope(x_ds, fs_ds, 1.5 * f)))
     bg = max(bg, 1e-12 * max(1.0, float(np.max(np.abs(x_ds)))))
@@ -353,7 +353,7 @@ def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, m
         level = float(np.max(signal.medfilt(env[a:b], 2 * (int(fs_ds / f) // 2) + 1))) if b - a > 3 else float(env[a:b].max())
         s, p0, p1, e = _ramp_edges(env, a, b, level)
         segs.append(_Segment(s, p0, p1, e, level))
-    return segs, bg
+    return segs
 
 
 def fit_stimulation(
@@ -450,7 +450,7 @@ def fit_decimated(
         f_guess, _, _ = estimate_tone(x_ds, fs_ds, fmin=0.5, fmax=min(fmax, 0.45 * fs_ds))
     else:
         f_guess = float(stim_freq)
-    segs, _ = _find_segments(x_ds, fs_ds, f_guess, threshold, min_cycles)
+    segs = _find_segments(x_ds, fs_ds, f_guess, threshold, min_cycles)
     model = StimulationModel(fs=fs, n_samples=n, nominal_freq_hz=stim_freq, reference=source)
     scale = fs / fs_ds
     for sg in segs:

@@ -147,7 +147,7 @@ class ArtifactEstimator(BaseEstimator):
             warnings.warn(f"channel(s) {flat.tolist()} are flat (constant): left as they are; "
                           "check the electrode or the channel list", stacklevel=2)
         if stim_model is None:
-            stim_model = _fit_model(x, fs, stim_freq, stim_reference, lost)
+            stim_model = _fit_model(x, fs, stim_freq, stim_reference)
             if not stim_model.blocks:
                 hint = f" near {stim_freq} Hz" if stim_freq else ""
                 warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
@@ -228,7 +228,7 @@ class ArtifactEstimator(BaseEstimator):
         raise NotImplementedError
 
 
-def _fit_model(x, fs, stim_freq, stim_reference, lost) -> StimulationModel:
+def _fit_model(x, fs, stim_freq, stim_reference) -> StimulationModel:
     if stim_freq is not None:
         try:
             stim_freq = float(stim_freq)

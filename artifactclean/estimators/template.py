@@ -394,7 +394,7 @@ class TemplateSubtraction(ArtifactEstimator):
         censored = None
         if np.any(wb == 0):
             censored = self._censored(wb, sampler, key, reader if sampler is not None else None,
-                                      n_rows, n_bins, stride, k_groups, n_groups)
+                                      n_bins, stride, k_groups, n_groups)
         # start from the block's trapezoid (linear ramps), so that the first templates are not
         # ramp averages; the fitted gain takes over from the second pass
         gain = np.repeat(_trapezoid(n, blk, offset)[None, :], n_ch, axis=0)
@@ -470,7 +470,7 @@ class TemplateSubtraction(ArtifactEstimator):
         unlocked = step_rate(x[ref], fs) if grid is None else 0.0
         return ref, grid, unlocked
 
-    def _censored(self, wb, sampler, key, reader, n_rows, n_bins, stride, k_groups, n_groups):
+    def _censored(self, wb, sampler, key, reader, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.
 
         Clipping cuts off the largest samples of a phase; the cycles that remain
