@@ -7,10 +7,17 @@ Figures (all within stimulation blocks, lost samples left out):
 * ``harmonic_residual``: residual power within +-1 Hz of each harmonic
   below 300 Hz, divided by the neural power in the same bands (Welch
   periodograms, ``scipy.signal.welch``);
+* ``lfp_band_ratio``: per harmonic below 80 Hz, residual power within
+  +-3 Hz of it over the neural power in the same band; the worst harmonic;
+* ``lfp_error_away``: relative error (RMS of the residual over RMS of the
+  neural signal) of the LFP 1-80 Hz away from those +-3 Hz bands, from the
+  same periodograms;
 * ``recall_ratio``: spike recall on the cleaned trace divided by recall on the
   artifact-free trace with the same detector;
 * ``sixth_recall_min_over_max``: recall in the worst sixth of the stimulation
   cycle over recall in the best sixth;
+* ``locked_units``: for each unit locked to the stimulation, PLV of its
+  detected spikes minus PLV of all its spikes, and the preferred-phase error;
 * ``delta_ppc``: PPC (Vinck et al. 2010) of the detected spikes' stimulation
   phases, cleaned minus artifact-free.
 """
@@ -21,7 +28,7 @@ import numpy as np
 from scipy import signal
 
 from .clipping import mask_runs
-from .phase_stats import ppc
+from .phase_stats import plv, ppc, preferred_phase
 from .spikes import detect_spikes, match_spikes, spike_band
 
 __all__ = ["score_cleaning"]
@@ -33,6 +40,24 @@ def _band_power(x: np.ndarray, fs: float, bands: list[tuple[float, float]]) -> f
     for lo, hi in bands:
         sel |= (f >= lo) & (f <= hi)
     return float(p[..., sel].sum())
+
+
+def _lfp_figures(resid: np.ndarray, neural: np.ndarray, fs: float, f0: float,
+                 half_band: float = 3.0, top: float = 80.0) -> tuple[float, float]:
+    """Worst harmonic-band power ratio and the relative LFP error away from the harmonic bands."""
+    nper = int(min(resid.size, 4 * fs))
+    f, pr = signal.welch(resid, fs=fs, nperseg=nper)
+    _, pn = signal.welch(neural, fs=fs, nperseg=nper)
+    ratios = []
+    near = np.zeros(f.size, dtype=bool)
+    for k in range(1, int(top // f0) + 1):
+        sel = np.abs(f - k * f0) <= half_band
+        near |= sel
+        if pn[sel].sum() > 0:
+            ratios.append(pr[sel].sum() / pn[sel].sum())
+    away = (f >= 1.0) & (f <= top) & ~near
+    err = float(np.sqrt(pr[away].sum() / pn[away].sum())) if pn[away].sum() > 0 else np.nan
+    return (float(max(ratios)) if ratios else np.nan), err
 
 
 def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
@@ -56,7 +81,7 @@ def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
     sb_res = spike_band(resid, fs)
     sb_clean = spike_band(cleaned, fs)
     sb_true = spike_band(neural, fs)
-    out = dict(spikeband_residual=[], harmonic_residual=[])
+    out = dict(spikeband_residual=[], harmonic_residual=[], lfp_band_ratio=[], lfp_error_away=[])
     f0 = max((b["freq_hz"] for b in rec.blocks if b["kind"] == "active"), default=None)
     for ch in range(neural.shape[0]):
         ok = stim & ~lost[ch]
@@ -71,8 +96,12 @@ def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
             # lost samples count as zero in both, so a blanked stretch is neither residual nor signal
             ref = _band_power(np.where(lost[ch, seg], 0.0, neural[ch, seg]), fs, bands)
             out["harmonic_residual"].append(_band_power(resid[ch, seg], fs, bands) / ref if ref > 0 else np.nan)
+            band, away = _lfp_figures(resid[ch, seg], np.where(lost[ch, seg], 0.0, neural[ch, seg]), fs, f0)
         else:
             out["harmonic_residual"].append(np.nan)
+            band = away = np.nan
+        out["lfp_band_ratio"].append(band)
+        out["lfp_error_away"].append(away)
     # spikes: detect on each unit's channel in the cleaned and the artifact-free trace
     tol = int(round(0.5e-3 * fs))
     hits_c, hits_t, ph_true, det_c_ph, det_t_ph = [], [], [], [], []
@@ -87,6 +116,15 @@ def score_cleaning(rec, cleaned: np.ndarray, *, lost: np.ndarray | None = None,
         ph_true.append(rec.stim_phase[idx])
         det_c_ph.append(rec.stim_phase[dc])
         det_t_ph.append(rec.stim_phase[dt])
+    # locked units: phase locking of the detected spikes against that of all true spikes
+    locked = []
+    units = rec.spec.get("neural", {}).get("units", [])
+    for u, (hit, ph_u) in enumerate(zip(hits_c, ph_true)):
+        if u < len(units) and units[u].get("kappa", 0) > 0 and hit.sum() > 1:
+            d = np.angle(np.exp(1j * (preferred_phase(ph_u[hit]) - preferred_phase(ph_u))))
+            locked.append(dict(unit=u, plv_true=plv(ph_u), plv_detected=plv(ph_u[hit]),
+                               plv_error=plv(ph_u[hit]) - plv(ph_u), preferred_phase_error_deg=float(np.degrees(d))))
+    out["locked_units"] = locked
     hc, ht, ph = (np.concatenate(a) if a else np.zeros(0) for a in (hits_c, hits_t, ph_true))
     rc = hc.mean() if hc.size else np.nan
     rt = ht.mean() if ht.size else np.nan

@@ -24,6 +24,10 @@ def _check_acceptance(rec, stim_freq):
 def test_acceptance_20hz_modulated_drifting(rec20):
     s = _check_acceptance(rec20, 20.0)
     assert max(s["harmonic_residual"]) < 5.0
+    # heartbeat sidebands within +-3 Hz followed; a gain low-passed at 4 Hz left 1.6 here and
+    # 0.36 LFP error away from the bands (the goal there, 0.05, is not yet met)
+    assert max(s["lfp_band_ratio"]) <= 2.0, s["lfp_band_ratio"]
+    assert max(s["lfp_error_away"]) <= 0.15, s["lfp_error_away"]
 
 
 def test_acceptance_10hz_dac_staircase(rec10_dac):
@@ -89,7 +93,7 @@ def test_sklearn_conventions():
     c = clone(est)
     assert c.get_params() == est.get_params()
     c.set_params(tracking_hz=2.0)
-    assert c.tracking_hz == 2.0 and est.tracking_hz == 4.0
+    assert c.tracking_hz == 2.0 and est.tracking_hz == TemplateSubtraction().tracking_hz
     assert not hasattr(c, "artifact_")
     with pytest.raises(ValueError, match="n_cycles"):
         TemplateSubtraction(n_cycles=0).fit(np.zeros((1, 3000)), fs=1000.0, stim_freq=10.0)

@@ -74,10 +74,18 @@ def grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha):
 
 
 def segment_stats_np(x, w, t, seg_starts):
-    """Per gain segment: sum w x t, sum w t^2, sum t^2."""
-    num = np.add.reduceat(w * x * t, seg_starts, axis=-1)
-    den = np.add.reduceat(w * t * t, seg_starts, axis=-1)
-    full = np.add.reduceat(t * t, seg_starts, axis=-1)
+    """Per gain segment, about each segment's own (weighted) means: sum w x t, sum w t^2, sum t^2.
+
+    Centring makes the fitted gain blind to an offset over the segment (the
+    slow LFP over part of a cycle, where the template's mean is not zero).
+    """
+    red = lambda v: np.add.reduceat(v, seg_starts, axis=-1)  # noqa: E731
+    sw = np.maximum(red(w), 1e-300)
+    sx, st = red(w * x), red(w * t)
+    num = red(w * x * t) - sx * st / sw
+    den = red(w * t * t) - st * st / sw
+    n = np.diff(np.append(seg_starts, x.shape[-1]))
+    full = red(t * t) - red(t) ** 2 / n
     return num, den, full
 
 
@@ -133,18 +141,27 @@ def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
         for k in range(n_seg):
             a = seg_starts[k]
             b = seg_starts[k + 1] if k + 1 < n_seg else n
-            sn = 0.0
-            sd = 0.0
+            sw = 0.0
+            sx = 0.0
+            st = 0.0
+            sxt = 0.0
+            stt = 0.0
+            su = 0.0
             sf = 0.0
             for i in range(a, b):
                 tt = t[ch, i]
-                wt = w[ch, i] * tt
-                sn += wt * x[ch, i]
-                sd += wt * tt
+                wi = w[ch, i]
+                sw += wi
+                sx += wi * x[ch, i]
+                st += wi * tt
+                sxt += wi * tt * x[ch, i]
+                stt += wi * tt * tt
+                su += tt
                 sf += tt * tt
-            num[ch, k] = sn
-            den[ch, k] = sd
-            full[ch, k] = sf
+            sw = max(sw, 1e-300)
+            num[ch, k] = sxt - sx * st / sw
+            den[ch, k] = stt - st * st / sw
+            full[ch, k] = sf - su * su / (b - a)
 
 
 _phase_sums_c = _jit(_phase_sums_loop)

@@ -52,6 +52,8 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
+from ..modulation import HALF_S as GAIN_HALF_S
+from ..modulation import design_gain_response, segment_gain, smooth_gain
 from ..staircase import find_dac_grid, step_rate
 from ._kernels import grouped_eval, phase_sums, segment_stats, tick_sums
 from .base import ArtifactEstimator
@@ -162,6 +164,11 @@ _PLAN_S = 20.0
 _UNLOCKED_STEPS = 50.0
 
 
+def _segments_per_cycle(tracking_hz: float, f: float) -> int:
+    """Gain samples per cycle: the gain is sampled at twice the Nyquist rate of ``tracking_hz``."""
+    return max(1, int(np.ceil(4 * tracking_hz / f)))
+
+
 def _block_key(blk) -> tuple:
     """Identity of a stimulation block that survives StimulationModel.window()."""
     return (round(blk.freq_hz, 9), round(blk.phase_ref, 9), blk.kind)
@@ -217,8 +224,11 @@ class TemplateSubtraction(ArtifactEstimator):
     track_amplitude : bool
         Fit a slowly varying gain on top of the template.
     tracking_hz : float
-        Bandwidth of the gain: heartbeat (up to ~3 Hz) and respiration
-        (~0.2-0.5 Hz) changes of impedance sit below it.
+        Highest modulation frequency the gain may follow. Heartbeat (up to
+        ~3 Hz, with harmonics: its impedance pulse is not a sinusoid) and
+        respiration (~0.2-0.5 Hz) sit below it. Within it, the gain passes
+        only the modulation lines that stand out of the neural floor of its
+        own spectrum, designed per block (see :mod:`artifactclean.modulation`).
     dac : {"auto", "off"}
         Look for a DAC staircase locked to the stimulation phase.
     margin_cycles : float
@@ -245,7 +255,7 @@ class TemplateSubtraction(ArtifactEstimator):
         n_cycles: int | None = None,
         robust: bool = True,
         track_amplitude: bool = True,
-        tracking_hz: float = 4.0,
+        tracking_hz: float = 10.0,
         dac: str = "auto",
         margin_cycles: float = 2.0,
         outlier_z: float = 5.0,
@@ -273,13 +283,13 @@ class TemplateSubtraction(ArtifactEstimator):
 
         The window reaches K cycles plus two template groups (alignment and
         interpolation between groups), once per pass; the gain's low-pass
-        settles within a few periods of ``tracking_hz``.
+        filter reaches :data:`artifactclean.modulation.HALF_S` seconds.
         """
         k = self._window(freq_hz)
         reach = k + 2 * max(1, k // 4) + 2
         # each pass builds on the previous pass's residual, so edge effects travel one window per pass
         passes = 3 if self.robust else 2
-        return (passes * reach + self.margin_cycles) / freq_hz + 3.0 / self.tracking_hz
+        return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S
 
     def _validate_params(self) -> None:
         if self.n_cycles is not None and (int(self.n_cycles) != self.n_cycles or self.n_cycles < 1):
@@ -339,7 +349,7 @@ class TemplateSubtraction(ArtifactEstimator):
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
             plan = self._plan(lambda a, b: xb[:, a - offset:b - offset], blk, fs)
-        ref, grid, unlocked = plan
+        ref, grid, unlocked, response = plan
         if unlocked > _UNLOCKED_STEPS:
             warnings.warn(
                 f"a DAC staircase ({unlocked:.0f} steps/s) that is not locked to the {f:.3f} Hz cycle: the "
@@ -386,7 +396,7 @@ class TemplateSubtraction(ArtifactEstimator):
             alpha = bpos - b0f
             reader = _group_position(uc, stride, n_groups) + (np.mod(b0f, n_bins), np.mod(b0f + 1, n_bins), alpha)
         # gain segments: enough per cycle to sample the tracking band
-        per_cycle = max(1, int(np.ceil(4 * self.tracking_hz / f)))
+        per_cycle = _segments_per_cycle(self.tracking_hz, f)
         seg = np.floor(u * per_cycle).astype(np.int64)
         seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
         seg_u = (seg[seg_starts] + 0.5) / per_cycle
@@ -397,7 +407,9 @@ class TemplateSubtraction(ArtifactEstimator):
                                       n_bins, stride, k_groups, n_groups)
         # start from the block's trapezoid (linear ramps), so that the first templates are not
         # ramp averages; the fitted gain takes over from the second pass
-        gain = np.repeat(_trapezoid(n, blk, offset)[None, :], n_ch, axis=0)
+        trap = _trapezoid(n, blk, offset)
+        gain = np.repeat(trap[None, :], n_ch, axis=0)
+        seg_env = trap[(seg_starts + np.append(seg_starts[1:], n)) // 2]
         # phases clipped anywhere in the window are left out of every fit, not only the
         # clipped samples: the cycles that escaped the rail there are a biased selection
         if censored is not None:
@@ -418,7 +430,7 @@ class TemplateSubtraction(ArtifactEstimator):
                 tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride)
                 t_n = grouped_eval(tmpl, n_bins, *reader, compiled=self.compiled)
             if self.track_amplitude:
-                gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle)
+                gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle, response, seg_env)
             if self.robust and it == passes - 2:
                 w, n_out = self._drop_outliers(xb - gain * t_n, wb, fs, u, max(4, k_half // 2))
         info = dict(
@@ -462,13 +474,20 @@ class TemplateSubtraction(ArtifactEstimator):
         spread = np.std(x, axis=1)
         intact = ~find_clipped(x, dilate=0).any(axis=1)
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
-        if self.dac != "auto" or b - a < 16:
-            return ref, None, 0.0
+        if b - a < 16:
+            return ref, None, 0.0, None
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        response = None
+        if self.track_amplitude:
+            per_cycle = _segments_per_cycle(self.tracking_hz, f)
+            raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+            response = design_gain_response(raw, rate, max_hz=self.tracking_hz)
+        if self.dac != "auto":
+            return ref, None, 0.0, response
         grid = find_dac_grid(x[ref], cycles, fs, f)
         # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow
         unlocked = step_rate(x[ref], fs) if grid is None else 0.0
-        return ref, grid, unlocked
+        return ref, grid, unlocked, response
 
     def _censored(self, wb, sampler, key, reader, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.
@@ -514,7 +533,7 @@ class TemplateSubtraction(ArtifactEstimator):
         s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
         return _shape(s, g, n_bins, k_groups, denoise, stride)
 
-    def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate):
+    def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate, response, seg_env):
         num, den, full = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
         g = np.zeros_like(num)
         for ch in range(g.shape[0]):
@@ -529,9 +548,8 @@ class TemplateSubtraction(ArtifactEstimator):
                 g[ch] = (num[ch, ok] / den[ch, ok]).mean()
             else:
                 g[ch] = 1.0
-        if seg_rate / 2 > self.tracking_hz and g.shape[1] > 12:
-            sos = signal.butter(2, self.tracking_hz, fs=seg_rate, output="sos")
-            g = signal.sosfiltfilt(sos, g, axis=1, padlen=min(g.shape[1] - 1, 3 * int(seg_rate / self.tracking_hz)))
+        if response is not None:
+            g = smooth_gain(g, response, seg_rate, seg_env, self.tracking_hz)
         out = np.empty_like(xb)
         for ch in range(xb.shape[0]):
             out[ch] = np.interp(u, seg_u, g[ch])

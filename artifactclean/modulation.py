@@ -1,0 +1,199 @@
+"""How fast the artifact's amplitude changes, learned from the data.
+
+Electrode impedance follows heartbeat and respiration, so the artifact is
+multiplied by a slowly varying gain ``1 + m(t)``. An estimate of that gain
+from the data carries, besides ``m(t)``, the neural signal near the
+stimulation harmonics that projects on the artifact's shape (a floor in its
+spectrum). A fixed low-pass either leaves modulation (heartbeat harmonics
+above its cut-off put sidebands in the LFP) or follows the neural signal
+(and removes it). Here the gain is filtered by a zero-phase FIR whose
+response is a Wiener-type gain designed from the gain's own spectrum: the
+modulation lines that stand out of the floor pass, the floor between them
+does not.
+
+The response is designed once per stimulation block, from the middle of its
+plateau (see :meth:`TemplateSubtraction.prepare
+<artifactclean.estimators.TemplateSubtraction.prepare>`), so a block cleaned
+in pieces is filtered exactly as the whole block.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, signal
+
+__all__ = ["GainResponse", "segment_gain", "design_gain_response"]
+
+#: below this (Hz) the gain always passes: respiration (~0.2-0.5 Hz) and the filter's transition
+KEEP_HZ = 1.0
+#: half-length (s) of the gain filter; its resolution is about 1 / this
+HALF_S = 2.0
+#: envelope below which (margins, ramp feet) the gain is the envelope itself
+_FOOT = 0.02
+
+
+@dataclass
+class GainResponse:
+    """Amplitude response of the gain filter, per channel.
+
+    Attributes
+    ----------
+    freqs : ndarray, shape (n_freqs,)
+        From 0 to ``rate / 2`` (Hz).
+    response : ndarray, shape (n_channels, n_freqs)
+        Between 0 and 1.
+    rate : float
+        Rate (Hz) of the gain samples the response was designed for.
+    """
+
+    freqs: np.ndarray
+    response: np.ndarray
+    rate: float
+
+    def taps(self, ch: int, rate: float | None = None) -> np.ndarray:
+        """Symmetric FIR taps (``scipy.signal.firwin2``) for channel ``ch`` at ``rate``."""
+        rate = self.rate if rate is None else rate
+        nyq = rate / 2
+        f = np.concatenate((self.freqs[self.freqs < nyq], [nyq]))
+        r = np.interp(f, self.freqs, self.response[ch], right=0.0)
+        numtaps = 2 * int(HALF_S * rate) + 1
+        taps = signal.firwin2(numtaps, f, r, fs=rate, window="hann")
+        # the window smooths the response near 0 Hz too: restore a unit gain there exactly,
+        # or the whole artifact would be scaled by a few per cent
+        return taps / taps.sum()
+
+    def passed_lines(self, ch: int = 0) -> list[float]:
+        """Frequencies (Hz) above :data:`KEEP_HZ` where the response passes more than half."""
+        f, r = self.freqs, self.response[ch]
+        on = (r > 0.5) & (f > KEEP_HZ)
+        starts = np.flatnonzero(on & ~np.concatenate(([False], on[:-1])))
+        return [float(f[i]) for i in starts]
+
+
+def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
+                 per_cycle: int) -> tuple[np.ndarray, float]:
+    """Raw gain of each channel per part of a cycle against the stretch's mean cycle.
+
+    Parameters
+    ----------
+    x, w : ndarray, shape (n_channels, n)
+        Samples and their weights (0 for lost samples).
+    u : ndarray, shape (n,)
+        Stimulation phase in cycles (unwrapped).
+    fs, f : float
+        Sampling and stimulation frequency (Hz).
+    per_cycle : int
+        Gain samples per cycle.
+
+    Returns
+    -------
+    gain : ndarray, shape (n_channels, n_segments)
+        Least-squares scale of the mean cycle in each segment, relative to 1.
+    rate : float
+        Gain samples per second.
+    """
+    n_bins = max(8, int(round(fs / f)))
+    b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
+    seg = np.floor(u * per_cycle).astype(np.int64)
+    seg -= seg[0]
+    n_seg = int(seg[-1]) + 1
+    g = np.ones((x.shape[0], n_seg))
+    for ch in range(x.shape[0]):
+        cnt = np.bincount(b, w[ch], n_bins)
+        tmpl = np.bincount(b, w[ch] * x[ch], n_bins) / np.maximum(cnt, 1e-12)
+        tmpl -= tmpl.mean()
+        t = tmpl[b]
+        # with an offset per segment: the slow LFP is an offset over part of a cycle, and
+        # the part of a cycle a segment covers has a non-zero mean
+        sw = np.maximum(np.bincount(seg, w[ch], n_seg), 1e-12)
+        mx = np.bincount(seg, w[ch] * x[ch], n_seg) / sw
+        mt = np.bincount(seg, w[ch] * t, n_seg) / sw
+        num = np.bincount(seg, w[ch] * x[ch] * t, n_seg) - sw * mx * mt
+        den = np.bincount(seg, w[ch] * t * t, n_seg) - sw * mt * mt
+        ok = den > 0.1 * np.median(den)
+        if ok.sum() >= 2:
+            g[ch] = np.interp(np.arange(n_seg), np.flatnonzero(ok), num[ok] / den[ok])
+    return g, f * per_cycle
+
+
+def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_hz: float = 2.0,
+                         over_subtraction: float = 2.0) -> GainResponse:
+    """Response that passes the modulation lines of ``gain`` and stops its floor.
+
+    The periodogram of each channel's gain (``scipy.signal.welch``, 4 s
+    segments) is compared with its running median over ``floor_hz`` (the
+    floor: narrow lines do not move a median). The response is the
+    spectral-subtraction gain ``1 - a floor / P`` clipped to [0, 1], with an
+    over-subtraction factor ``a`` (Berouti, Schwartz & Makhoul 1979, ICASSP,
+    from memory) so that the floor's own fluctuations do not pass; 1 below
+    :data:`KEEP_HZ` and 0 above ``max_hz``.
+
+    Parameters
+    ----------
+    gain : ndarray, shape (n_channels, n_segments)
+    rate : float
+        Gain samples per second.
+    max_hz : float
+        Highest modulation frequency that may pass.
+    floor_hz, over_subtraction : float
+
+    Returns
+    -------
+    GainResponse
+    """
+    gain = np.atleast_2d(gain)
+    nper = min(gain.shape[1], int(4 * rate)) // 2 * 2
+    if nper < 8:
+        # too short to tell lines from floor: physiology alone (heartbeat below ~3 Hz)
+        freqs = np.linspace(0, rate / 2, 65)
+        resp = np.repeat((freqs <= min(3.0, max_hz)).astype(float)[None], gain.shape[0], axis=0)
+        return GainResponse(freqs, resp, rate)
+    freqs, p = signal.welch(gain, fs=rate, nperseg=nper, detrend="linear", axis=-1)
+    width = max(3, int(round(floor_hz / freqs[1])) | 1)
+    floor = ndimage.median_filter(p, size=(1, width), mode="nearest")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        resp = np.clip(1.0 - over_subtraction * floor / np.where(p > 0, p, np.inf), 0.0, 1.0)
+    # a line wanders (heart rate is not constant) and the FIR smooths the response over about
+    # 1 / HALF_S Hz: widen each passed line by a bin on either side so its centre passes whole
+    resp = ndimage.maximum_filter1d(resp, 3, axis=-1)
+    resp[:, freqs <= KEEP_HZ] = 1.0
+    resp[:, freqs > max_hz] = 0.0
+    return GainResponse(freqs, resp, rate)
+
+
+def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
+                envelope: np.ndarray | None = None, max_hz: float | None = None) -> np.ndarray:
+    """Filter each channel's gain sequence (zero phase, edges held) by ``response``.
+
+    With ``envelope`` (the block's ramps, shape (n_segments,), 1 on the
+    plateau), only the deviation from the scaled envelope is filtered, and
+    within the ramps (and :data:`HALF_S` / 2 around them) the deviation is
+    low-passed at ``max_hz`` instead: a ramp that is not exactly the linear
+    one of the block model is followed there, not rung by narrow lines.
+    """
+    out = np.empty_like(gain)
+    zone = None
+    if envelope is not None:
+        plateau = envelope > 0.99
+        reach = max(1, int(HALF_S / 2 * rate))
+        ramp = ndimage.maximum_filter1d((~plateau).astype(np.float64), 2 * reach + 1)
+        zone = ndimage.uniform_filter1d(ramp, reach, mode="nearest")
+        if max_hz is not None and zone.any():
+            broad = signal.firwin(2 * int(HALF_S * rate) + 1, min(max_hz, 0.45 * rate), fs=rate)
+    for ch in range(gain.shape[0]):
+        taps = response.taps(min(ch, response.response.shape[0] - 1), rate)
+        base = 0.0
+        if envelope is not None:
+            scale = np.median(gain[ch, plateau]) if plateau.any() else 1.0
+            base = scale * envelope
+        dev = gain[ch] - base
+        if envelope is not None:
+            # margins and ramp feet carry almost no artifact: a fitted gain there is noise over nothing
+            dev[envelope < _FOOT] = 0.0
+        fine = ndimage.convolve1d(dev, taps, mode="nearest")
+        if zone is not None and max_hz is not None and zone.any():
+            fine = (1 - zone) * fine + zone * ndimage.convolve1d(dev, broad, mode="nearest")
+        out[ch] = base + fine
+    return out

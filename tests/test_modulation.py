@@ -1,0 +1,66 @@
+"""The gain filter: modulation lines pass, the neural floor and ramps are handled."""
+
+import numpy as np
+from scipy import signal
+
+from artifactclean.modulation import KEEP_HZ, design_gain_response, segment_gain, smooth_gain
+
+
+def _gain_series(rng, rate=40.0, seconds=20.0, lines=((2.0, 0.02), (4.0, 0.01))):
+    t = np.arange(int(rate * seconds)) / rate
+    g = 1.0 + sum(a * np.cos(2 * np.pi * f * t + 0.3) for f, a in lines)
+    return t, g, g + 0.002 * rng.standard_normal(t.size)
+
+
+def test_response_passes_lines_and_stops_floor(rng):
+    rate = 40.0
+    _, truth, noisy = _gain_series(rng, rate)
+    resp = design_gain_response(noisy[None], rate, max_hz=10.0)
+    f, r = resp.freqs, resp.response[0]
+    at = lambda hz: r[np.argmin(np.abs(f - hz))]  # noqa: E731
+    assert at(2.0) > 0.9 and at(4.0) > 0.9
+    assert at(3.0) == 0.0 and at(7.0) == 0.0 and at(12.0) == 0.0
+    assert np.all(r[f <= KEEP_HZ] == 1.0)
+    assert [round(x) for x in resp.passed_lines()] == [2, 4]
+    # closer to the modulation than a fixed low-pass at the same top frequency
+    # (scipy.signal.butter + sosfiltfilt): the floor between the lines is cut
+    out = smooth_gain(noisy[None], resp, rate)[0]
+    fixed = signal.sosfiltfilt(signal.butter(2, 10.0, fs=rate, output="sos"), noisy)
+    inner = slice(100, -100)
+    assert np.std((out - truth)[inner]) < 0.7 * np.std((fixed - truth)[inner])
+
+
+def test_taps_have_unit_gain_at_zero_frequency(rng):
+    rate = 40.0
+    _, _, noisy = _gain_series(rng, rate)
+    resp = design_gain_response(noisy[None], rate, max_hz=10.0)
+    taps = resp.taps(0)
+    assert taps.size % 2 == 1 and np.allclose(taps, taps[::-1])
+    # scipy.signal.freqz as the reference for the FIR's response
+    _, h = signal.freqz(taps, worN=np.array([0.0, 2.0, 20.0 - 1e-9]), fs=rate)
+    assert abs(abs(h[0]) - 1.0) < 1e-12 and abs(h[1]) > 0.7 and abs(h[2]) < 0.05
+
+
+def test_envelope_ramps_are_followed_exactly(rng):
+    rate = 40.0
+    n = 800
+    env = np.clip(np.minimum(np.arange(n) / 80.0, (n - np.arange(n)) / 80.0), 0.0, 1.0)
+    _, _, noisy = _gain_series(rng, rate, seconds=n / rate)
+    resp = design_gain_response(noisy[None], rate, max_hz=10.0)
+    gain = 1.7 * env  # a pure ramped envelope, no modulation, scaled
+    out = smooth_gain(gain[None], resp, rate, env, max_hz=10.0)[0]
+    np.testing.assert_allclose(out, gain, atol=1e-9)
+
+
+def test_segment_gain_ignores_offsets(rng):
+    fs, f = 3000.0, 10.0
+    n = int(fs * 4)
+    u = np.arange(n) * f / fs
+    shape = np.sin(2 * np.pi * u) + 0.3 * np.sin(4 * np.pi * u + 1.0)
+    g_true = 1.0 + 0.05 * np.sin(2 * np.pi * 1.5 * np.arange(n) / fs)
+    offset = 50.0  # an LFP offset, larger than the modulation
+    x = (100.0 * g_true * shape + offset)[None]
+    g, rate = segment_gain(x, np.ones_like(x), u, fs, f, per_cycle=4)
+    assert rate == 40.0
+    centres = ((np.arange(g.shape[1]) + 0.5) / 4 * fs / f).astype(int)
+    np.testing.assert_allclose(g[0], g_true[np.minimum(centres, n - 1)], atol=0.03)
