@@ -24,7 +24,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, signal
 
-__all__ = ["GainResponse", "segment_gain", "design_gain_response"]
+__all__ = ["GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "segment_gain",
+           "segments_per_cycle", "smooth_gain"]
 
 #: below this (Hz) the gain always passes: respiration (~0.2-0.5 Hz) and the filter's transition
 KEEP_HZ = 1.0
@@ -70,6 +71,11 @@ class GainResponse:
         on = (r > 0.5) & (f > KEEP_HZ)
         starts = np.flatnonzero(on & ~np.concatenate(([False], on[:-1])))
         return [float(f[i]) for i in starts]
+
+
+def segments_per_cycle(tracking_hz: float, f: float) -> int:
+    """Gain samples per cycle: the gain is sampled at twice the Nyquist rate of ``tracking_hz``."""
+    return max(1, int(np.ceil(4 * tracking_hz / f)))
 
 
 def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
@@ -163,37 +169,50 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     return GainResponse(freqs, resp, rate)
 
 
-def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
-                envelope: np.ndarray | None = None, max_hz: float | None = None) -> np.ndarray:
-    """Filter each channel's gain sequence (zero phase, edges held) by ``response``.
+def lowpass_taps(cutoff_hz: float, rate: float) -> np.ndarray:
+    """Zero-phase FIR low-pass (``scipy.signal.firwin``) of the gain filter's length, unit gain at 0 Hz."""
+    taps = signal.firwin(2 * int(HALF_S * rate) + 1, min(cutoff_hz, 0.45 * rate), fs=rate)
+    return taps / taps.sum()
 
-    With ``envelope`` (the block's ramps, shape (n_segments,), 1 on the
-    plateau), only the deviation from the scaled envelope is filtered, and
-    within the ramps (and :data:`HALF_S` / 2 around them) the deviation is
-    low-passed at ``max_hz`` instead: a ramp that is not exactly the linear
-    one of the block model is followed there, not rung by narrow lines.
+
+def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: np.ndarray | None = None,
+                     max_hz: float | None = None) -> np.ndarray:
+    """Filter sequences (rows of ``seq``, sampled at ``rate``) by ``taps``, zero phase, edges held.
+
+    With ``envelope`` (the block's ramps per sample of the sequences, 1 on
+    the plateau), each sequence is split into its plateau median times the
+    envelope, followed exactly, and a deviation, which is filtered; within
+    the ramps (and :data:`HALF_S` / 2 around them) the deviation is
+    low-passed at ``max_hz`` instead, so a ramp that is not exactly the
+    linear one of the block model is followed there rather than rung by
+    narrow lines; where the envelope is below 2 % (margins, ramp feet) only
+    the envelope part is kept.
     """
-    out = np.empty_like(gain)
-    zone = None
-    if envelope is not None:
-        plateau = envelope > 0.99
+    seq = np.atleast_2d(seq)
+    if envelope is None:
+        return ndimage.convolve1d(seq, taps, axis=-1, mode="nearest")
+    # 0.9, not 1: a data-driven envelope breathes around 1 on the plateau
+    plateau = envelope > 0.9
+    scale = np.median(seq[:, plateau], axis=-1, keepdims=True) if plateau.any() else np.ones((seq.shape[0], 1))
+    base = scale * envelope[None, :]
+    dev = seq - base
+    # margins and ramp feet carry almost no artifact: a fitted value there is noise over nothing
+    dev[:, envelope < _FOOT] = 0.0
+    fine = ndimage.convolve1d(dev, taps, axis=-1, mode="nearest")
+    if max_hz is not None and not plateau.all():
         reach = max(1, int(HALF_S / 2 * rate))
         ramp = ndimage.maximum_filter1d((~plateau).astype(np.float64), 2 * reach + 1)
         zone = ndimage.uniform_filter1d(ramp, reach, mode="nearest")
-        if max_hz is not None and zone.any():
-            broad = signal.firwin(2 * int(HALF_S * rate) + 1, min(max_hz, 0.45 * rate), fs=rate)
+        broad = ndimage.convolve1d(dev, lowpass_taps(max_hz, rate), axis=-1, mode="nearest")
+        fine = (1 - zone) * fine + zone * broad
+    return base + fine
+
+
+def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
+                envelope: np.ndarray | None = None, max_hz: float | None = None) -> np.ndarray:
+    """Filter each channel's gain sequence by its ``response`` (see :func:`filter_sequences`)."""
+    out = np.empty_like(gain)
     for ch in range(gain.shape[0]):
         taps = response.taps(min(ch, response.response.shape[0] - 1), rate)
-        base = 0.0
-        if envelope is not None:
-            scale = np.median(gain[ch, plateau]) if plateau.any() else 1.0
-            base = scale * envelope
-        dev = gain[ch] - base
-        if envelope is not None:
-            # margins and ramp feet carry almost no artifact: a fitted gain there is noise over nothing
-            dev[envelope < _FOOT] = 0.0
-        fine = ndimage.convolve1d(dev, taps, mode="nearest")
-        if zone is not None and max_hz is not None and zone.any():
-            fine = (1 - zone) * fine + zone * ndimage.convolve1d(dev, broad, mode="nearest")
-        out[ch] = base + fine
+        out[ch] = filter_sequences(gain[ch:ch + 1], taps, rate, envelope, max_hz)[0]
     return out

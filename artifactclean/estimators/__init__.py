@@ -2,12 +2,14 @@
 
 from .base import ArtifactEstimator, validate_recording
 from .comb import NotchComb
+from .regression import HarmonicRegression
 from .template import TemplateSubtraction
 
 #: method name -> estimator class
 METHODS = {
     "template": TemplateSubtraction,
     "comb": NotchComb,
+    "regression": HarmonicRegression,
 }
 
 #: what :func:`artifactclean.clean` uses when no method is named
@@ -32,5 +34,5 @@ def make_estimator(method: str, **params) -> ArtifactEstimator:
     return cls(**params)
 
 
-__all__ = ["ArtifactEstimator", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
+__all__ = ["ArtifactEstimator", "HarmonicRegression", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
            "make_estimator", "validate_recording"]

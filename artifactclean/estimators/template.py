@@ -46,17 +46,14 @@ tenth of the noise.
 from __future__ import annotations
 
 
-import warnings
 
 import numpy as np
-from scipy import ndimage, signal
+from scipy import ndimage
 
-from ..clipping import find_clipped
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import design_gain_response, segment_gain, smooth_gain
-from ..staircase import find_dac_grid, step_rate
+from ..modulation import segments_per_cycle, smooth_gain
 from ._kernels import grouped_eval, phase_sums, segment_stats, tick_sums
-from .base import ArtifactEstimator
+from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
 __all__ = ["TemplateSubtraction"]
 
@@ -157,60 +154,7 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
 _KEEP = 5.0
 
 
-#: seconds of plateau the DAC grid is searched in
-_PLAN_S = 20.0
-
-#: steps per second (far above noise) that reveal a staircase no locked grid explains
-_UNLOCKED_STEPS = 50.0
-
-
-def _segments_per_cycle(tracking_hz: float, f: float) -> int:
-    """Gain samples per cycle: the gain is sampled at twice the Nyquist rate of ``tracking_hz``."""
-    return max(1, int(np.ceil(4 * tracking_hz / f)))
-
-
-def _block_key(blk) -> tuple:
-    """Identity of a stimulation block that survives StimulationModel.window()."""
-    return (round(blk.freq_hz, 9), round(blk.phase_ref, 9), blk.kind)
-
-
-def _trapezoid(n: int, blk, offset: int) -> np.ndarray:
-    """Block envelope on samples ``offset .. offset + n``: linear ramps, plateau 1, 0 outside."""
-    i = np.arange(offset, offset + n, dtype=np.float64)
-    up = (i - blk.start) / max(blk.ramp_up_stop - blk.start, 1) if blk.ramp_up_stop > blk.start else np.where(i >= blk.start, 1.0, 0.0)
-    down = (blk.stop - i) / max(blk.stop - blk.ramp_down_start, 1) if blk.stop > blk.ramp_down_start else np.where(i < blk.stop, 1.0, 0.0)
-    env = np.clip(np.minimum(up, down), 0.0, 1.0)
-    # a small floor keeps margin cycles (no artifact expected) from dividing by zero
-    return np.maximum(env, 1e-3)
-
-
-def _settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
-    """Put samples next to a DAC tick edge in whichever tick explains them best.
-
-    The phase model locates an edge to a fraction of a sample; the held
-    levels on either side tell where the edge actually fell. The neural
-    signal is slow next to a step, so each candidate is judged against the
-    residual two samples away on either side. ``read(keys)`` gives the
-    template (of this channel) at those tick keys.
-    """
-    n = x.size
-    hi = base_key.max()
-    new = base_key.copy()
-    for amb, step in ((amb_lo, -1), (amb_hi, 1)):
-        if amb.size == 0:
-            continue
-        around = np.concatenate([np.maximum(amb - 2, 0), np.minimum(amb + 2, n - 1)])
-        r = x[around] - g[around] * read(key[around])
-        base = 0.5 * (r[: amb.size] + r[amb.size:])
-        k0 = base_key[amb]
-        k1 = np.clip(k0 + step, 0, hi)
-        e0 = np.abs(x[amb] - g[amb] * read(k0) - base)
-        e1 = np.abs(x[amb] - g[amb] * read(k1) - base)
-        new[amb] = np.where(e1 < e0, k1, k0)
-    return np.maximum.accumulate(new)  # ticks never run backwards
-
-
-class TemplateSubtraction(ArtifactEstimator):
+class TemplateSubtraction(CycleEstimator):
     """Moving-window template subtraction with phase alignment and amplitude tracking.
 
     Parameters
@@ -308,53 +252,12 @@ class TemplateSubtraction(ArtifactEstimator):
             return int(self.n_cycles)
         return int(max(30, round(1.5 * freq)))
 
-    def work_ranges(self, model, fs: float) -> list[tuple[int, int]]:
-        """Sample ranges cleaned independently: each block plus its margins.
-
-        Stimulation-free stretches between them are left untouched, so a
-        file can be cleaned range by range with the same result as a whole
-        array.
-        """
-        blocks = sorted(model.blocks, key=lambda b: b.start)
-        n = model.n_samples
-        out = []
-        for i, b in enumerate(blocks):
-            margin = int(round(self.margin_cycles * fs / b.freq_hz))
-            lo_lim = 0 if i == 0 else (blocks[i - 1].stop + b.start) // 2
-            hi_lim = n if i == len(blocks) - 1 else (b.stop + blocks[i + 1].start) // 2
-            s, e = max(lo_lim, b.start - margin), min(hi_lim, b.stop + margin)
-            if e - s >= 4:
-                out.append((s, e, b))
-        return out
-
-    def _estimate(self, x, fs, model, lost):
-        art = np.zeros_like(x)
-        extra = np.zeros(x.shape, dtype=bool)
-        report = dict(blocks=[])
-        for s, e, b in self.work_ranges(model, fs):
-            u = model.cycles(b, s, e)
-            a, info, cen = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
-            art[:, s:e] = a
-            if cen is not None:
-                extra[:, s:e] |= cen
-            report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))
-        return art, report, extra
-
     # ------------------------------------------------------------------ one block
     def _block(self, xb, wb, u, fs, blk, offset):
         n_ch, n = xb.shape
         f = blk.freq_hz
         k_half = self._window(f)
-        plan = getattr(self, "_plans", {}).get(_block_key(blk))
-        if plan is None:
-            # the block's stretch for the DAC search lies inside this array
-            plan = self._plan(lambda a, b: xb[:, a - offset:b - offset], blk, fs)
-        ref, grid, unlocked, response = plan
-        if unlocked > _UNLOCKED_STEPS:
-            warnings.warn(
-                f"a DAC staircase ({unlocked:.0f} steps/s) that is not locked to the {f:.3f} Hz cycle: the "
-                "template cannot follow it and a spike-band residual will remain; check the result with "
-                "the validation figures", stacklevel=4)
+        ref, grid, unlocked, response = self._block_plan(xb, blk, fs, offset)
         if grid is not None:
             n_bins = grid.ticks_per_cycle
             key = grid.tick_index(u)
@@ -396,7 +299,7 @@ class TemplateSubtraction(ArtifactEstimator):
             alpha = bpos - b0f
             reader = _group_position(uc, stride, n_groups) + (np.mod(b0f, n_bins), np.mod(b0f + 1, n_bins), alpha)
         # gain segments: enough per cycle to sample the tracking band
-        per_cycle = _segments_per_cycle(self.tracking_hz, f)
+        per_cycle = segments_per_cycle(self.tracking_hz, f)
         seg = np.floor(u * per_cycle).astype(np.int64)
         seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
         seg_u = (seg[seg_starts] + 0.5) / per_cycle
@@ -407,7 +310,7 @@ class TemplateSubtraction(ArtifactEstimator):
                                       n_bins, stride, k_groups, n_groups)
         # start from the block's trapezoid (linear ramps), so that the first templates are not
         # ramp averages; the fitted gain takes over from the second pass
-        trap = _trapezoid(n, blk, offset)
+        trap = trapezoid(n, blk, offset)
         gain = np.repeat(trap[None, :], n_ch, axis=0)
         seg_env = trap[(seg_starts + np.append(seg_starts[1:], n)) // 2]
         # phases clipped anywhere in the window are left out of every fit, not only the
@@ -422,7 +325,7 @@ class TemplateSubtraction(ArtifactEstimator):
             denoise = self.denoise and it == passes - 1
             if sampler is None:
                 if it > 0:
-                    key = _settle_edges(xb[ref], gain[ref], lambda k: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
+                    key = settle_edges(xb[ref], gain[ref], lambda k: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
                                         key, base_key, amb_lo, amb_hi)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups)
@@ -432,7 +335,7 @@ class TemplateSubtraction(ArtifactEstimator):
             if self.track_amplitude:
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle, response, seg_env)
             if self.robust and it == passes - 2:
-                w, n_out = self._drop_outliers(xb - gain * t_n, wb, fs, u, max(4, k_half // 2))
+                w, n_out = spike_outliers(xb - gain * t_n, wb, fs, u, max(4, k_half // 2), self.outlier_z)
         info = dict(
             freq_hz=f,
             n_cycles=(2 * k_groups + 1) * stride,
@@ -446,48 +349,6 @@ class TemplateSubtraction(ArtifactEstimator):
             unlocked_dac_steps_per_s=float(unlocked),
         )
         return gain * t_n, info, censored
-
-    def prepare(self, read, model, fs: float) -> None:
-        """Decide, once per block, what must not depend on how a recording is cut.
-
-        File pieces call this before cleaning a block piece by piece:
-        ``read(a, b)`` returns samples ``a..b`` of all channels. The DAC grid
-        (and the channel it is read from) comes from the middle of the
-        block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
-        whole array is cleaned at once.
-        """
-        self._plans = {_block_key(b): self._plan(read, b, fs) for b in model.blocks}
-
-    def _plan(self, read, blk, fs):
-        f = blk.freq_hz
-        p0, p1 = blk.ramp_up_stop, blk.ramp_down_start
-        if p1 - p0 < 10 * fs / f:
-            p0, p1 = blk.start, blk.stop
-        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
-        # at most _PLAN_S s, less for many channels (memory), never under a second
-        span = max(1.0, min(_PLAN_S, _PLAN_S * 8 / max(n_ch, 1)))
-        half = int(min(span * fs, p1 - p0) // 2)
-        mid = (p0 + p1) // 2
-        a, b = mid - half, mid + half
-        x = np.asarray(read(a, b), dtype=np.float64)
-        # the strongest channel shows the DAC steps best; a clipped one shows rail edges instead
-        spread = np.std(x, axis=1)
-        intact = ~find_clipped(x, dilate=0).any(axis=1)
-        ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
-        if b - a < 16:
-            return ref, None, 0.0, None
-        cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        response = None
-        if self.track_amplitude:
-            per_cycle = _segments_per_cycle(self.tracking_hz, f)
-            raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
-            response = design_gain_response(raw, rate, max_hz=self.tracking_hz)
-        if self.dac != "auto":
-            return ref, None, 0.0, response
-        grid = find_dac_grid(x[ref], cycles, fs, f)
-        # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow
-        unlocked = step_rate(x[ref], fs) if grid is None else 0.0
-        return ref, grid, unlocked, response
 
     def _censored(self, wb, sampler, key, reader, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.
@@ -554,41 +415,3 @@ class TemplateSubtraction(ArtifactEstimator):
         for ch in range(xb.shape[0]):
             out[ch] = np.interp(u, seg_u, g[ch])
         return out
-
-    def _drop_outliers(self, resid, wb, fs, u, span_cycles):
-        """Zero the weight of spike-band outliers (and 1 ms around them).
-
-        The threshold is set stretch by stretch (``span_cycles`` cycles, counted
-        from absolute cycle numbers), so it follows slow changes of the noise
-        and a piece of a block flags what the whole block would.
-        """
-        sos = signal.butter(2, min(300.0, 0.4 * fs), btype="highpass", fs=fs, output="sos")
-        # lost samples carry no residual (zero), so their edges do not ring into flags
-        hp = np.abs(signal.sosfilt(sos, resid * (wb > 0), axis=1))
-        bad = np.zeros(hp.shape, dtype=bool)
-        stretch = np.floor(u / span_cycles).astype(np.int64)
-        bounds = np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
-        for ch in range(hp.shape[0]):
-            for a, b in zip(bounds[:-1], bounds[1:]):
-                seg, ok = hp[ch, a:b], wb[ch, a:b] > 0
-                use = seg[ok]
-                if use.size < 16:
-                    continue
-                # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
-                # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
-                med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
-                thr = max(self.outlier_z * 1.4826 * med, q99, 1e-12)
-                bad[ch, a:b] = (seg > thr) & ok
-        half = max(1, int(round(1e-3 * fs)))
-        # widen each flag by `half` samples: a difference array over the (few) flagged samples
-        n = bad.shape[1]
-        spread = np.zeros(bad.shape, dtype=bool)
-        for ch in range(bad.shape[0]):
-            idx = np.flatnonzero(bad[ch])
-            if idx.size:
-                d = np.zeros(n + 1, dtype=np.int32)
-                np.add.at(d, np.maximum(idx - half, 0), 1)
-                np.add.at(d, np.minimum(idx + half + 1, n), -1)
-                spread[ch] = np.cumsum(d[:n]) > 0
-        w = wb * ~spread
-        return w, int(spread.sum())

@@ -1,0 +1,451 @@
+"""What every estimator that works cycle by cycle shares.
+
+* :class:`CycleEstimator`: cleans each stimulation block (plus margins) on
+  its own, and decides once per block, from the middle of its plateau, what
+  must not depend on how a recording is cut (the channel the DAC is read
+  from, the DAC grid, the gain filter): :meth:`CycleEstimator.prepare`;
+* :class:`CycleGrid`: a block's samples on a grid of phase bins, one row per
+  stimulation cycle (exact sub-sample phase: a cycle is not a whole number
+  of samples), or on the DAC ticks when a staircase is locked to the cycle;
+  and back from the grid to the samples;
+* helpers: the block's ramp envelope, spike-band outliers, DAC edge samples.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+from scipy import ndimage, signal
+
+from ..clipping import find_clipped
+from ..modulation import _FOOT, HALF_S, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, segment_gain, \
+    segments_per_cycle
+from ..staircase import find_dac_grid, step_rate
+from ._kernels import grouped_eval
+from .base import ArtifactEstimator
+
+__all__ = ["CycleEstimator", "CycleGrid", "RowModelEstimator", "block_key", "fill_rows", "noise_of_sequences",
+           "settle_edges", "spike_outliers", "trapezoid"]
+
+#: seconds of plateau the DAC grid is searched in
+_PLAN_S = 20.0
+
+#: steps per second (far above noise) that reveal a staircase no locked grid explains
+_UNLOCKED_STEPS = 50.0
+
+
+def block_key(blk) -> tuple:
+    """Identity of a stimulation block that survives StimulationModel.window()."""
+    return (round(blk.freq_hz, 9), round(blk.phase_ref, 9), blk.kind)
+
+
+def trapezoid(n: int, blk, offset: int) -> np.ndarray:
+    """Block envelope on samples ``offset .. offset + n``: linear ramps, plateau 1, 0 outside."""
+    i = np.arange(offset, offset + n, dtype=np.float64)
+    up = (i - blk.start) / max(blk.ramp_up_stop - blk.start, 1) if blk.ramp_up_stop > blk.start else np.where(i >= blk.start, 1.0, 0.0)
+    down = (blk.stop - i) / max(blk.stop - blk.ramp_down_start, 1) if blk.stop > blk.ramp_down_start else np.where(i < blk.stop, 1.0, 0.0)
+    env = np.clip(np.minimum(up, down), 0.0, 1.0)
+    # a small floor keeps margin cycles (no artifact expected) from dividing by zero
+    return np.maximum(env, 1e-3)
+
+
+def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
+    """Put samples next to a DAC tick edge in whichever tick explains them best.
+
+    The phase model locates an edge to a fraction of a sample; the held
+    levels on either side tell where the edge actually fell. The neural
+    signal is slow next to a step, so each candidate is judged against the
+    residual two samples away on either side. ``read(keys)`` gives the
+    template (of this channel) at those tick keys.
+    """
+    n = x.size
+    hi = base_key.max()
+    new = base_key.copy()
+    for amb, step in ((amb_lo, -1), (amb_hi, 1)):
+        if amb.size == 0:
+            continue
+        around = np.concatenate([np.maximum(amb - 2, 0), np.minimum(amb + 2, n - 1)])
+        r = x[around] - g[around] * read(key[around])
+        base = 0.5 * (r[: amb.size] + r[amb.size:])
+        k0 = base_key[amb]
+        k1 = np.clip(k0 + step, 0, hi)
+        e0 = np.abs(x[amb] - g[amb] * read(k0) - base)
+        e1 = np.abs(x[amb] - g[amb] * read(k1) - base)
+        new[amb] = np.where(e1 < e0, k1, k0)
+    return np.maximum.accumulate(new)  # ticks never run backwards
+
+
+def spike_outliers(resid, wb, fs, u, span_cycles, outlier_z):
+    """Zero the weight of spike-band outliers (and 1 ms around them) in ``wb``; return it and the count.
+
+    The threshold is set stretch by stretch (``span_cycles`` cycles, counted
+    from absolute cycle numbers), so it follows slow changes of the noise
+    and a piece of a block flags what the whole block would.
+    """
+    sos = signal.butter(2, min(300.0, 0.4 * fs), btype="highpass", fs=fs, output="sos")
+    # lost samples carry no residual (zero), so their edges do not ring into flags
+    hp = np.abs(signal.sosfilt(sos, resid * (wb > 0), axis=1))
+    bad = np.zeros(hp.shape, dtype=bool)
+    stretch = np.floor(u / span_cycles).astype(np.int64)
+    bounds = np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
+    for ch in range(hp.shape[0]):
+        for a, b in zip(bounds[:-1], bounds[1:]):
+            seg, ok = hp[ch, a:b], wb[ch, a:b] > 0
+            use = seg[ok]
+            if use.size < 16:
+                continue
+            # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
+            # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
+            med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
+            thr = max(outlier_z * 1.4826 * med, q99, 1e-12)
+            bad[ch, a:b] = (seg > thr) & ok
+    half = max(1, int(round(1e-3 * fs)))
+    # widen each flag by `half` samples: a difference array over the (few) flagged samples
+    n = bad.shape[1]
+    spread = np.zeros(bad.shape, dtype=bool)
+    for ch in range(bad.shape[0]):
+        idx = np.flatnonzero(bad[ch])
+        if idx.size:
+            d = np.zeros(n + 1, dtype=np.int32)
+            np.add.at(d, np.maximum(idx - half, 0), 1)
+            np.add.at(d, np.minimum(idx + half + 1, n), -1)
+            spread[ch] = np.cumsum(d[:n]) > 0
+    w = wb * ~spread
+    return w, int(spread.sum())
+
+
+class CycleEstimator(ArtifactEstimator):
+    """Base of the estimators that model the artifact cycle by cycle within each block.
+
+    Subclasses provide ``_block(xb, wb, u, fs, blk, offset)`` returning the
+    artifact of one work range, a dict for the report and optionally a mask
+    of further lost samples; and the parameters ``margin_cycles``, ``dac``,
+    ``track_amplitude``, ``tracking_hz``.
+    """
+
+    def work_ranges(self, model, fs: float) -> list[tuple[int, int]]:
+        """Sample ranges cleaned independently: each block plus its margins.
+
+        Stimulation-free stretches between them are left untouched, so a
+        file can be cleaned range by range with the same result as a whole
+        array.
+        """
+        blocks = sorted(model.blocks, key=lambda b: b.start)
+        n = model.n_samples
+        out = []
+        for i, b in enumerate(blocks):
+            margin = int(round(self.margin_cycles * fs / b.freq_hz))
+            lo_lim = 0 if i == 0 else (blocks[i - 1].stop + b.start) // 2
+            hi_lim = n if i == len(blocks) - 1 else (b.stop + blocks[i + 1].start) // 2
+            s, e = max(lo_lim, b.start - margin), min(hi_lim, b.stop + margin)
+            if e - s >= 4:
+                out.append((s, e, b))
+        return out
+
+    def _estimate(self, x, fs, model, lost):
+        art = np.zeros_like(x)
+        extra = np.zeros(x.shape, dtype=bool)
+        report = dict(blocks=[])
+        for s, e, b in self.work_ranges(model, fs):
+            u = model.cycles(b, s, e)
+            a, info, cen = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
+            art[:, s:e] = a
+            if cen is not None:
+                extra[:, s:e] |= cen
+            report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))
+        return art, report, extra
+
+    def prepare(self, read, model, fs: float) -> None:
+        """Decide, once per block, what must not depend on how a recording is cut.
+
+        File pieces call this before cleaning a block piece by piece:
+        ``read(a, b)`` returns samples ``a..b`` of all channels. The DAC grid
+        (and the channel it is read from) comes from the middle of the
+        block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
+        whole array is cleaned at once.
+        """
+        self._plans = {block_key(b): self._plan(read, b, fs) for b in model.blocks}
+
+    def _plan(self, read, blk, fs):
+        f = blk.freq_hz
+        p0, p1 = blk.ramp_up_stop, blk.ramp_down_start
+        if p1 - p0 < 10 * fs / f:
+            p0, p1 = blk.start, blk.stop
+        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+        # at most _PLAN_S s, less for many channels (memory), never under a second
+        span = max(1.0, min(_PLAN_S, _PLAN_S * 8 / max(n_ch, 1)))
+        half = int(min(span * fs, p1 - p0) // 2)
+        mid = (p0 + p1) // 2
+        a, b = mid - half, mid + half
+        x = np.asarray(read(a, b), dtype=np.float64)
+        # the strongest channel shows the DAC steps best; a clipped one shows rail edges instead
+        spread = np.std(x, axis=1)
+        intact = ~find_clipped(x, dilate=0).any(axis=1)
+        ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
+        if b - a < 16:
+            return ref, None, 0.0, None
+        cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        response = None
+        if self.track_amplitude:
+            per_cycle = segments_per_cycle(self.tracking_hz, f)
+            raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+            response = design_gain_response(raw, rate, max_hz=self.tracking_hz)
+        if self.dac != "auto":
+            return ref, None, 0.0, response
+        grid = find_dac_grid(x[ref], cycles, fs, f)
+        # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow
+        unlocked = step_rate(x[ref], fs) if grid is None else 0.0
+        return ref, grid, unlocked, response
+
+    def _block_plan(self, xb, blk, fs, offset):
+        """The block's plan (from :meth:`prepare`, or made from ``xb`` now), warning on an unlocked DAC."""
+        plan = getattr(self, "_plans", {}).get(block_key(blk))
+        if plan is None:
+            # the block's stretch for the DAC search lies inside this array
+            plan = self._plan(lambda a, b: xb[:, a - offset:b - offset], blk, fs)
+        ref, grid, unlocked, response = plan
+        if unlocked > _UNLOCKED_STEPS:
+            warnings.warn(
+                f"a DAC staircase ({unlocked:.0f} steps/s) that is not locked to the {blk.freq_hz:.3f} Hz "
+                f"cycle: {type(self).__name__} cannot follow it and a spike-band residual will remain; check "
+                "the result with the validation figures", stacklevel=5)
+        return ref, grid, unlocked, response
+
+
+
+class CycleGrid:
+    """A work range's samples on a grid of phase bins, one row per stimulation cycle.
+
+    Without a DAC, a cycle is divided into ``n_bins`` (about one per sample)
+    bins; :meth:`gather` reads the data at the exact phase of each bin centre
+    (linear interpolation between samples: the phase is linear in samples
+    within a block), :meth:`scatter` reads a grid back at each sample's phase
+    (linear interpolation between bin centres, across cycle boundaries too).
+    With a DAC grid, the bins are its ticks: every sample of a tick holds one
+    value, so :meth:`gather` averages a tick's samples and :meth:`scatter`
+    gives each sample its tick's value (samples within a quarter sample of an
+    edge are left out of the averages and put in the tick that explains them).
+
+    Parameters
+    ----------
+    u : ndarray, shape (n,)
+        Unwrapped stimulation phase (cycles) of the range's samples.
+    fs, f : float
+        Sampling and stimulation frequency (Hz).
+    dac : DacGrid or None
+    """
+
+    def __init__(self, u: np.ndarray, fs: float, f: float, dac=None):
+        n = u.size
+        self.n = n
+        self.dac = dac
+        if dac is not None:
+            self.n_bins = int(dac.ticks_per_cycle)
+            key = dac.tick_index(u)
+            edge = dac.edge_distance(u)
+            delta = 0.25 * self.n_bins * f / fs
+            self.amb_lo = np.flatnonzero(edge < delta)
+            self.amb_hi = np.flatnonzero(edge > 1 - delta)
+        else:
+            self.n_bins = max(4, int(round(fs / f)))
+            key = np.floor(u * self.n_bins).astype(np.int64)
+        self.row0 = int(key[0] // self.n_bins)
+        self.key = key - self.row0 * self.n_bins
+        self.n_rows = int(self.key[-1] // self.n_bins) + 1
+        n_grid = self.n_rows * self.n_bins
+        uc = u - self.row0
+        if dac is None:
+            slope = (u[-1] - u[0]) / max(n - 1, 1)
+            pos = ((np.arange(n_grid) + 0.5) / self.n_bins - uc[0]) / slope
+            self._inside = ((pos >= 0) & (pos <= n - 1)).astype(np.float64)
+            self._gi = np.clip(np.floor(pos).astype(np.int64), 0, max(n - 2, 0))
+            self._ga = np.clip(pos - self._gi, 0.0, 1.0)
+            # reading back: between bin centres within a cycle (periodic) ...
+            bp = np.mod(uc, 1.0) * self.n_bins - 0.5
+            b0 = np.floor(bp).astype(np.int64)
+            self._alpha = bp - b0
+            self._b0, self._b1 = np.mod(b0, self.n_bins), np.mod(b0 + 1, self.n_bins)
+        else:
+            self._b0 = self._b1 = np.mod(self.key, self.n_bins)
+            self._alpha = np.zeros(n)
+        # ... and between the rows whose centres bracket the sample: rows fitted one by one
+        # differ a little, and switching at cycle edges would leave steps in the spike band
+        q = uc - 0.5
+        self._r0 = np.clip(np.floor(q).astype(np.int64), 0, self.n_rows - 1)
+        self._r1 = np.minimum(self._r0 + 1, self.n_rows - 1)
+        self._beta = np.clip(q - self._r0, 0.0, 1.0)
+        # sample index of each row's centre, for envelopes and gains per cycle
+        slope = (u[-1] - u[0]) / max(n - 1, 1)
+        self.row_centres = np.clip(np.round((np.arange(self.n_rows) + 0.5 - uc[0]) / slope), 0, n - 1).astype(np.int64)
+
+    def gather(self, x: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Grid values and weights (0 where no usable sample), both (n_channels, n_rows, n_bins)."""
+        n_ch = x.shape[0]
+        shape = (n_ch, self.n_rows, self.n_bins)
+        if self.dac is None:
+            gi, ga = self._gi, self._ga
+            v = x[:, gi] * (1 - ga) + x[:, gi + 1] * ga
+            wt = w[:, gi] * w[:, gi + 1] * self._inside
+            return v.reshape(shape), (wt > 0).astype(np.float64).reshape(shape)
+        use = w.copy()
+        use[:, self.amb_lo] = 0.0
+        use[:, self.amb_hi] = 0.0
+        m = self.n_rows * self.n_bins
+        v = np.zeros((n_ch, m))
+        wt = np.zeros((n_ch, m))
+        for ch in range(n_ch):
+            cnt = np.bincount(self.key, use[ch], m)
+            v[ch] = np.bincount(self.key, use[ch] * x[ch], m) / np.maximum(cnt, 1e-300)
+            wt[ch] = cnt > 0.5
+        return v.reshape(shape), wt.reshape(shape)
+
+    def scatter(self, grid: np.ndarray, x: np.ndarray | None = None) -> np.ndarray:
+        """Values of ``grid`` (n_channels, n_rows, n_bins) at every sample, (n_channels, n).
+
+        With a DAC and ``x`` given, samples next to a tick edge take whichever
+        tick explains them best in ``x`` (channel by channel).
+        """
+        flat = np.ascontiguousarray(grid.reshape(grid.shape[0], -1))
+        read = lambda b0, b1, alpha: grouped_eval(flat, self.n_bins, self._r0, self._r1, self._beta,  # noqa: E731
+                                                  b0, b1, alpha)
+        if self.dac is None or x is None or (self.amb_lo.size == 0 and self.amb_hi.size == 0):
+            return read(self._b0, self._b1, self._alpha)
+        out = np.empty((flat.shape[0], self.n))
+        ones = np.ones(self.n)
+        for ch in range(flat.shape[0]):
+            one = flat[ch:ch + 1]
+            at = lambda k, one=one: one[0, k]  # noqa: E731  (the row's own value decides)
+            key = settle_edges(x[ch], ones, at, self.key, self.key, self.amb_lo, self.amb_hi)
+            b = np.mod(key, self.n_bins)
+            out[ch] = grouped_eval(one, self.n_bins, self._r0, self._r1, self._beta, b, b, self._alpha)[0]
+        return out
+
+
+class RowModelEstimator(CycleEstimator):
+    """Base of the estimators that model the rows (cycles) of a :class:`CycleGrid`.
+
+    A work range is put on the grid, ``_fit_rows`` models each channel's
+    rows, and the model is read back at the samples. With ``robust``, the
+    spike-band outliers of the first model's residual are left out and the
+    rows fitted again (their bins filled by :func:`fill_rows`).
+
+    Subclasses implement ``_fit_rows(v, w, env, taps_fast, taps_slow, rate)``
+    for one channel: ``v, w`` of shape (n_rows, n_bins), ``env`` the block
+    envelope per row, the two row filters and the row rate; it returns the
+    modelled rows and a dict of what it chose.
+    """
+
+    def _block(self, xb, wb, u, fs, blk, offset):
+        ref, dac, unlocked, response = self._block_plan(xb, blk, fs, offset)
+        f = blk.freq_hz
+        grid = CycleGrid(u, fs, f, dac)
+        env = trapezoid(xb.shape[1], blk, offset)[grid.row_centres]
+        # rows are cycles: sequences along rows are sampled at f
+        slow = lowpass_taps(KEEP_HZ, f)
+        v, w = grid.gather(xb, wb)
+        n_out = 0
+        passes = 2 if self.robust else 1
+        for it in range(passes):
+            rows = np.empty_like(v)
+            chosen = []
+            for ch in range(xb.shape[0]):
+                fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
+                g_row, vd, wd = self._demodulate(v[ch], w[ch], env, fast, f)
+                rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f)
+                chosen.append(info)
+            art = grid.scatter(rows, xb)
+            if it < passes - 1:
+                w_out, n_out = spike_outliers(xb - art, wb, fs, u, 30, self.outlier_z)
+                v, w = grid.gather(xb, w_out)
+        report = dict(freq_hz=f, bins_per_cycle=grid.n_bins,
+                      dac_ticks_per_cycle=None if dac is None else dac.ticks_per_cycle,
+                      modulation_lines_hz=[] if response is None else response.passed_lines(ref),
+                      outliers_left_out=int(n_out), unlocked_dac_steps_per_s=float(unlocked),
+                      channels=chosen)
+        return art, report, None
+
+    def _demodulate(self, v, w, env, taps, rate):
+        """The envelope of the rows as the data show it, and the rows rescaled to their centres.
+
+        The strongest harmonic's amplitude (the fundamental, normally),
+        followed by the gain filter, gives the envelope per row: ramps of any
+        shape and the common modulation of impedance, which scales every
+        harmonic alike. Within a row the envelope still changes (on a ramp,
+        or with the heartbeat); each bin is rescaled to its row centre's
+        envelope, so that a row is one periodic shape (a change within the
+        row would look like a step at its edge, which has every harmonic).
+        Reading back interpolates between row centres, which restores the
+        change. Bins where the envelope is below 2 % (margins, ramp feet)
+        are left out.
+        """
+        n_rows, n_bins = v.shape
+        filled = fill_rows(v, w, env)
+        filled = filled - filled.mean(axis=1, keepdims=True)
+        plateau = env > 0.99
+        k = np.arange(1, n_bins // 2 + 1)
+        coef = np.fft.rfft(filled, axis=1)[:, 1:]
+        power = np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)
+        lead = coef[:, int(np.argmax(power))] if k.size else np.ones(n_rows)
+        pair = filter_sequences(np.stack([lead.real, lead.imag]), taps, rate, env, self.tracking_hz)
+        mag = np.hypot(pair[0], pair[1])
+        level = np.median(mag[plateau]) if plateau.any() else max(float(mag.max()), 1e-300)
+        g_row = np.where(env < _FOOT, env, mag / max(level, 1e-300))
+        centres = np.arange(n_rows) + 0.5
+        at_bins = np.arange(n_rows)[:, None] + (np.arange(n_bins)[None, :] + 0.5) / n_bins
+        g_bin = np.interp(at_bins.ravel(), centres, g_row).reshape(n_rows, n_bins)
+        ok = g_bin >= _FOOT
+        vd = np.where(ok, v * g_row[:, None] / np.where(ok, g_bin, 1.0), 0.0)
+        return g_row, vd, w * ok
+
+    def context_seconds(self, freq_hz: float) -> float:
+        """Context (s) an output sample needs on each side: the row filters' reach, per pass."""
+        passes = 2 if self.robust else 1
+        return passes * (HALF_S + 2.0 / freq_hz) + self.margin_cycles / freq_hz
+
+    def _validate_params(self) -> None:
+        if not self.tracking_hz > 0:
+            raise ValueError(f"tracking_hz must be positive, got {self.tracking_hz!r}")
+        if self.dac not in ("auto", "off"):
+            raise ValueError(f"dac must be 'auto' or 'off', got {self.dac!r}")
+        if not self.margin_cycles >= 0:
+            raise ValueError(f"margin_cycles must be >= 0, got {self.margin_cycles!r}")
+        if not self.outlier_z > 0:
+            raise ValueError(f"outlier_z must be positive, got {self.outlier_z!r}")
+
+    #: the gain filter is always designed for these estimators (their rows follow the modulation)
+    track_amplitude = True
+
+
+def fill_rows(v: np.ndarray, w: np.ndarray, env: np.ndarray, half_rows: int = 15) -> np.ndarray:
+    """Rows with unusable bins (lost, or left out as spikes) filled from the same bin nearby.
+
+    A filled bin takes the weighted mean of its bin over ``half_rows`` rows
+    on either side, scaled by the envelope, so neither spikes nor clipped
+    peaks enter the fit through the filling; bins with no usable neighbour
+    take the envelope times the block's mean cycle.
+    """
+    if np.all(w > 0):
+        return v
+    e = np.maximum(env, 1e-3)[:, None]
+    size = 2 * half_rows + 1
+    num = ndimage.uniform_filter1d(w * v * e, size, axis=0, mode="constant")
+    den = ndimage.uniform_filter1d(w * e * e, size, axis=0, mode="constant")
+    total = (w * e * e).sum(axis=0)
+    mean = (w * v * e).sum(axis=0) / np.maximum(total, 1e-300)
+    near = den > 1e-3 * np.maximum(den.max(axis=0, keepdims=True), 1e-300)
+    local = np.where(near, num / np.where(near, den, 1.0), mean[None, :]) * e
+    return np.where(w > 0, v, local)
+
+
+def noise_of_sequences(seq: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+    """Noise variance of each column of ``seq`` (n_rows, k) from consecutive differences.
+
+    Differences cancel what changes slowly from row to row (the artifact);
+    for Gaussian noise ``|d|^2`` has median ``2 sigma^2 ln 2`` (complex) or
+    ``2 sigma^2 x 0.4549`` (real, the median of chi-square with one degree
+    of freedom): medians, so spikes do not count.
+    """
+    d = np.diff(seq if rows is None else seq[rows], axis=0)
+    med = np.median(np.abs(d) ** 2, axis=0)
+    return med / (2 * np.log(2)) if np.iscomplexobj(seq) else med / (2 * 0.45494)

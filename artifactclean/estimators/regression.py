@@ -1,0 +1,131 @@
+"""Sinusoid (harmonic) regression with amplitude tracking.
+
+The artifact is modelled as a sum of harmonics of the stimulation phase,
+``sum_h a_h(t) cos(2 pi h u) + b_h(t) sin(2 pi h u)``, whose in-phase and
+quadrature amplitudes change slowly in time.
+
+How the amplitudes are fitted, and why this way
+-----------------------------------------------
+Each cycle is put on a grid of phase bins (exact sub-sample phase, or the
+DAC ticks; :class:`~artifactclean.estimators.cycles.CycleGrid`) and its
+discrete Fourier transform gives the least-squares ``a_h, b_h`` of that
+cycle for every harmonic at once (the harmonics are orthogonal over a whole
+cycle, so per-cycle regression is an FFT). The per-cycle amplitudes are
+then smoothed across cycles by zero-phase FIR filters: a windowed basis
+whose frequency response is explicit, which a spline or state-space
+smoother would only give implicitly. Two filters per channel:
+
+* *fast*: the gain filter designed per block from the data
+  (:mod:`artifactclean.modulation`): it passes the heartbeat and
+  respiration lines that stand out of the neural floor, up to
+  ``tracking_hz`` (and below ``f / 2``, the rate of cycles);
+* *slow*: a low-pass at 1 Hz (respiration and slow drifts only).
+
+For each harmonic the data choose: the fast filter when the modulation it
+follows exceeds the extra noise it lets through (both measured: noise from
+consecutive-cycle differences, modulation from the difference between the
+two filtered sequences), and the harmonic is kept at all only when its
+fitted power stands well above the noise it would add. The number of
+harmonics therefore follows the data; ``n_harmonics`` caps it. Ramps are
+followed exactly through the block envelope (see
+:func:`artifactclean.modulation.filter_sequences`).
+
+What it removes and what it cannot
+----------------------------------
+It removes, for each kept harmonic, everything within the fast filter's
+passband (the modulation lines and 1 Hz around the harmonic) or the slow
+filter's (1 Hz): neural signal there, oscillations locked to the
+stimulation included, cannot be told from the artifact by any
+single-channel method and goes with it. Modulation faster than half the
+stimulation frequency cannot be followed per harmonic (the cycles sample
+it too slowly): below ~10 Hz stimulation the heartbeat's harmonics stay as
+sidebands, where the template's gain per part of a cycle does better. A
+DAC staircase not locked to the cycle is not modelled.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .cycles import RowModelEstimator, fill_rows, noise_of_sequences
+from ..modulation import filter_sequences
+
+__all__ = ["HarmonicRegression"]
+
+
+class HarmonicRegression(RowModelEstimator):
+    """Harmonic regression of the artifact with per-harmonic amplitude tracking.
+
+    Parameters
+    ----------
+    n_harmonics : int or None
+        Most harmonics modelled; None lets the data decide (up to the
+        grid's Nyquist harmonic).
+    tracking_hz : float
+        Highest modulation frequency followed (see
+        :class:`~artifactclean.estimators.TemplateSubtraction`).
+    robust : bool
+        Refit with spike-band outliers (spikes) left out.
+    dac : {"auto", "off"}
+        Model a DAC staircase locked to the cycle on its ticks.
+    margin_cycles : float
+        Cycles beyond each block edge that are also cleaned.
+    outlier_z : float
+        Robust z-score of a spike-band outlier.
+    keep_factor : float
+        A harmonic is kept when its fitted power exceeds this many times the
+        noise power its estimate carries (4: common practice for a detection
+        on a chi-square statistic).
+
+    Attributes
+    ----------
+    report_ : dict
+        Per block and channel: harmonics kept, how many tracked fast.
+    """
+
+    _method_name = "regression"
+
+    def __init__(self, n_harmonics: int | None = None, tracking_hz: float = 10.0, robust: bool = True,
+                 dac: str = "auto", margin_cycles: float = 2.0, outlier_z: float = 5.0,
+                 keep_factor: float = 4.0):
+        self.n_harmonics = n_harmonics
+        self.tracking_hz = tracking_hz
+        self.robust = robust
+        self.dac = dac
+        self.margin_cycles = margin_cycles
+        self.outlier_z = outlier_z
+        self.keep_factor = keep_factor
+
+    def _validate_params(self) -> None:
+        super()._validate_params()
+        if self.n_harmonics is not None and (int(self.n_harmonics) != self.n_harmonics or self.n_harmonics < 1):
+            raise ValueError(f"n_harmonics must be a positive integer or None, got {self.n_harmonics!r}")
+        if not self.keep_factor > 0:
+            raise ValueError(f"keep_factor must be positive, got {self.keep_factor!r}")
+
+    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate):
+        n_rows, n_bins = v.shape
+        rows = fill_rows(v, w, env)
+        # a cycle's own mean is the slow LFP under it, not artifact
+        coef = np.fft.rfft(rows - rows.mean(axis=1, keepdims=True), axis=1)[:, 1:]
+        n_h = coef.shape[1] if self.n_harmonics is None else min(int(self.n_harmonics), coef.shape[1])
+        coef = coef[:, :n_h]
+        plateau = np.abs(env - 1.0) < 0.1
+        sigma2 = noise_of_sequences(coef, plateau if plateau.sum() > 8 else None)
+        seq = np.concatenate([coef.real.T, coef.imag.T])
+        # env is the envelope of the rows as the data show it (see RowModelEstimator._demodulate)
+        fast = filter_sequences(seq, taps_fast, rate, env)
+        slow = filter_sequences(seq, taps_slow, rate, env)
+        fast = fast[:n_h] + 1j * fast[n_h:]
+        slow = slow[:n_h] + 1j * slow[n_h:]
+        nu_f, nu_s = float(np.sum(taps_fast ** 2)), float(np.sum(taps_slow ** 2))
+        nu_fs = float(np.sum((taps_fast - taps_slow) ** 2))
+        # the fast filter follows modulation the slow one misses; worth it when that exceeds its noise
+        use_fast = np.sum(np.abs(fast - slow) ** 2, axis=1) > 2 * n_rows * sigma2 * nu_fs
+        est = np.where(use_fast[:, None], fast, slow)
+        nu = np.where(use_fast, nu_f, nu_s) + 1.0 / max(plateau.sum(), 1)
+        keep = np.sum(np.abs(est) ** 2, axis=1) > self.keep_factor * n_rows * sigma2 * nu
+        full = np.zeros((n_rows, n_bins // 2 + 1), dtype=complex)
+        full[:, 1:n_h + 1] = (est * keep[:, None]).T
+        out = np.fft.irfft(full, n=n_bins, axis=1)
+        return out, dict(harmonics_kept=int(keep.sum()), harmonics_tracked=int((keep & use_fast).sum()))
