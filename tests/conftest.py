@@ -38,3 +38,18 @@ def rec10_dac():
 @pytest.fixture
 def rng():
     return np.random.default_rng(1234)
+
+
+@pytest.fixture(scope="session")
+def mod20():
+    """The modulated 20 Hz acceptance scenario (see artifactclean.scenarios)."""
+    from artifactclean.scenarios import make_scenario
+
+    return make_scenario("modulated_20hz", seed=1)
+
+
+@pytest.fixture(scope="session")
+def mod20_dac():
+    from artifactclean.scenarios import make_scenario
+
+    return make_scenario("modulated_20hz_dac", seed=2)

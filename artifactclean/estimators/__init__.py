@@ -2,6 +2,7 @@
 
 from .base import ArtifactEstimator, validate_recording
 from .comb import NotchComb
+from .pca import CyclePCA
 from .regression import HarmonicRegression
 from .template import TemplateSubtraction
 
@@ -10,6 +11,7 @@ METHODS = {
     "template": TemplateSubtraction,
     "comb": NotchComb,
     "regression": HarmonicRegression,
+    "pca": CyclePCA,
 }
 
 #: what :func:`artifactclean.clean` uses when no method is named
@@ -34,5 +36,5 @@ def make_estimator(method: str, **params) -> ArtifactEstimator:
     return cls(**params)
 
 
-__all__ = ["ArtifactEstimator", "HarmonicRegression", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
+__all__ = ["ArtifactEstimator", "CyclePCA", "HarmonicRegression", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
            "make_estimator", "validate_recording"]

@@ -111,7 +111,11 @@ class HarmonicRegression(RowModelEstimator):
         n_h = coef.shape[1] if self.n_harmonics is None else min(int(self.n_harmonics), coef.shape[1])
         coef = coef[:, :n_h]
         plateau = np.abs(env - 1.0) < 0.1
-        sigma2 = noise_of_sequences(coef, plateau if plateau.sum() > 8 else None)
+        rows_used = plateau if plateau.sum() > 8 else None
+        sigma2 = noise_of_sequences(coef, rows_used)
+        if n_bins % 2 == 0 and n_h == n_bins // 2:
+            # the Nyquist harmonic of an even grid is real: its noise follows the real rule
+            sigma2[-1] = noise_of_sequences(coef[:, -1:].real, rows_used)[0]
         seq = np.concatenate([coef.real.T, coef.imag.T])
         # env is the envelope of the rows as the data show it (see RowModelEstimator._demodulate)
         fast = filter_sequences(seq, taps_fast, rate, env)
