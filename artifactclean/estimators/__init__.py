@@ -1,5 +1,6 @@
 """Artifact estimators and the registry of method names used by :func:`artifactclean.clean`."""
 
+from .adaptive import AdaptiveCanceller
 from .base import ArtifactEstimator, validate_recording
 from .comb import NotchComb
 from .pca import CyclePCA
@@ -12,6 +13,7 @@ METHODS = {
     "comb": NotchComb,
     "regression": HarmonicRegression,
     "pca": CyclePCA,
+    "adaptive": AdaptiveCanceller,
 }
 
 #: what :func:`artifactclean.clean` uses when no method is named
@@ -36,5 +38,5 @@ def make_estimator(method: str, **params) -> ArtifactEstimator:
     return cls(**params)
 
 
-__all__ = ["ArtifactEstimator", "CyclePCA", "HarmonicRegression", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
+__all__ = ["AdaptiveCanceller", "ArtifactEstimator", "CyclePCA", "HarmonicRegression", "NotchComb", "TemplateSubtraction", "METHODS", "DEFAULT_METHOD",
            "make_estimator", "validate_recording"]

@@ -146,8 +146,10 @@ class ArtifactEstimator(BaseEstimator):
         if flat.size:
             warnings.warn(f"channel(s) {flat.tolist()} are flat (constant): left as they are; "
                           "check the electrode or the channel list", stacklevel=2)
+        # a monitor channel serves the stimulation model and estimators that use it as a reference
+        self._monitor = _check_reference(stim_reference, x.shape[1])
         if stim_model is None:
-            stim_model = _fit_model(x, fs, stim_freq, stim_reference)
+            stim_model = _fit_model(x, fs, stim_freq, self._monitor)
             if not stim_model.blocks:
                 hint = f" near {stim_freq} Hz" if stim_freq else ""
                 warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
@@ -245,11 +247,16 @@ def _fit_model(x, fs, stim_freq, stim_reference) -> StimulationModel:
             raise ValueError(
                 f"recording holds {x.shape[1] / fs * stim_freq:.1f} stimulation cycles; at least 8 are needed"
             )
-    ref = None
-    if stim_reference is not None:
-        ref = np.asarray(stim_reference, dtype=np.float64).ravel()
-        if ref.size != x.shape[1]:
-            raise ValueError(f"stim_reference has {ref.size} samples, data has {x.shape[1]}")
-        if not np.all(np.isfinite(ref)):
-            raise ValueError("stim_reference holds NaN or inf samples")
-    return fit_stimulation(x, fs, stim_freq=stim_freq, reference=ref)
+    return fit_stimulation(x, fs, stim_freq=stim_freq, reference=_check_reference(stim_reference, x.shape[1]))
+
+
+def _check_reference(stim_reference, n: int) -> np.ndarray | None:
+    """The monitor channel as a float64 vector of ``n`` finite samples (or None)."""
+    if stim_reference is None:
+        return None
+    ref = np.asarray(stim_reference, dtype=np.float64).ravel()
+    if ref.size != n:
+        raise ValueError(f"stim_reference has {ref.size} samples, data has {n}")
+    if not np.all(np.isfinite(ref)):
+        raise ValueError("stim_reference holds NaN or inf samples")
+    return ref
