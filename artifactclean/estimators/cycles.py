@@ -56,7 +56,7 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
     The phase model locates an edge to a fraction of a sample; the held
     levels on either side tell where the edge actually fell. The neural
     signal is slow next to a step, so each candidate is judged against the
-    residual two samples away on either side. ``read(keys)`` gives the
+    residual two samples away on either side. ``read(keys, samples)`` gives the
     template (of this channel) at those tick keys.
     """
     n = x.size
@@ -66,12 +66,12 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
         if amb.size == 0:
             continue
         around = np.concatenate([np.maximum(amb - 2, 0), np.minimum(amb + 2, n - 1)])
-        r = x[around] - g[around] * read(key[around])
+        r = x[around] - g[around] * read(key[around], around)
         base = 0.5 * (r[: amb.size] + r[amb.size:])
         k0 = base_key[amb]
         k1 = np.clip(k0 + step, 0, hi)
-        e0 = np.abs(x[amb] - g[amb] * read(k0) - base)
-        e1 = np.abs(x[amb] - g[amb] * read(k1) - base)
+        e0 = np.abs(x[amb] - g[amb] * read(k0, amb) - base)
+        e1 = np.abs(x[amb] - g[amb] * read(k1, amb) - base)
         new[amb] = np.where(e1 < e0, k1, k0)
     return np.maximum.accumulate(new)  # ticks never run backwards
 
@@ -315,7 +315,13 @@ class CycleGrid:
         ones = np.ones(self.n)
         for ch in range(flat.shape[0]):
             one = flat[ch:ch + 1]
-            at = lambda k, one=one: one[0, k]  # noqa: E731  (the row's own value decides)
+
+            def at(k, idx, one=one):
+                # candidate tick k read as sample idx would read it: blended between its rows
+                b = np.mod(k, self.n_bins)
+                return grouped_eval(one, self.n_bins, self._r0[idx], self._r1[idx], self._beta[idx],
+                                    b, b, np.zeros(idx.size))[0]
+
             key = settle_edges(x[ch], ones, at, self.key, self.key, self.amb_lo, self.amb_hi)
             b = np.mod(key, self.n_bins)
             out[ch] = grouped_eval(one, self.n_bins, self._r0, self._r1, self._beta, b, b, self._alpha)[0]

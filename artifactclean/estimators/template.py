@@ -325,7 +325,7 @@ class TemplateSubtraction(CycleEstimator):
             denoise = self.denoise and it == passes - 1
             if sampler is None:
                 if it > 0:
-                    key = settle_edges(xb[ref], gain[ref], lambda k: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
+                    key = settle_edges(xb[ref], gain[ref], lambda k, _: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
                                         key, base_key, amb_lo, amb_hi)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups)
