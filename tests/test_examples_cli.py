@@ -22,11 +22,16 @@ def test_demo_command_writes_table_and_figures(tmp_path):
     r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "demo", "--out", str(out)],
                        capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
-    assert "spike-band resid/noise" in r.stdout
+    assert "spike-band" in r.stdout and "LFP error" in r.stdout
+    rows = {line.split()[0]: line.split() for line in r.stdout.splitlines() if line.split()[:1] and line.split()[0] in
+            ("template", "comb", "regression", "pca", "adaptive")}
+    assert set(rows) == {"template", "comb", "regression", "pca", "adaptive"}
     for name in ("traces.png", "spectra.png", "demo_scores.json"):
         assert (out / name).stat().st_size > 1000
     scores = json.loads((out / "demo_scores.json").read_text())
-    assert set(scores) >= {"template", "comb"}
+    assert set(scores) == set(rows)
+    # the printed figure is the worst channel of the written one
+    assert float(rows["template"][1]) == pytest.approx(max(scores["template"]["spikeband_residual"]), abs=6e-4)
     # the template beats the comb on the demo session at the harmonics
     assert max(scores["template"]["harmonic_residual"]) < max(scores["comb"]["harmonic_residual"])
 
