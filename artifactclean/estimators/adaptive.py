@@ -187,7 +187,7 @@ class AdaptiveCanceller(CycleEstimator):
     dac = "off"
 
     def __init__(self, algorithm: str = "rls", reference: str = "auto", n_harmonics: int | None = None,
-                 max_harmonics: int = 20, tracking_hz: float = 10.0, step: float = 0.05, n_taps: int = 9,
+                 max_harmonics: int = 10, tracking_hz: float = 10.0, step: float = 0.05, n_taps: int = 9,
                  margin_cycles: float = 2.0, compiled: bool = True):
         self.algorithm = algorithm
         self.reference = reference
