@@ -1,0 +1,228 @@
+"""``artifactclean lockcheck``: phase locking of sorted units, tested against residue.
+
+Reads a spike table and the raw recording, fits the stimulation model,
+measures the detection efficiency against stimulation phase on the same
+recording (known spikes injected into the raw data, cleaned with the chosen
+method, detected), and writes per unit and condition the locking statistics
+of :func:`artifactclean.entrainment.lock_table`:
+
+* ``DIR/lockcheck.json``: ``{"units": [...], "comparisons": [...], "efficiency": {...}, ...}``
+* ``DIR/lockcheck.csv``: the unit rows;
+* ``DIR/phase_histograms.png``, ``DIR/ppc_stim_vs_sham.png``, ``DIR/efficiency.png``.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .entrainment import lock_table
+from .estimators import make_estimator
+from .injection import detection_efficiency, inject_spikes
+from .stimulation import StimulationModel
+
+__all__ = ["OUTPUT_NAMES", "check_out_dir", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
+
+
+#: files lockcheck writes into its output directory
+OUTPUT_NAMES = ("lockcheck.json", "lockcheck.csv", "phase_histograms.png", "ppc_stim_vs_sham.png", "efficiency.png")
+
+
+def check_out_dir(out: Path, force: bool) -> None:
+    """Refuse an output directory that already holds lockcheck outputs, unless ``force``."""
+    out = Path(out)
+    there = [n for n in OUTPUT_NAMES if (out / n).exists()]
+    if there and not force:
+        raise ValueError(f"{out} already holds {', '.join(there)}; pass --force to overwrite")
+    if out.exists() and not out.is_dir():
+        raise ValueError(f"{out} exists and is not a directory")
+
+
+def read_spike_table(path) -> tuple[np.ndarray, np.ndarray]:
+    """Spike times (s) and unit labels from CSV (``time_s,unit``), NPZ (``times``, ``units``) or NIX.
+
+    NIX files are read with ``neo.io.NixIO``: every SpikeTrain is one unit
+    (its ``unit`` annotation, else its name, else its index).
+    """
+    path = Path(path)
+    if not path.exists():
+        raise ValueError(f"spike table {path} does not exist")
+    suffix = path.suffix.lower()
+    if suffix == ".csv":
+        with open(path, newline="") as fh:
+            rows = list(csv.DictReader(fh))
+        if not rows:
+            raise ValueError(f"spike table {path} holds no spikes (a header and no rows, or empty)")
+        cols = {c.strip().lower(): c for c in rows[0]}
+        if "time_s" not in cols or "unit" not in cols:
+            raise ValueError(f"spike table {path} needs columns 'time_s' and 'unit'; it has {list(rows[0])}")
+        try:
+            times = np.array([float(r[cols["time_s"]]) for r in rows])
+        except ValueError as err:
+            raise ValueError(f"spike table {path}: a time_s value is not a number ({err})") from None
+        units = np.array([r[cols["unit"]].strip() for r in rows])
+    elif suffix == ".npz":
+        with np.load(path, allow_pickle=False) as z:
+            tk = next((k for k in ("time_s", "times") if k in z), None)
+            uk = next((k for k in ("unit", "units") if k in z), None)
+            if tk is None or uk is None:
+                raise ValueError(f"{path} needs arrays 'times' (s) and 'units'; it has {sorted(z.files)}")
+            times, units = np.asarray(z[tk], dtype=np.float64), np.asarray(z[uk]).astype(str)
+    elif suffix in (".nix", ".h5"):
+        import neo
+        import quantities as pq
+
+        io = neo.io.NixIO(str(path), mode="ro")
+        try:
+            blocks = io.read_all_blocks()
+        finally:
+            io.close()
+        t, u = [], []
+        k = 0
+        for blk in blocks:
+            for seg in blk.segments:
+                for st in seg.spiketrains:
+                    label = st.annotations.get("unit", st.name or str(k))
+                    t.append(st.rescale(pq.s).magnitude.ravel())
+                    u.append(np.full(len(st), str(label)))
+                    k += 1
+        if not t:
+            raise ValueError(f"{path} holds no SpikeTrain")
+        times, units = np.concatenate(t), np.concatenate(u)
+    else:
+        raise ValueError(f"unsupported spike table {path.suffix!r}: use .csv (time_s,unit), .npz or .nix")
+    if times.size == 0:
+        raise ValueError(f"spike table {path} holds no spikes")
+    if not np.all(np.isfinite(times)):
+        raise ValueError(f"spike table {path} holds non-finite times")
+    return times, units
+
+
+def measure_efficiency(data: np.ndarray, fs: float, model: StimulationModel, *, method: str = "template",
+                       amplitude: float = 6.0, rate_hz: float = 30.0, n_bins: int = 12, seed: int = 0) -> dict:
+    """Detection efficiency against stimulation phase of ``data`` (raw), by injection, cleaning and detection."""
+    hybrid, truth = inject_spikes(data, fs, phase=model.phase(), rate_hz=rate_hz, amplitude=amplitude, seed=seed)
+    est = make_estimator(method)
+    cleaned = est.fit_transform(hybrid, fs=fs, stim_model=model)
+    eff = detection_efficiency(truth, cleaned, fs, lost=est.lost_, n_bins=n_bins)
+    eff.update(method=method, amplitude_noise=amplitude, injected=int(truth.samples.size), seed=seed)
+    return eff
+
+
+def run_lockcheck(times_s, units, model: StimulationModel, *, efficiency: dict | None = None, alpha: float = 0.05,
+                  equivalence=None, n_perm: int = 1000, seed: int = 0) -> dict:
+    """Locking statistics (see :func:`artifactclean.entrainment.lock_table`) from spike times in seconds."""
+    times_s = np.asarray(times_s, dtype=np.float64)
+    samples = np.round(times_s * model.fs).astype(np.int64)
+    eff = None if efficiency is None else np.asarray(efficiency["recall"], dtype=np.float64)
+    res = lock_table(samples, units, model, efficiency=eff, alpha=alpha, n_perm=n_perm, equivalence=equivalence,
+                     seed=seed)
+    res["efficiency"] = efficiency
+    res["stimulation"] = model.to_dict()
+    return res
+
+
+def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationModel, *, force: bool = False) -> list:
+    """Write ``lockcheck.json``, ``lockcheck.csv`` and the figures into ``out``; return the paths."""
+    from .plotting import _plt
+
+    out = Path(out)
+    check_out_dir(out, force)
+    out.mkdir(parents=True, exist_ok=True)
+    paths = []
+    with open(out / "lockcheck.json", "w") as fh:
+        json.dump(_finite(res), fh, indent=2, default=_jsonable)
+    paths.append(out / "lockcheck.json")
+    cols = ["unit", "condition", "n_spikes", "duration_s", "rate_hz", "plv", "ppc", "ppc_across_blocks",
+            "preferred_phase_deg", "rayleigh_z", "p_value", "p_value_residue", "q_value_residue", "locked",
+            "flagged_residue"]
+    with open(out / "lockcheck.csv", "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(cols)
+        for r in res["units"]:
+            w.writerow([r[c] for c in cols])
+    paths.append(out / "lockcheck.csv")
+    plt = _plt()
+    # phase histograms: one row per unit, one column per condition
+    conds = sorted({r["condition"] for r in res["units"]})
+    ulist = list(dict.fromkeys(r["unit"] for r in res["units"]))
+    samples = np.round(np.asarray(times_s) * model.fs).astype(np.int64)
+    from .entrainment import spike_phases
+
+    ph, cond, _ = spike_phases(samples, model)
+    units = np.asarray(units)
+    fig, axes = plt.subplots(len(ulist), len(conds), figsize=(2.6 * len(conds) + 1, 1.9 * len(ulist) + 0.6),
+                             squeeze=False, sharex=True)
+    edges = np.linspace(0, 360, 19)
+    for i, u in enumerate(ulist):
+        for j, c in enumerate(conds):
+            ax = axes[i, j]
+            sel = (units.astype(str) == str(u)) & (cond == c)
+            ax.hist(np.degrees(ph[sel]), bins=edges, color="tab:blue" if c.startswith("stim") else "0.5")
+            row = next(r for r in res["units"] if str(r["unit"]) == str(u) and r["condition"] == c)
+            tag = "locked" if row["locked"] else ("residue?" if row["flagged_residue"] else "")
+            ax.set_title(f"unit {u}, {c}\nPPC {row['ppc']:.3f} {tag}", fontsize=8)
+            ax.set_xticks([0, 90, 180, 270, 360])
+    for ax in axes[-1]:
+        ax.set_xlabel("stimulation phase (deg)")
+    fig.tight_layout()
+    fig.savefig(out / "phase_histograms.png", dpi=100)
+    plt.close(fig)
+    paths.append(out / "phase_histograms.png")
+    # PPC stimulation vs sham per unit
+    fig, ax = plt.subplots(figsize=(max(4, 0.8 * len(ulist) + 2), 3.5))
+    width = 0.8 / max(len(conds), 1)
+    for j, c in enumerate(conds):
+        vals = [next((r["ppc"] for r in res["units"] if r["unit"] == u and r["condition"] == c), np.nan) for u in ulist]
+        ax.bar(np.arange(len(ulist)) + j * width, vals, width, label=c)
+    ax.axhline(0, color="k", lw=0.6)
+    ax.set_xticks(np.arange(len(ulist)) + 0.4 - width / 2)
+    ax.set_xticklabels([str(u) for u in ulist])
+    ax.set_xlabel("unit")
+    ax.set_ylabel("PPC")
+    ax.legend(fontsize=8)
+    ax.set_title("phase locking per condition")
+    fig.tight_layout()
+    fig.savefig(out / "ppc_stim_vs_sham.png", dpi=100)
+    plt.close(fig)
+    paths.append(out / "ppc_stim_vs_sham.png")
+    fig, ax = plt.subplots(figsize=(5, 3.2))
+    eff = res.get("efficiency")
+    if eff:
+        e = np.asarray(eff["bin_edges_deg"])
+        ax.step(e, np.r_[eff["recall"], eff["recall"][-1]], where="post")
+        ax.set_ylim(0, 1.05)
+        ax.set_title(f"detection efficiency ({eff['injected']} injected, {eff['method']})", fontsize=9)
+    else:
+        ax.set_title("detection efficiency not measured (flat null)", fontsize=9)
+    ax.set_xlabel("stimulation phase (deg)")
+    ax.set_ylabel("recall")
+    fig.tight_layout()
+    fig.savefig(out / "efficiency.png", dpi=100)
+    plt.close(fig)
+    paths.append(out / "efficiency.png")
+    return paths
+
+
+def _jsonable(v):
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, np.floating):
+        return None if not np.isfinite(v) else float(v)
+    if isinstance(v, np.ndarray):
+        return v.tolist()
+    return str(v)
+
+
+def _finite(v):
+    """NaN and inf become null: JSON has no NaN."""
+    if isinstance(v, dict):
+        return {k: _finite(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_finite(x) for x in v]
+    if isinstance(v, float) and not np.isfinite(v):
+        return None
+    return v
