@@ -1,4 +1,4 @@
-"""Command line: ``artifactclean demo | survey | clean | lockcheck``.
+"""Command line: ``artifactclean demo | survey | clean | bench | lockcheck``.
 
 Errors are one line on stderr naming the problem and the way out, with a
 non-zero exit code; ``--debug`` shows the traceback instead.
@@ -81,6 +81,20 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--force", action="store_true", help="overwrite an existing output")
     c.add_argument("--gain-uv", type=float, help="int16 step in uV for .dat/.bin (default: the input's own)")
     c.add_argument("--chunk-seconds", type=float, default=10.0, help="seconds read at a time (default 10)")
+
+    g = sub.add_parser("bench", help="inject known spikes, run every method, rank them: built-in scenarios "
+                                     "(--synthetic) or your own recording")
+    g.add_argument("input", nargs="?", help="recording to make hybrid (omit with --synthetic)")
+    g.add_argument("--synthetic", action="store_true", help="run the built-in synthetic scenarios")
+    add_input(g, positional=False)
+    g.add_argument("--out", required=True, help="output directory")
+    g.add_argument("--methods", help="comma-separated methods (default: all)")
+    g.add_argument("--seeds", default="0,1", help="comma-separated seeds of the injections (default 0,1)")
+    g.add_argument("--seconds", type=float, default=60.0,
+                   help="at most this much of a recording's main block is analysed (default 60)")
+    g.add_argument("--write-hybrid", action="store_true",
+                   help="also write the hybrid recording (hybrid.dat + sidecar) and its truth table (hybrid_truth.csv)")
+    g.add_argument("--force", action="store_true", help="overwrite existing outputs in --out")
 
     k = sub.add_parser("lockcheck", help="phase locking of sorted units per condition, tested against residue")
     k.add_argument("--spikes", required=True, help="spike table: CSV with time_s,unit; .npz (times, units); or .nix")
@@ -233,6 +247,84 @@ def _clean(args) -> int:
     return 0
 
 
+def _bench(args) -> int:
+    from .bench import SYNTHETIC_SCENARIOS, check_bench_out, run_bench, synthetic_cases, write_report
+
+    if args.synthetic == bool(args.input):
+        raise ValueError("give either a recording or --synthetic (not both, not neither)")
+    try:
+        seeds = [int(x) for x in args.seeds.split(",") if x.strip()]
+    except ValueError:
+        raise ValueError(f"--seeds must be comma-separated integers, got {args.seeds!r}") from None
+    methods = [m.strip() for m in args.methods.split(",")] if args.methods else None
+    out = Path(args.out)
+    check_bench_out(out, args.force)
+    bar = _Bar(not args.quiet and sys.stderr.isatty())
+    if args.synthetic:
+        print(f"building the built-in scenarios: {', '.join(SYNTHETIC_SCENARIOS)} (12 s, 4 channels, 30 kHz)")
+        cases = synthetic_cases()
+        title = "artifactclean bench: built-in synthetic scenarios"
+    else:
+        from .io.pipeline import fit_recording_stimulation, scan_recording
+
+        prof = _profile_settings(args)
+        rec, channels, monitor, stim_freq = _open(args, prof)
+        channels = list(range(rec.n_channels)) if channels is None else channels
+        scan = scan_recording(rec, channels, progress=bar)
+        model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
+        main = model.main_block
+        if main is None:
+            raise ValueError("no stimulation found in the recording; pass --stim-freq, or --stim-channel with a monitor")
+        half = int(min(args.seconds * rec.fs, main.stop - main.start) // 2)
+        mid = (main.start + main.stop) // 2
+        a, b = max(0, mid - half - int(2 * rec.fs)), min(rec.n_samples, mid + half + int(2 * rec.fs))
+        print(f"hybrid recording: known spikes injected into {(b - a) / rec.fs:.0f} s of the main block "
+              f"({main.freq_hz:.4f} Hz)")
+        cases = [dict(name=Path(args.input).name, data=rec.read(a, b, channels), fs=rec.fs, model=model.window(a, b))]
+        title = f"artifactclean bench: {Path(args.input).name} (hybrid)"
+    rows = run_bench(cases, methods=methods, seeds=seeds, progress=bar)
+    summary = write_report(out, rows, cases, title=title, force=args.force,
+                           command="artifactclean " + " ".join(shlex.quote(x) for x in sys.argv[1:]))
+    if args.write_hybrid:
+        _write_hybrid(out, cases[0], seeds[0], args.force)
+    print(f"{'rank':>4} {'method':<11} {'parameters':<16} {'biased':>6} {'recall':>7} {'residual':>9}")
+    for g in summary["ranking"]:
+        print(f"{g['rank']:>4} {g['method']:<11} {g['params_label']:<16} {'yes' if g['phase_biased'] else 'no':>6} "
+              f"{g['recall']:>7.4f} {g['residual']:>9.3g}")
+    rec_ = summary["recommended"]
+    if rec_:
+        print(f"recommended: {rec_['method']} {rec_['params'] or '(default parameters)'}")
+    print(f"wrote {out}/report.html, results.json, results.csv and figures")
+    return 0
+
+
+def _write_hybrid(out: Path, case: dict, seed: int, force: bool) -> None:
+    from .injection import write_truth_csv
+    from .io.writers import DatWriter
+    from .validation import make_hybrid
+
+    for name in ("hybrid.dat", "hybrid_truth.csv"):
+        if (out / name).exists() and not force:
+            raise ValueError(f"{out / name} exists; pass --force to overwrite")
+    hyb, uni, lck = make_hybrid(case["data"], case["fs"], case["model"].phase(), seed=seed)
+    n_ch = hyb.shape[0]
+    w = DatWriter(out / "hybrid.dat", case["fs"], [f"ch{i}" for i in range(n_ch)], hyb.shape[1])
+    try:
+        w.write(hyb)
+        w.close(dict(content="hybrid recording: the analysed stretch plus injected spikes", seed=seed))
+    except BaseException:
+        w.abort()
+        raise
+    import dataclasses
+
+    both = dataclasses.replace(uni, **{f: np.concatenate([getattr(uni, f), getattr(lck, f)])
+                                      for f in ("samples", "channels", "units", "amplitudes_uv", "phases")})
+    order = np.argsort(both.samples, kind="stable")
+    both = dataclasses.replace(both, **{f: getattr(both, f)[order]
+                                        for f in ("samples", "channels", "units", "amplitudes_uv", "phases")})
+    write_truth_csv(out / "hybrid_truth.csv", both)
+
+
 def _lockcheck(args) -> int:
     from .io.pipeline import fit_recording_stimulation, scan_recording
     from .entrainment import check_spike_times
@@ -302,6 +394,8 @@ def main(argv=None) -> int:
             return _clean(args)
         if args.command == "lockcheck":
             return _lockcheck(args)
+        if args.command == "bench":
+            return _bench(args)
         return 2
     except KeyboardInterrupt:
         print("artifactclean: interrupted; no output was left behind", file=sys.stderr)
