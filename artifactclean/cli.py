@@ -306,7 +306,13 @@ def _write_hybrid(out: Path, case: dict, seed: int, force: bool) -> None:
     for name in ("hybrid.dat", "hybrid_truth.csv"):
         if (out / name).exists() and not force:
             raise ValueError(f"{out / name} exists; pass --force to overwrite")
-    hyb, uni, lck = make_hybrid(case["data"], case["fs"], case["model"].phase(), seed=seed)
+    from .injection import cleaned_noise
+    from .validation import method_cleaner
+
+    base, lost = method_cleaner("template")(case["data"], case["fs"], case["model"])
+    sigma = cleaned_noise(base, lost, case["fs"])
+    hyb, uni, lck = make_hybrid(case["data"], case["fs"], case["model"].phase(), noise_uv=sigma, avoid_in=base,
+                                seed=seed)
     n_ch = hyb.shape[0]
     w = DatWriter(out / "hybrid.dat", case["fs"], [f"ch{i}" for i in range(n_ch)], hyb.shape[1])
     try:

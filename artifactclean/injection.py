@@ -22,10 +22,11 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
+from .clipping import find_rails
 from .spikes import detect_spikes, match_spikes, noise_sigma, spike_band
 from .synthetic import spike_waveform
 
-__all__ = ["BUILTIN_WAVEFORMS", "InjectedSpikes", "inject_spikes", "learn_waveform", "detection_efficiency",
+__all__ = ["BUILTIN_WAVEFORMS", "cleaned_noise", "InjectedSpikes", "inject_spikes", "learn_waveform", "detection_efficiency",
            "write_truth_csv"]
 
 #: built-in waveforms: name -> (shape, polarity); trough-normalised
@@ -88,7 +89,8 @@ def learn_waveform(x: np.ndarray, fs: float, *, mask: np.ndarray | None = None, 
 def inject_spikes(data: np.ndarray, fs: float, *, phase: np.ndarray, channels=None, rate_hz: float = 10.0,
                   amplitude: float = 8.0, waveforms=("narrow", "broad"), kappa: float = 0.0,
                   preferred_phase: float = 0.0, refractory_s: float = 3e-3, stim_only: bool = True,
-                  avoid_threshold: float = 6.0, seed: int = 0) -> tuple[np.ndarray, InjectedSpikes]:
+                  avoid_threshold: float = 6.0, noise_uv=None, avoid_in=None,
+                  seed: int = 0) -> tuple[np.ndarray, InjectedSpikes]:
     """Add spikes of known times, channels and amplitudes to ``data``.
 
     Parameters
@@ -117,6 +119,14 @@ def inject_spikes(data: np.ndarray, fs: float, *, phase: np.ndarray, channels=No
     avoid_threshold : float
         Keep 2 ms away from spike-band events above this many noise SDs
         already in the data (existing spikes, steps).
+    noise_uv : float or array, optional
+        Spike-band noise per channel that ``amplitude`` multiplies. Default:
+        measured on ``data``; for raw contaminated data pass the noise of the
+        cleaned data (what a sorter sees), as the artifact inflates the raw one.
+    avoid_in : ndarray, optional
+        The array in which existing large events are looked for (default
+        ``data``); pass the cleaned recording, where the artifact's own steps
+        are gone and only the recording's spikes remain.
     seed : int
 
     Returns
@@ -141,8 +151,8 @@ def inject_spikes(data: np.ndarray, fs: float, *, phase: np.ndarray, channels=No
     allowed = np.isfinite(phase) if stim_only else np.ones(n, dtype=bool)
     if not allowed.any():
         raise ValueError("no stimulation in the data to inject into (stim_only=True)")
-    sb = spike_band(x, fs)
-    sigma = noise_sigma(sb)
+    sb = spike_band(x if avoid_in is None else np.asarray(avoid_in, dtype=np.float64).reshape(n_ch, n), fs)
+    sigma = noise_sigma(sb) if noise_uv is None else np.broadcast_to(np.asarray(noise_uv, dtype=np.float64), (n_ch,))
     guard = int(round(2e-3 * fs))
     lags_max = int(2.0e-3 * fs) + 1
     rows = []
@@ -190,9 +200,30 @@ def inject_spikes(data: np.ndarray, fs: float, *, phase: np.ndarray, channels=No
     else:
         s = c = u = np.zeros(0, dtype=np.int64)
         a = np.zeros(0)
+    # the amplifier saturates the sum: where the data sat at a rail, the hybrid stays at the rail
+    hi, lo = find_rails(np.asarray(data, dtype=np.float64).reshape(n_ch, n))
+    np.clip(x, lo[:, None], hi[:, None], out=x)
     order = np.argsort(s, kind="stable")
     truth = InjectedSpikes(s[order], c[order], u[order], a[order], phase[s[order]], shapes, fs)
     return x, truth
+
+
+def cleaned_noise(cleaned: np.ndarray, lost: np.ndarray, fs: float) -> np.ndarray:
+    """Spike-band noise (MAD, Quiroga et al. 2004) per channel of cleaned data, lost samples left out.
+
+    This is the noise a sorter sees, to which injected amplitudes refer; the
+    raw spike band is inflated by the artifact, and blanked samples would
+    deflate the median.
+    """
+    sb = spike_band(np.where(lost, 0.0, cleaned), fs)
+    # 4 ms around lost samples carry the filter's edges
+    width = int(4e-3 * fs) + 1
+    out = np.empty(sb.shape[0])
+    for ch in range(sb.shape[0]):
+        near = np.convolve(lost[ch].astype(float), np.ones(width), mode="same") > 0 if lost[ch].any() else lost[ch]
+        use = sb[ch, ~near]
+        out[ch] = noise_sigma(use) if use.size else noise_sigma(sb[ch])
+    return out
 
 
 def write_truth_csv(path, truth: InjectedSpikes) -> Path:

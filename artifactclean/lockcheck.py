@@ -21,7 +21,7 @@ import numpy as np
 
 from .entrainment import lock_table
 from .estimators import make_estimator
-from .injection import detection_efficiency, inject_spikes
+from .injection import cleaned_noise, detection_efficiency, inject_spikes
 from .stimulation import StimulationModel
 
 __all__ = ["OUTPUT_NAMES", "check_out_dir", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
@@ -104,7 +104,12 @@ def read_spike_table(path) -> tuple[np.ndarray, np.ndarray]:
 def measure_efficiency(data: np.ndarray, fs: float, model: StimulationModel, *, method: str = "template",
                        amplitude: float = 6.0, rate_hz: float = 30.0, n_bins: int = 12, seed: int = 0) -> dict:
     """Detection efficiency against stimulation phase of ``data`` (raw), by injection, cleaning and detection."""
-    hybrid, truth = inject_spikes(data, fs, phase=model.phase(), rate_hz=rate_hz, amplitude=amplitude, seed=seed)
+    # amplitudes refer to the noise of the cleaned data (the raw spike band is inflated by the artifact)
+    base = make_estimator(method)
+    clean0 = base.fit_transform(data, fs=fs, stim_model=model)
+    sigma = cleaned_noise(clean0, base.lost_, fs)
+    hybrid, truth = inject_spikes(data, fs, phase=model.phase(), rate_hz=rate_hz, amplitude=amplitude,
+                                  noise_uv=sigma, avoid_in=clean0, seed=seed)
     est = make_estimator(method)
     cleaned = est.fit_transform(hybrid, fs=fs, stim_model=model)
     eff = detection_efficiency(truth, cleaned, fs, lost=est.lost_, n_bins=n_bins)
