@@ -96,6 +96,12 @@ def _parser() -> argparse.ArgumentParser:
                    help="also write the hybrid recording (hybrid.dat + sidecar) and its truth table (hybrid_truth.csv)")
     g.add_argument("--force", action="store_true", help="overwrite existing outputs in --out")
 
+    q = sub.add_parser("score-sorting", help="score a spike sorter's output against a hybrid truth table")
+    q.add_argument("--truth", required=True, help="hybrid_truth.csv written by `bench --write-hybrid`")
+    q.add_argument("--sorted", required=True, help="the sorter's spikes: CSV with time_s,unit (or .npz, .nix)")
+    q.add_argument("--tolerance-ms", type=float, default=0.5, help="matching tolerance (default 0.5 ms)")
+    q.add_argument("--json", action="store_true", help="print JSON instead of a table")
+
     k = sub.add_parser("lockcheck", help="phase locking of sorted units per condition, tested against residue")
     k.add_argument("--spikes", required=True, help="spike table: CSV with time_s,unit; .npz (times, units); or .nix")
     k.add_argument("--recording", required=True, dest="input",
@@ -331,6 +337,30 @@ def _write_hybrid(out: Path, case: dict, seed: int, force: bool) -> None:
     write_truth_csv(out / "hybrid_truth.csv", both)
 
 
+def _score_sorting(args) -> int:
+    import csv as _csv
+
+    from .lockcheck import read_spike_table
+    from .validation import score_sorting
+
+    with open(args.truth, newline="") as fh:
+        rows = list(_csv.DictReader(fh))
+    if not rows or "time_s" not in rows[0] or "unit" not in rows[0]:
+        raise ValueError(f"{args.truth} is not a truth table (columns time_s, channel, unit, ...)")
+    tt = np.array([float(r["time_s"]) for r in rows])
+    tu = np.array([r["unit"] for r in rows])
+    st, su = read_spike_table(args.sorted)
+    res = score_sorting(tt, tu, st, su, tolerance_s=args.tolerance_ms * 1e-3)
+    if args.json:
+        print(json.dumps(res, indent=2))
+        return 0
+    print(f"{'injected':>8} {'sorted':>8} {'n inj':>6} {'n sorted':>8} {'matched':>7} {'recall':>7} {'precision':>9}")
+    for r in res:
+        print(f"{r['injected_unit']:>8} {r['sorted_unit']:>8} {r['n_injected']:>6} {r['n_sorted']:>8} "
+              f"{r['n_matched']:>7} {r['recall']:>7.3f} {r['precision']:>9.3f}")
+    return 0
+
+
 def _lockcheck(args) -> int:
     from .io.pipeline import fit_recording_stimulation, scan_recording
     from .entrainment import check_spike_times
@@ -402,6 +432,8 @@ def main(argv=None) -> int:
             return _lockcheck(args)
         if args.command == "bench":
             return _bench(args)
+        if args.command == "score-sorting":
+            return _score_sorting(args)
         return 2
     except KeyboardInterrupt:
         print("artifactclean: interrupted; no output was left behind", file=sys.stderr)

@@ -117,3 +117,40 @@ def test_bench_needs_one_source(tmp_path):
     r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "bench", "--out", str(tmp_path / "x")],
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "--synthetic" in r.stderr
+
+
+def test_score_sorting_pairs_units_and_counts(tmp_path):
+    rng = np.random.default_rng(3)
+    t0 = np.sort(rng.uniform(0, 10, 200))
+    t1 = np.sort(rng.uniform(0, 10, 150))
+    truth_t = np.concatenate([t0, t1])
+    truth_u = np.array(["0"] * 200 + ["1"] * 150)
+    # a sorter: unit "a" finds 180 of unit 0 (jittered 0.2 ms) plus 20 own spikes; "b" finds 100 of unit 1
+    found0 = t0[:180] + 0.2e-3
+    found1 = t1[:100] - 0.1e-3
+    sorted_t = np.concatenate([found0, rng.uniform(0, 10, 20) + 0.5, found1])
+    sorted_u = np.array(["a"] * 200 + ["b"] * 100)
+    from artifactclean.validation import score_sorting
+
+    res = {r["injected_unit"]: r for r in score_sorting(truth_t, truth_u, sorted_t, sorted_u)}
+    # (a few of the 180 lose their match to a neighbouring true spike within the tolerance)
+    assert res["0"]["sorted_unit"] == "a" and 170 <= res["0"]["n_matched"] <= 180
+    assert res["0"]["precision"] == pytest.approx(res["0"]["n_matched"] / 200)
+    assert res["1"]["sorted_unit"] == "b" and res["1"]["recall"] == pytest.approx(100 / 150, abs=0.02)
+    # through the command line, from files
+    import csv
+
+    with open(tmp_path / "truth.csv", "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["time_s", "channel", "unit", "amplitude_uv", "phase_deg"])
+        for t, u in zip(truth_t, truth_u):
+            w.writerow([f"{t:.6f}", 0, u, 50, 0])
+    with open(tmp_path / "sorted.csv", "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["time_s", "unit"])
+        for t, u in zip(sorted_t, sorted_u):
+            w.writerow([f"{t:.6f}", u])
+    r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "score-sorting", "--truth", str(tmp_path / "truth.csv"),
+                        "--sorted", str(tmp_path / "sorted.csv"), "--json"], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert {x["injected_unit"]: x["sorted_unit"] for x in json.loads(r.stdout)} == {"0": "a", "1": "b"}
