@@ -99,6 +99,14 @@ _rls_c = _jit(_rls_loop)
 _nlms_c = _jit(_nlms_loop)
 
 
+def _buffers(refs, d, use):
+    """Contiguous float64 inputs and the output arrays of an adaptive filter run."""
+    refs = np.ascontiguousarray(refs, dtype=np.float64)
+    d = np.ascontiguousarray(d, dtype=np.float64)
+    use = np.ones(d.size) if use is None else np.ascontiguousarray(use, dtype=np.float64)
+    return refs, d, use, np.empty(d.size), np.zeros(refs.shape[1])
+
+
 def rls_filter(refs: np.ndarray, d: np.ndarray, *, forgetting: float = 1.0, delta: float = 1e-6,
                use: np.ndarray | None = None, compiled: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """Exponentially weighted RLS fit of ``d`` from ``refs`` (Haykin, Adaptive Filter Theory).
@@ -124,11 +132,7 @@ def rls_filter(refs: np.ndarray, d: np.ndarray, *, forgetting: float = 1.0, delt
     w : ndarray, shape (m,)
         Final weights.
     """
-    refs = np.ascontiguousarray(refs, dtype=np.float64)
-    d = np.ascontiguousarray(d, dtype=np.float64)
-    use = np.ones(d.size) if use is None else np.ascontiguousarray(use, dtype=np.float64)
-    y = np.empty(d.size)
-    w = np.zeros(refs.shape[1])
+    refs, d, use, y, w = _buffers(refs, d, use)
     (_rls_c if compiled and HAVE_NUMBA else _rls_loop)(refs, d, use, float(forgetting), float(delta), y, w)
     return y, w
 
@@ -139,11 +143,7 @@ def nlms_filter(refs: np.ndarray, d: np.ndarray, *, step: float = 0.05, eps: flo
 
     Same arguments and returns as :func:`rls_filter`; ``step`` in (0, 2).
     """
-    refs = np.ascontiguousarray(refs, dtype=np.float64)
-    d = np.ascontiguousarray(d, dtype=np.float64)
-    use = np.ones(d.size) if use is None else np.ascontiguousarray(use, dtype=np.float64)
-    y = np.empty(d.size)
-    w = np.zeros(refs.shape[1])
+    refs, d, use, y, w = _buffers(refs, d, use)
     (_nlms_c if compiled and HAVE_NUMBA else _nlms_loop)(refs, d, use, float(step), float(eps), y, w)
     return y, w
 

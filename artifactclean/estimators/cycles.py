@@ -198,6 +198,17 @@ class CycleEstimator(ArtifactEstimator):
         unlocked = step_rate(x[ref], fs) if grid is None else 0.0
         return ref, grid, unlocked, response
 
+    def _validate_params(self) -> None:
+        """The parameters every cycle estimator shares (subclasses add their own)."""
+        if not self.tracking_hz > 0:
+            raise ValueError(f"tracking_hz must be positive, got {self.tracking_hz!r}")
+        if self.dac not in ("auto", "off"):
+            raise ValueError(f"dac must be 'auto' or 'off', got {self.dac!r}")
+        if not self.margin_cycles >= 0:
+            raise ValueError(f"margin_cycles must be >= 0, got {self.margin_cycles!r}")
+        if not getattr(self, "outlier_z", 1.0) > 0:
+            raise ValueError(f"outlier_z must be positive, got {self.outlier_z!r}")
+
     def _block_plan(self, xb, blk, fs, offset):
         """The block's plan (from :meth:`prepare`, or made from ``xb`` now), warning on an unlocked DAC."""
         plan = getattr(self, "_plans", {}).get(block_key(blk))
@@ -408,16 +419,6 @@ class RowModelEstimator(CycleEstimator):
         """Context (s) an output sample needs on each side: the row filters' reach, per pass."""
         passes = 2 if self.robust else 1
         return passes * (HALF_S + 2.0 / freq_hz) + self.margin_cycles / freq_hz
-
-    def _validate_params(self) -> None:
-        if not self.tracking_hz > 0:
-            raise ValueError(f"tracking_hz must be positive, got {self.tracking_hz!r}")
-        if self.dac not in ("auto", "off"):
-            raise ValueError(f"dac must be 'auto' or 'off', got {self.dac!r}")
-        if not self.margin_cycles >= 0:
-            raise ValueError(f"margin_cycles must be >= 0, got {self.margin_cycles!r}")
-        if not self.outlier_z > 0:
-            raise ValueError(f"outlier_z must be positive, got {self.outlier_z!r}")
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

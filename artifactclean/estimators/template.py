@@ -236,16 +236,9 @@ class TemplateSubtraction(CycleEstimator):
         return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S
 
     def _validate_params(self) -> None:
+        super()._validate_params()
         if self.n_cycles is not None and (int(self.n_cycles) != self.n_cycles or self.n_cycles < 1):
             raise ValueError(f"n_cycles must be a positive integer or None, got {self.n_cycles!r}")
-        if not self.tracking_hz > 0:
-            raise ValueError(f"tracking_hz must be positive, got {self.tracking_hz!r}")
-        if self.dac not in ("auto", "off"):
-            raise ValueError(f"dac must be 'auto' or 'off', got {self.dac!r}")
-        if not self.margin_cycles >= 0:
-            raise ValueError(f"margin_cycles must be >= 0, got {self.margin_cycles!r}")
-        if not self.outlier_z > 0:
-            raise ValueError(f"outlier_z must be positive, got {self.outlier_z!r}")
 
     def _window(self, freq: float) -> int:
         if self.n_cycles is not None:
