@@ -110,3 +110,18 @@ def test_residue_null_is_calibrated_where_rayleigh_is_not():
         keep = rng.random(ph.size) < eff[np.floor(ph / (2 * np.pi) * 12).astype(int)]
         rej_small += residue_p_value(ph[keep], eff, n_sim=1000, seed=i) < alpha
     assert rej_small / 200 <= alpha + 0.04
+
+
+def test_lfp_phase_of_a_known_oscillation(rng):
+    from artifactclean.entrainment import lfp_phase
+
+    fs = 1000.0
+    t = np.arange(int(20 * fs)) / fs
+    x = np.cos(2 * np.pi * 8.0 * t + 0.4) + 0.3 * rng.standard_normal(t.size)
+    ph = lfp_phase(x, fs, (6.0, 10.0))
+    inner = slice(2000, -2000)
+    err = np.angle(np.exp(1j * (ph[inner] - np.mod(2 * np.pi * 8.0 * t[inner] + 0.4, 2 * np.pi))))
+    # 0 at the band's positive peak (scipy.signal.hilbert convention)
+    assert np.sqrt(np.mean(err ** 2)) < 0.2
+    with pytest.raises(ValueError, match="band"):
+        lfp_phase(x, fs, (10.0, 6.0))
