@@ -47,7 +47,7 @@ OUTPUT_NAMES = ("results.json", "results.csv", "report.html", "efficiency.png", 
 _CSV_COLUMNS = ["scenario", "seed", "method", "params_label", "recall", "precision", "phase_recall_dip",
                 "phase_recall_dip_floor", "delta_ppc_phase", "delta_ppc_phase_floor", "phase_biased",
                 "phase_biased_absolute", "delta_ppc_vs_oracle", "phase_recall_dip_vs_oracle", "plv_error_phase", "preferred_phase_error_deg", "waveform_correlation", "waveform_amplitude_ratio",
-                "spikeband_residual", "lfp_band_ratio", "lfp_error_away", "harmonic_excess", "lost_fraction",
+                "spikeband_residual", "lfp_band_ratio", "lfp_error_away", "harmonic_excess", "sideband_excess", "lost_fraction",
                 "seconds"]
 
 

@@ -4,7 +4,7 @@
 locked to it) into a recording, cleans it with a method (any callable), and
 scores, per channel and per bin of the stimulation cycle:
 
-* ``recall``, ``precision`` of the injected spikes (detections that the same
+* ``recall`` (also ``recall_per_channel``), ``precision`` of the injected spikes (detections that the same
   cleaning finds without the injection are the recording's own events, and
   a second detection within 2 ms after an injected spike is the detector's
   echo of it: neither counts against precision);
@@ -26,7 +26,8 @@ scores, per channel and per bin of the stimulation cycle:
   synthetic; for a recording of one's own, ``harmonic_excess``: power within
   1 Hz of the harmonics below 300 Hz during stimulation over that in the
   stimulation-free stretches of the same channel (ranked by its distance from
-  1 on a log scale);
+  1 on a log scale), and ``sideband_excess`` the same 1-3 Hz either side (the
+  heartbeat and respiration sidebands);
 * ``seconds`` of compute.
 
 A method is ``phase_biased`` when its ``delta_ppc_phase`` or its phase dip
@@ -83,7 +84,9 @@ def _detect_all(x, fs, threshold, lost=None):
     return [detect_spikes(sb[ch], fs, threshold=threshold) for ch in range(x.shape[0])], sb
 
 
-def _harmonic_excess(x, fs, stim, f0, lost):
+def _harmonic_excess(x, fs, stim, f0, lost, offsets=(0.0, 1.0)):
+    """Worst channel's power within ``offsets`` (Hz, inner and outer) of the harmonics below 300 Hz,
+    during stimulation over the stimulation-free stretches of the same channel."""
     if f0 is None or stim.all() or not stim.any():
         return float("nan")
     out = []
@@ -99,7 +102,8 @@ def _harmonic_excess(x, fs, stim, f0, lost):
             f, p = signal.welch(seg, fs=fs, nperseg=int(min(seg.size, 2 * fs)))
             sel = np.zeros(f.size, dtype=bool)
             for k in range(1, int(300 // f0) + 1):
-                sel |= np.abs(f - k * f0) <= 1.0
+                d = np.abs(f - k * f0)
+                sel |= (d >= offsets[0]) & (d <= offsets[1])
             pw.append(p[sel].sum())
         out.append(pw[0] / pw[1] if pw[1] > 0 else np.nan)
     return float(np.nanmax(out))
@@ -193,6 +197,9 @@ def evaluate_cleaner(cleaner, data: np.ndarray, fs: float, model, *, truth_neura
         h &= ~lost[tr.channels, tr.samples]
         hits[label] = h
     all_hits = np.concatenate([hits["uniform"], hits["locked"]])
+    all_ch = np.concatenate([uni.channels, lck.channels])
+    row["recall_per_channel"] = [float(all_hits[all_ch == ch].mean()) if np.any(all_ch == ch) else np.nan
+                                 for ch in range(n_ch)]
     row["n_injected"] = int(all_hits.size)
     row["recall"] = float(all_hits.mean()) if all_hits.size else np.nan
     # precision: detections not explained by the recording's own events
@@ -294,6 +301,8 @@ def evaluate_cleaner(cleaner, data: np.ndarray, fs: float, model, *, truth_neura
             row["lfp_error_away"] = float(max(f[1] for f in figs))
         row["residual_for_ranking"] = row["spikeband_residual"]
     row["harmonic_excess"] = _harmonic_excess(base, fs, stim, f0, lost)
+    # the heartbeat and respiration sidebands: 1-3 Hz either side of each harmonic
+    row["sideband_excess"] = _harmonic_excess(base, fs, stim, f0, lost, offsets=(1.0, 3.0))
     # without the truth: how far the harmonic bands are from the stimulation-free level, either way
     # (below it means neural signal was removed with the artifact)
     row.setdefault("residual_for_ranking", float(abs(np.log10(row["harmonic_excess"])))

@@ -110,3 +110,26 @@ def test_existing_outputs_are_not_overwritten(session):
     r = _run("--spikes", table, "--recording", path, "--stim-freq", 20, "--out", out, "--no-efficiency")
     assert r.returncode == 2 and "--force" in r.stderr
     assert (out / "lockcheck.json").read_text() == "{}"
+
+
+def test_spike_table_from_nix_spiketrains(tmp_path):
+    # neo.io.NixIO as the writer of the reference file: one SpikeTrain per unit
+    import neo
+    import quantities as pq
+
+    from artifactclean.lockcheck import read_spike_table
+
+    blk = neo.Block()
+    seg = neo.Segment()
+    blk.segments.append(seg)
+    seg.spiketrains.append(neo.SpikeTrain([0.5, 1.5, 2.5] * pq.s, t_stop=10 * pq.s, name="u7"))
+    st = neo.SpikeTrain([300.0, 400.0] * pq.ms, t_stop=10 * pq.s)
+    st.annotate(unit="u9")
+    seg.spiketrains.append(st)
+    path = tmp_path / "sorted.nix"
+    io = neo.io.NixIO(str(path), mode="ow")
+    io.write_block(blk)
+    io.close()
+    times, units = read_spike_table(path)
+    got = sorted(zip(units.tolist(), np.round(times, 6).tolist()))
+    assert got == [("u7", 0.5), ("u7", 1.5), ("u7", 2.5), ("u9", 0.3), ("u9", 0.4)]

@@ -98,6 +98,9 @@ def test_bench_on_an_open_ephys_recording(tmp_path):
     assert {row["method"] for row in rows} == {"template", "comb"}
     assert len(rows) == 3  # template default and n_cycles=15, comb
     assert all(any("phase" in k for k in row) for row in rows)
+    for row in rows:
+        assert len(row["recall_per_channel"]) == 4 and np.isfinite(row["sideband_excess"])
+        assert min(row["recall_per_channel"]) <= row["recall"] <= max(row["recall_per_channel"])
     assert res["summary"]["recommended"]["method"] == "template"
     page = (out / "report.html").read_text()
     assert page.count("data:image/png;base64,") == 4 and "Ranking rule" in page
