@@ -6,15 +6,17 @@ clean
     ``clean(data, fs, stim_freq=..., method=...)``: a cleaned copy of an array.
 fit_stimulation, StimulationModel
     Stimulation blocks, frequency, drift and the phase of every sample.
-TemplateSubtraction, NotchComb
-    Estimator objects with scikit-learn conventions.
+TemplateSubtraction, HarmonicRegression, CyclePCA, AdaptiveCanceller, NotchComb
+    Estimator objects with scikit-learn conventions (methods "template",
+    "regression", "pca", "adaptive", "comb").
 simulate_recording
     Synthetic contaminated recordings with ground truth (demo, tests, benchmarks).
 """
 
 from ._version import __version__
 from .api import clean
-from .estimators import METHODS, DEFAULT_METHOD, NotchComb, TemplateSubtraction, make_estimator
+from .estimators import (DEFAULT_METHOD, METHODS, AdaptiveCanceller, CyclePCA, HarmonicRegression, NotchComb,
+                         TemplateSubtraction, make_estimator)
 from .stimulation import StimulationModel, fit_stimulation, estimate_tone
 from .synthetic import simulate_recording
 
@@ -23,6 +25,9 @@ __all__ = [
     "clean",
     "METHODS",
     "DEFAULT_METHOD",
+    "AdaptiveCanceller",
+    "CyclePCA",
+    "HarmonicRegression",
     "NotchComb",
     "TemplateSubtraction",
     "make_estimator",

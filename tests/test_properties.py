@@ -105,3 +105,31 @@ def test_same_input_same_bytes_and_chunk_size_does_not_matter(tmp_path):
         side["provenance"].pop("created_utc")
         side["provenance"].pop("command")
     assert sa == sb
+
+
+@FAST
+@given(seed=st.integers(0, 10_000), method=st.sampled_from(["regression", "pca", "adaptive"]),
+       freq=st.sampled_from([10.0, 20.0, 40.0]))
+def test_every_method_keeps_stimulation_free_input_and_no_nan(seed, method, freq):
+    import warnings
+
+    rec = _trace(seed, freq, 0.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        y = ac.clean(rec.data, rec.fs, stim_freq=freq, method=method)
+    np.testing.assert_array_equal(y, rec.data)
+    rec2 = _trace(seed, freq, 2500.0)
+    y2 = ac.clean(rec2.data, rec2.fs, stim_freq=freq, method=method)
+    assert np.all(np.isfinite(y2)) and y2.shape == rec2.data.shape
+
+
+@FAST
+@given(seed=st.integers(0, 10_000), scale=st.floats(0.2, 5.0))
+def test_row_models_are_scale_equivariant(seed, scale):
+    # regression and PCA decide from ratios of powers to noise: scaling the input scales the output
+    rec = _trace(seed, 20.0, 2500.0)
+    model = ac.fit_stimulation(rec.data, rec.fs, stim_freq=20.0)
+    for cls in (ac.HarmonicRegression, ac.CyclePCA):
+        a = cls().fit(rec.data, fs=rec.fs, stim_model=model).artifact_
+        b = cls().fit(scale * rec.data, fs=rec.fs, stim_model=model).artifact_
+        np.testing.assert_allclose(b, scale * a, rtol=1e-6, atol=1e-6 * scale * np.abs(a).max())
