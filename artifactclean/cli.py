@@ -104,8 +104,11 @@ def _parser() -> argparse.ArgumentParser:
 
     k = sub.add_parser("lockcheck", help="phase locking of sorted units per condition, tested against residue")
     k.add_argument("--spikes", required=True, help="spike table: CSV with time_s,unit; .npz (times, units); or .nix")
-    k.add_argument("--recording", required=True, dest="input",
+    k.add_argument("--recording", dest="input",
                    help="the raw recording the spikes were sorted from (for the stimulation model)")
+    k.add_argument("--stim-table", help="instead of a recording: CSV of blocks (kind,start_s,stop_s,freq_hz"
+                                        "[,phase_deg,amplitude]); the efficiency is then --efficiency or flat")
+    k.add_argument("--efficiency", help="CSV phase_deg,recall: a detection efficiency measured elsewhere")
     add_input(k, positional=False)
     k.add_argument("--out", required=True, help="output directory")
     k.add_argument("--method", default="template", help="cleaning method whose detection efficiency is the null")
@@ -364,12 +367,20 @@ def _score_sorting(args) -> int:
 def _lockcheck(args) -> int:
     from .io.pipeline import fit_recording_stimulation, scan_recording
     from .entrainment import check_spike_times
-    from .lockcheck import check_out_dir, measure_efficiency, read_spike_table, run_lockcheck, write_lockcheck
+    from .lockcheck import check_out_dir, measure_efficiency, read_spike_table
 
     if not 0 < args.alpha < 1:
         raise ValueError(f"--alpha must be in (0, 1), got {args.alpha}")
     check_out_dir(Path(args.out), args.force)
+    if bool(args.input) == bool(args.stim_table):
+        raise ValueError("give either --recording or --stim-table (not both, not neither)")
     times, units = read_spike_table(args.spikes)
+    if args.stim_table:
+        from .lockcheck import read_efficiency, read_stim_table
+
+        model = read_stim_table(args.stim_table, duration_s=float(times.max()) + 1.0)
+        eff = read_efficiency(args.efficiency) if args.efficiency else None
+        return _lockcheck_report(args, times, units, model, eff)
     prof = _profile_settings(args)
     rec, channels, monitor, stim_freq = _open(args, prof)
     channels = list(range(rec.n_channels)) if channels is None else channels
@@ -380,7 +391,11 @@ def _lockcheck(args) -> int:
         raise ValueError("no stimulation found in the recording; pass --stim-freq, or --stim-channel with a monitor")
     check_spike_times(times, rec.n_samples / rec.fs)
     eff = None
-    if not args.no_efficiency:
+    if args.efficiency:
+        from .lockcheck import read_efficiency
+
+        eff = read_efficiency(args.efficiency)
+    elif not args.no_efficiency:
         main = model.main_block
         half = int(min(args.efficiency_seconds * rec.fs, main.stop - main.start) // 2)
         mid = (main.start + main.stop) // 2
@@ -389,6 +404,12 @@ def _lockcheck(args) -> int:
               f"cleaned with {args.method!r}", file=sys.stderr)
         eff = measure_efficiency(rec.read(a, b, channels), rec.fs, model.window(a, b), method=args.method,
                                  seed=args.seed)
+    return _lockcheck_report(args, times, units, model, eff)
+
+
+def _lockcheck_report(args, times, units, model, eff) -> int:
+    from .lockcheck import run_lockcheck, write_lockcheck
+
     res = run_lockcheck(times, units, model, efficiency=eff, alpha=args.alpha,
                         equivalence=tuple(args.equivalence) if args.equivalence else None,
                         n_perm=args.permutations, seed=args.seed)

@@ -24,7 +24,7 @@ from .estimators import make_estimator
 from .injection import cleaned_noise, detection_efficiency, inject_spikes
 from .stimulation import StimulationModel
 
-__all__ = ["OUTPUT_NAMES", "check_out_dir", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
+__all__ = ["OUTPUT_NAMES", "check_out_dir", "read_efficiency", "read_stim_table", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
 
 
 #: files lockcheck writes into its output directory
@@ -99,6 +99,56 @@ def read_spike_table(path) -> tuple[np.ndarray, np.ndarray]:
     if not np.all(np.isfinite(times)):
         raise ValueError(f"spike table {path} holds non-finite times")
     return times, units
+
+
+def read_stim_table(path, *, fs: float = 30000.0, duration_s: float | None = None) -> StimulationModel:
+    """A stimulation model from a table of blocks, for spike tables without a recording.
+
+    CSV columns ``kind`` (active or sham), ``start_s``, ``stop_s``, ``freq_hz`` and optionally
+    ``phase_deg`` (the stimulation phase at ``start_s``, default 0; 0 = positive peak of the
+    fundamental) and ``amplitude`` (for levels). ``duration_s`` defaults to the last block's end.
+    """
+    from .stimulation import StimBlock
+
+    path = Path(path)
+    if not path.exists():
+        raise ValueError(f"stimulation table {path} does not exist")
+    with open(path, newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    need = {"kind", "start_s", "stop_s", "freq_hz"}
+    if not rows or not need <= set(rows[0]):
+        raise ValueError(f"stimulation table {path} needs columns {sorted(need)}; it has "
+                         f"{list(rows[0]) if rows else 'no rows'}")
+    blocks = []
+    for i, r in enumerate(rows):
+        try:
+            a, b, f = float(r["start_s"]), float(r["stop_s"]), float(r["freq_hz"])
+            ph = np.radians(float(r.get("phase_deg") or 0.0))
+            amp = float(r.get("amplitude") or 1.0)
+        except ValueError as err:
+            raise ValueError(f"stimulation table {path}, row {i + 2}: {err}") from None
+        kind = r["kind"].strip().lower()
+        if kind not in ("active", "sham"):
+            raise ValueError(f"stimulation table {path}, row {i + 2}: kind must be active or sham, got {r['kind']!r}")
+        if not (b > a >= 0 and 0 < f < fs / 2):
+            raise ValueError(f"stimulation table {path}, row {i + 2}: need 0 <= start_s < stop_s and 0 < freq_hz < fs/2")
+        s0, s1 = int(round(a * fs)), int(round(b * fs))
+        blocks.append(StimBlock(kind, s0, s1, s0, s1, f, float(np.mod(ph, 2 * np.pi)), s0, amp))
+    blocks.sort(key=lambda x: x.start)
+    n = int(round((duration_s if duration_s is not None else max(x.stop for x in blocks) / fs) * fs))
+    return StimulationModel(fs=fs, n_samples=max(n, max(x.stop for x in blocks)), blocks=blocks, reference="table")
+
+
+def read_efficiency(path) -> dict:
+    """A detection efficiency profile from CSV ``phase_deg,recall`` (bins of equal width from 0)."""
+    with open(path, newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    if not rows or not {"phase_deg", "recall"} <= set(rows[0]):
+        raise ValueError(f"efficiency table {path} needs columns phase_deg, recall")
+    recall = [float(r["recall"]) for r in rows]
+    k = len(recall)
+    return dict(bin_edges_deg=np.linspace(0, 360, k + 1).tolist(), recall=recall, n=None, recall_overall=None,
+                method="supplied", injected=0, source=str(path))
 
 
 def measure_efficiency(data: np.ndarray, fs: float, model: StimulationModel, *, method: str = "template",
@@ -200,7 +250,8 @@ def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationMode
         e = np.asarray(eff["bin_edges_deg"])
         ax.step(e, np.r_[eff["recall"], eff["recall"][-1]], where="post")
         ax.set_ylim(0, 1.05)
-        ax.set_title(f"detection efficiency ({eff['injected']} injected, {eff['method']})", fontsize=9)
+        ax.set_title(f"detection efficiency ({eff['method']}, {eff['injected']} injected)" if eff["injected"]
+                     else f"detection efficiency (supplied: {Path(eff.get('source', '')).name})", fontsize=9)
     else:
         ax.set_title("detection efficiency not measured (flat null)", fontsize=9)
     ax.set_xlabel("stimulation phase (deg)")

@@ -133,3 +133,32 @@ def test_spike_table_from_nix_spiketrains(tmp_path):
     times, units = read_spike_table(path)
     got = sorted(zip(units.tolist(), np.round(times, 6).tolist()))
     assert got == [("u7", 0.5), ("u7", 1.5), ("u7", 2.5), ("u9", 0.3), ("u9", 0.4)]
+
+
+def test_lockcheck_from_a_stimulation_table(tmp_path):
+    # no recording: blocks given as a table, spikes locked to a known clock
+    rng = np.random.default_rng(12)
+    f, t0, t1 = 20.0, 2.0, 30.0
+    n = 2000
+    ph = rng.vonmises(np.radians(120.0), 1.5, n)
+    cycles = rng.integers(int(t0 * f) + 1, int(t1 * f) - 1, n)
+    times = np.sort((cycles + np.mod(ph, 2 * np.pi) / (2 * np.pi)) / f)  # phase 0 at t0 (phase_deg 0)
+    with open(tmp_path / "spikes.csv", "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["time_s", "unit"])
+        for t in times:
+            w.writerow([f"{t:.7f}", "a"])
+    (tmp_path / "blocks.csv").write_text(f"kind,start_s,stop_s,freq_hz,phase_deg\nactive,{t0},{t1},{f},0\n")
+    (tmp_path / "eff.csv").write_text("phase_deg,recall\n" + "".join(f"{30 * i},1.0\n" for i in range(12)))
+    out = tmp_path / "out"
+    r = _run("--spikes", tmp_path / "spikes.csv", "--stim-table", tmp_path / "blocks.csv",
+             "--efficiency", tmp_path / "eff.csv", "--out", out)
+    assert r.returncode == 0, r.stderr
+    res = json.loads((out / "lockcheck.json").read_text())
+    row = next(x for x in res["units"] if x["condition"] == "stim 20 Hz")
+    assert row["n_spikes"] == n and row["locked"]
+    assert abs(row["preferred_phase_deg"] - 120.0) < 5.0
+    assert abs(row["ppc"] - ppc(ph)) < 0.005
+    assert res["efficiency"]["method"] == "supplied"
+    r2 = _run("--spikes", tmp_path / "spikes.csv", "--out", tmp_path / "o2")
+    assert r2.returncode == 2 and "--stim-table" in r2.stderr
