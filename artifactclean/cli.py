@@ -109,6 +109,10 @@ def _parser() -> argparse.ArgumentParser:
     k.add_argument("--stim-table", help="instead of a recording: CSV of blocks (kind,start_s,stop_s,freq_hz"
                                         "[,phase_deg,amplitude]); the efficiency is then --efficiency or flat")
     k.add_argument("--efficiency", help="CSV phase_deg,recall: a detection efficiency measured elsewhere")
+    k.add_argument("--lfp", help="phases against an LFP band instead of the stimulation: a cleaned recording "
+                                 "(e.g. the .nix written by `clean`)")
+    k.add_argument("--lfp-channel", default="0", help="channel of --lfp (name or index, default 0)")
+    k.add_argument("--lfp-band", nargs=2, type=float, metavar=("LOW", "HIGH"), help="LFP band in Hz (with --lfp)")
     add_input(k, positional=False)
     k.add_argument("--out", required=True, help="output directory")
     k.add_argument("--method", default="template", help="cleaning method whose detection efficiency is the null")
@@ -408,13 +412,30 @@ def _lockcheck(args) -> int:
 
 
 def _lockcheck_report(args, times, units, model, eff) -> int:
-    from .lockcheck import run_lockcheck, write_lockcheck
+    from .lockcheck import lfp_spike_phases, run_lockcheck, write_lockcheck
 
-    res = run_lockcheck(times, units, model, efficiency=eff, alpha=args.alpha,
+    phases = None
+    if args.lfp:
+        from .io.reader import open_recording
+
+        if not args.lfp_band:
+            raise ValueError("--lfp needs --lfp-band LOW HIGH (Hz)")
+        lrec = open_recording(args.lfp)
+        if abs(lrec.n_samples / lrec.fs - model.n_samples / model.fs) > 1.0 / model.fs * 2 and args.input:
+            raise ValueError(f"--lfp lasts {lrec.n_samples / lrec.fs:.3f} s, the recording "
+                             f"{model.n_samples / model.fs:.3f} s: they must be the same session")
+        phases = lfp_spike_phases(lrec, lrec.channel_index(args.lfp_channel), times, tuple(args.lfp_band))
+        # an LFP phase carries no stimulation-phase detection bias: the efficiency null does not apply
+        eff = None
+    elif args.lfp_band:
+        raise ValueError("--lfp-band needs --lfp (the cleaned recording to take the LFP from)")
+    res = run_lockcheck(times, units, model, efficiency=eff, alpha=args.alpha, phases=phases,
                         equivalence=tuple(args.equivalence) if args.equivalence else None,
                         n_perm=args.permutations, seed=args.seed)
+    res["phase_source"] = (f"LFP {args.lfp_band[0]:g}-{args.lfp_band[1]:g} Hz of {args.lfp} channel {args.lfp_channel}"
+                           if args.lfp else "stimulation")
     res["command"] = "artifactclean " + " ".join(shlex.quote(x) for x in sys.argv[1:])
-    paths = write_lockcheck(Path(args.out), res, times, units, model, force=args.force)
+    paths = write_lockcheck(Path(args.out), res, times, units, model, phases=phases, force=args.force)
     print(f"{'unit':>6} {'condition':<14} {'spikes':>7} {'PPC':>8} {'phase':>6} {'p':>9} {'p residue':>10}  verdict")
     for r in res["units"]:
         verdict = "locked" if r["locked"] else ("within residue null" if r["flagged_residue"] else "not locked")

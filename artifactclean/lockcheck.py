@@ -24,7 +24,7 @@ from .estimators import make_estimator
 from .injection import cleaned_noise, detection_efficiency, inject_spikes
 from .stimulation import StimulationModel
 
-__all__ = ["OUTPUT_NAMES", "check_out_dir", "read_efficiency", "read_stim_table", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
+__all__ = ["OUTPUT_NAMES", "check_out_dir", "lfp_spike_phases", "read_efficiency", "read_stim_table", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
 
 
 #: files lockcheck writes into its output directory
@@ -151,6 +151,25 @@ def read_efficiency(path) -> dict:
                 method="supplied", injected=0, source=str(path))
 
 
+def lfp_spike_phases(rec, channel: int, times_s, band: tuple[float, float]) -> np.ndarray:
+    """Phase (rad) of an LFP band at each spike, from a cleaned recording read in chunks.
+
+    The channel is decimated to about 1 kHz (the chunked polyphase routine the
+    stimulation fit uses), band-passed and turned into an analytic signal
+    (:func:`artifactclean.entrainment.lfp_phase`); the unwrapped phase is
+    interpolated at the spike times. 0 is the band's positive peak.
+    """
+    from .entrainment import lfp_phase
+    from .stimulation import decimate_reader
+
+    lo, hi = band
+    target = max(4.0 * hi, 250.0)
+    x, fs_d = decimate_reader(lambda a, b: rec.read(a, b, [channel])[0], rec.n_samples, rec.fs, target)
+    ph = np.unwrap(lfp_phase(x, fs_d, band))
+    t = np.arange(x.size) / fs_d
+    return np.mod(np.interp(np.asarray(times_s, dtype=np.float64), t, ph), 2 * np.pi)
+
+
 def measure_efficiency(data: np.ndarray, fs: float, model: StimulationModel, *, method: str = "template",
                        amplitude: float = 6.0, rate_hz: float = 30.0, n_bins: int = 12, seed: int = 0) -> dict:
     """Detection efficiency against stimulation phase of ``data`` (raw), by injection, cleaning and detection."""
@@ -168,19 +187,20 @@ def measure_efficiency(data: np.ndarray, fs: float, model: StimulationModel, *, 
 
 
 def run_lockcheck(times_s, units, model: StimulationModel, *, efficiency: dict | None = None, alpha: float = 0.05,
-                  equivalence=None, n_perm: int = 1000, seed: int = 0) -> dict:
+                  equivalence=None, n_perm: int = 1000, phases=None, seed: int = 0) -> dict:
     """Locking statistics (see :func:`artifactclean.entrainment.lock_table`) from spike times in seconds."""
     times_s = np.asarray(times_s, dtype=np.float64)
     samples = np.round(times_s * model.fs).astype(np.int64)
     eff = None if efficiency is None else np.asarray(efficiency["recall"], dtype=np.float64)
     res = lock_table(samples, units, model, efficiency=eff, alpha=alpha, n_perm=n_perm, equivalence=equivalence,
-                     seed=seed)
+                     phases=phases, seed=seed)
     res["efficiency"] = efficiency
     res["stimulation"] = model.to_dict()
     return res
 
 
-def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationModel, *, force: bool = False) -> list:
+def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationModel, *, phases=None,
+                    force: bool = False) -> list:
     """Write ``lockcheck.json``, ``lockcheck.csv`` and the figures into ``out``; return the paths."""
     from .plotting import _plt
 
@@ -208,6 +228,8 @@ def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationMode
     from .entrainment import spike_phases
 
     ph, cond, _ = spike_phases(samples, model)
+    if phases is not None:
+        ph = np.asarray(phases, dtype=np.float64)
     units = np.asarray(units)
     fig, axes = plt.subplots(len(ulist), len(conds), figsize=(2.6 * len(conds) + 1, 1.9 * len(ulist) + 0.6),
                              squeeze=False, sharex=True)
@@ -222,7 +244,7 @@ def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationMode
             ax.set_title(f"unit {u}, {c}\nPPC {row['ppc']:.3f} {tag}", fontsize=8)
             ax.set_xticks([0, 90, 180, 270, 360])
     for ax in axes[-1]:
-        ax.set_xlabel("stimulation phase (deg)")
+        ax.set_xlabel("stimulation phase (deg)" if phases is None else "LFP phase (deg)")
     fig.tight_layout()
     fig.savefig(out / "phase_histograms.png", dpi=100)
     plt.close(fig)

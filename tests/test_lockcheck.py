@@ -162,3 +162,40 @@ def test_lockcheck_from_a_stimulation_table(tmp_path):
     assert res["efficiency"]["method"] == "supplied"
     r2 = _run("--spikes", tmp_path / "spikes.csv", "--out", tmp_path / "o2")
     assert r2.returncode == 2 and "--stim-table" in r2.stderr
+
+
+def test_lockcheck_against_an_lfp_band(session):
+    # spikes at the troughs of the 7 Hz oscillation of channel 0; phases from the cleaned .nix
+    from scipy import signal
+
+    rec, path, _, work = session
+    nix = work / "cleaned.nix"
+    if not nix.exists():
+        r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "clean", str(path), "-o", str(nix),
+                            "--stim-freq", "20"], capture_output=True, text=True, timeout=600)
+        assert r.returncode == 0, r.stderr
+    # the reference phase: scipy.signal.hilbert of the band-passed artifact-free truth
+    sos = signal.butter(4, [6.0, 8.0], btype="bandpass", fs=rec.fs, output="sos")
+    truth_phase = np.angle(signal.hilbert(signal.sosfiltfilt(sos, rec.neural[0])))
+    rng = np.random.default_rng(5)
+    cand = np.flatnonzero(np.abs(np.angle(np.exp(1j * (truth_phase - np.pi)))) < 0.3)
+    pick = np.sort(rng.choice(cand[(cand > rec.fs) & (cand < rec.data.shape[1] - rec.fs)], 800, replace=False))
+    table = work / "lfp_spikes.csv"
+    with open(table, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["time_s", "unit"])
+        for s in pick:
+            w.writerow([f"{s / rec.fs:.6f}", "x"])
+    out = work / "lfp_out"
+    r = _run("--spikes", table, "--recording", path, "--stim-freq", 20, "--lfp", nix, "--lfp-band", 6, 8,
+             "--out", out, "--no-efficiency")
+    assert r.returncode == 0, r.stderr
+    res = json.loads((out / "lockcheck.json").read_text())
+    assert res["phase_source"].startswith("LFP 6-8 Hz")
+    rows = [x for x in res["units"] if x["n_spikes"] > 50]
+    for x in rows:
+        # troughs: 180 degrees, and tightly locked
+        assert abs(((x["preferred_phase_deg"] - 180.0) + 180) % 360 - 180) < 20.0, x
+        assert x["ppc"] > 0.6 and x["locked"]
+    r2 = _run("--spikes", table, "--recording", path, "--lfp", nix, "--out", work / "o3")
+    assert r2.returncode == 2 and "--lfp-band" in r2.stderr
