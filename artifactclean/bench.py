@@ -24,6 +24,7 @@ import numpy as np
 from scipy import signal
 
 from ._version import __version__
+from .jsonsafe import plain
 from .validation import RANKING_RULE, evaluate_cleaner, method_cleaner, oracle_cleaner, rank_rows, relative_to_oracle
 
 __all__ = ["PARAM_GRID", "SYNTHETIC_SCENARIOS", "OUTPUT_NAMES", "check_bench_out", "run_bench", "synthetic_case",
@@ -227,8 +228,7 @@ def _figures(rows, cases) -> dict:
 
 
 def _clean_row(r: dict) -> dict:
-    out = {k: v for k, v in r.items() if not k.startswith("_")}
-    return json.loads(json.dumps(out, default=lambda v: v.item() if hasattr(v, "item") else str(v)).replace("NaN", "null"))
+    return plain({k: v for k, v in r.items() if not k.startswith("_")})
 
 
 def write_report(out: Path, rows: list[dict], cases: list[dict], *, title: str, command: str = "",
@@ -244,7 +244,7 @@ def write_report(out: Path, rows: list[dict], cases: list[dict], *, title: str, 
                    recommended=None if best is None else dict(method=best["method"], params=best["params"]),
                    version=__version__, command=command, created=datetime.datetime.now().isoformat(timespec="seconds"),
                    seeds=sorted({r["seed"] for r in rows}))
-    (out / "results.json").write_text(json.dumps(dict(rows=clean_rows, summary=summary), indent=2))
+    (out / "results.json").write_text(json.dumps(plain(dict(rows=clean_rows, summary=summary)), indent=2))
     with open(out / "results.csv", "w", newline="") as fh:
         w = csv.writer(fh)
         w.writerow(_CSV_COLUMNS)

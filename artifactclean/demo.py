@@ -10,6 +10,7 @@ import numpy as np
 
 from .estimators import METHODS, make_estimator
 from .evaluation import score_cleaning
+from .jsonsafe import plain
 from .synthetic import ArtifactSpec, BlockSpec, NeuralSpec, UnitSpec, simulate_recording
 
 __all__ = ["demo_recording", "run_demo"]
@@ -96,7 +97,7 @@ def run_demo(out: Path, *, seed: int = 7, duration_s: float = 30.0, methods=None
     plot_traces(out / "traces.png", rec.fs, rec.data, cleaned, rec.neural, start_s=5.0, span_s=0.2)
     plot_spectra(out / "spectra.png", rec.fs, rec.data, cleaned, rec.neural)
     with open(out / "demo_scores.json", "w") as fh:
-        json.dump(scores, fh, indent=2, default=_jsonable)
+        json.dump(plain(scores), fh, indent=2)
     echo(f"\nfigures and scores written to {out}/ (traces.png, spectra.png, demo_scores.json)")
     # the validation suite on the same session: known spikes injected, every method ranked
     from .bench import run_bench, synthetic_case, write_report
@@ -111,13 +112,3 @@ def run_demo(out: Path, *, seed: int = 7, duration_s: float = 30.0, methods=None
              f"{'phase-biased' if g['phase_biased'] else 'no phase bias'}")
     echo(f"report: {out}/report.html")
     return scores
-
-
-def _jsonable(v):
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.floating,)):
-        return float(v)
-    if isinstance(v, np.ndarray):
-        return v.tolist()
-    return str(v)

@@ -22,6 +22,7 @@ import numpy as np
 from .entrainment import lock_table
 from .estimators import make_estimator
 from .injection import cleaned_noise, detection_efficiency, inject_spikes
+from .jsonsafe import plain
 from .stimulation import StimulationModel
 
 __all__ = ["OUTPUT_NAMES", "check_out_dir", "lfp_spike_phases", "read_efficiency", "read_stim_table", "read_spike_table", "measure_efficiency", "run_lockcheck", "write_lockcheck"]
@@ -209,7 +210,7 @@ def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationMode
     out.mkdir(parents=True, exist_ok=True)
     paths = []
     with open(out / "lockcheck.json", "w") as fh:
-        json.dump(_finite(res), fh, indent=2, default=_jsonable)
+        json.dump(plain(res), fh, indent=2)
     paths.append(out / "lockcheck.json")
     cols = ["unit", "condition", "n_spikes", "duration_s", "rate_hz", "plv", "ppc", "ppc_across_blocks",
             "preferred_phase_deg", "rayleigh_z", "p_value", "p_value_residue", "q_value_residue", "locked",
@@ -283,24 +284,3 @@ def write_lockcheck(out: Path, res: dict, times_s, units, model: StimulationMode
     plt.close(fig)
     paths.append(out / "efficiency.png")
     return paths
-
-
-def _jsonable(v):
-    if isinstance(v, np.integer):
-        return int(v)
-    if isinstance(v, np.floating):
-        return None if not np.isfinite(v) else float(v)
-    if isinstance(v, np.ndarray):
-        return v.tolist()
-    return str(v)
-
-
-def _finite(v):
-    """NaN and inf become null: JSON has no NaN."""
-    if isinstance(v, dict):
-        return {k: _finite(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_finite(x) for x in v]
-    if isinstance(v, float) and not np.isfinite(v):
-        return None
-    return v

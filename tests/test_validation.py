@@ -157,3 +157,11 @@ def test_score_sorting_pairs_units_and_counts(tmp_path):
                         "--sorted", str(tmp_path / "sorted.csv"), "--json"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 0, r.stderr
     assert {x["injected_unit"]: x["sorted_unit"] for x in json.loads(r.stdout)} == {"0": "a", "1": "b"}
+
+
+def test_results_json_has_no_nan():
+    from artifactclean.jsonsafe import plain
+
+    out = plain({"a": np.float64("nan"), "b": [np.int64(3), np.array([1.0, np.inf])], "c": np.bool_(True)})
+    assert out == {"a": None, "b": [3, [1.0, None]], "c": True}
+    json.loads(json.dumps(out), parse_constant=lambda c: pytest.fail(f"non-JSON constant {c}"))
