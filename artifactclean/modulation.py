@@ -24,6 +24,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, signal
 
+from .estimators._kernels import gain_sums
+
 __all__ = ["GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "segment_gain",
            "segments_per_cycle", "smooth_gain"]
 
@@ -84,7 +86,7 @@ def segments_per_cycle(tracking_hz: float, f: float) -> int:
 
 
 def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
-                 per_cycle: int) -> tuple[np.ndarray, float]:
+                 per_cycle: int, *, compiled: bool = True) -> tuple[np.ndarray, float]:
     """Raw gain of each channel per part of a cycle against the stretch's mean cycle.
 
     Parameters
@@ -97,6 +99,8 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         Sampling and stimulation frequency (Hz).
     per_cycle : int
         Gain samples per cycle.
+    compiled : bool
+        Compiled sums (numba) when installed; the same numbers as numpy's.
 
     Returns
     -------
@@ -111,21 +115,19 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
     seg -= seg[0]
     n_seg = int(seg[-1]) + 1
     g = np.ones((x.shape[0], n_seg))
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    w = np.ascontiguousarray(w, dtype=np.float64)
+    # with an offset per segment: the slow LFP is an offset over part of a cycle, and
+    # the part of a cycle a segment covers has a non-zero mean
+    sw, sx, st, sxt, stt = gain_sums(x, w, b, seg, n_bins, n_seg, compiled=compiled)
+    sw = np.maximum(sw, 1e-12)
+    mx, mt = sx / sw, st / sw
+    num = sxt - sw * mx * mt
+    den = stt - sw * mt * mt
     for ch in range(x.shape[0]):
-        cnt = np.bincount(b, w[ch], n_bins)
-        tmpl = np.bincount(b, w[ch] * x[ch], n_bins) / np.maximum(cnt, 1e-12)
-        tmpl -= tmpl.mean()
-        t = tmpl[b]
-        # with an offset per segment: the slow LFP is an offset over part of a cycle, and
-        # the part of a cycle a segment covers has a non-zero mean
-        sw = np.maximum(np.bincount(seg, w[ch], n_seg), 1e-12)
-        mx = np.bincount(seg, w[ch] * x[ch], n_seg) / sw
-        mt = np.bincount(seg, w[ch] * t, n_seg) / sw
-        num = np.bincount(seg, w[ch] * x[ch] * t, n_seg) - sw * mx * mt
-        den = np.bincount(seg, w[ch] * t * t, n_seg) - sw * mt * mt
-        ok = den > 0.1 * np.median(den)
+        ok = den[ch] > 0.1 * np.median(den[ch])
         if ok.sum() >= 2:
-            g[ch] = np.interp(np.arange(n_seg), np.flatnonzero(ok), num[ok] / den[ok])
+            g[ch] = np.interp(np.arange(n_seg), np.flatnonzero(ok), num[ch, ok] / den[ch, ok])
     return g, f * per_cycle
 
 

@@ -32,6 +32,11 @@ def test_kernels_match_numpy(rng):
     starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
     for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
         np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)
+    # the gain sums follow numpy.bincount addition by addition: equal to the bit
+    b = rng.integers(0, 64, x.shape[1])
+    seg = np.sort(rng.integers(0, 90, x.shape[1]))
+    for a, c in zip(K.gain_sums(x, w, b, seg, 64, 90), K.gain_sums(x, w, b, seg, 64, 90, compiled=False)):
+        np.testing.assert_array_equal(a, c)
 
 
 @pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])

@@ -18,7 +18,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
     HAVE_NUMBA = False
 
-__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats"]
+__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "gain_sums"]
 
 
 def _jit(fn):
@@ -162,6 +162,64 @@ def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
             num[ch, k] = sxt - sx * st / sw
             den[ch, k] = stt - st * st / sw
             full[ch, k] = sf - su * su / (b - a)
+
+
+def _gain_bin_sums_loop(x, w, b, cnt, sbx):
+    # the order of the additions is that of numpy.bincount, so the sums agree to the bit
+    for ch in range(x.shape[0]):
+        for i in range(x.shape[1]):
+            cnt[ch, b[i]] += w[ch, i]
+            sbx[ch, b[i]] += w[ch, i] * x[ch, i]
+
+
+def _gain_seg_sums_loop(x, w, b, seg, tmpl, sw, sx, st, sxt, stt):
+    for ch in range(x.shape[0]):
+        for i in range(x.shape[1]):
+            k = seg[i]
+            t = tmpl[ch, b[i]]
+            wi = w[ch, i]
+            sw[ch, k] += wi
+            sx[ch, k] += wi * x[ch, i]
+            st[ch, k] += wi * t
+            sxt[ch, k] += wi * x[ch, i] * t
+            stt[ch, k] += wi * t * t
+
+
+_gain_bin_sums_c = _jit(_gain_bin_sums_loop)
+_gain_seg_sums_c = _jit(_gain_seg_sums_loop)
+
+
+def gain_sums(x, w, b, seg, n_bins, n_seg, *, compiled: bool = True):
+    """Sums behind :func:`artifactclean.modulation.segment_gain`, for all channels.
+
+    Returns ``sw, sx, st, sxt, stt`` (n_ch, n_seg): per segment the sums of
+    ``w``, ``w x``, ``w t``, ``w x t`` and ``w t t``, with ``t`` the weighted
+    mean cycle of each channel (``n_bins`` phase bins ``b``) less its mean.
+    The numpy twin is ``numpy.bincount``, which the compiled loops follow
+    addition by addition.
+    """
+    n_ch = x.shape[0]
+    if compiled and HAVE_NUMBA:
+        cnt, sbx = np.zeros((n_ch, n_bins)), np.zeros((n_ch, n_bins))
+        _gain_bin_sums_c(x, w, b, cnt, sbx)
+    else:
+        cnt = np.stack([np.bincount(b, w[ch], n_bins) for ch in range(n_ch)])
+        sbx = np.stack([np.bincount(b, w[ch] * x[ch], n_bins) for ch in range(n_ch)])
+    tmpl = sbx / np.maximum(cnt, 1e-12)
+    tmpl -= tmpl.mean(axis=1, keepdims=True)
+    if compiled and HAVE_NUMBA:
+        out = [np.zeros((n_ch, n_seg)) for _ in range(5)]
+        _gain_seg_sums_c(x, w, b, seg, tmpl, *out)
+        return tuple(out)
+    out = [np.empty((n_ch, n_seg)) for _ in range(5)]
+    for ch in range(n_ch):
+        t = tmpl[ch][b]
+        out[0][ch] = np.bincount(seg, w[ch], n_seg)
+        out[1][ch] = np.bincount(seg, w[ch] * x[ch], n_seg)
+        out[2][ch] = np.bincount(seg, w[ch] * t, n_seg)
+        out[3][ch] = np.bincount(seg, w[ch] * x[ch] * t, n_seg)
+        out[4][ch] = np.bincount(seg, w[ch] * t * t, n_seg)
+    return tuple(out)
 
 
 _phase_sums_c = _jit(_phase_sums_loop)
