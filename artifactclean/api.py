@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from .estimators import DEFAULT_METHOD, make_estimator
+from .parallel import check_workers, clean_in_groups
 
 __all__ = ["clean"]
 
@@ -18,6 +19,7 @@ def clean(
     method: str = DEFAULT_METHOD,
     nan_policy: str = "raise",
     clip_level: float | None = None,
+    workers: int = 1,
     **params,
 ) -> np.ndarray:
     """Remove the stimulation artifact from a recording.
@@ -35,11 +37,16 @@ def clean(
         A recorded stimulator monitor signal; the stimulation phase comes
         from it instead of the data.
     method : str
-        ``"template"`` (default) or ``"comb"``.
+        ``"template"`` (default), ``"regression"``, ``"pca"``, ``"adaptive"`` or ``"comb"``.
     nan_policy : {"raise", "blank"}
         What to do with NaN or inf samples: raise, or treat them as lost.
     clip_level : float, optional
         Amplifier rail in the unit of ``data``; found from the data if None.
+    workers : int
+        Threads cleaning groups of channels at once (0: one per core). The
+        result equals that of one worker (channels are cleaned independently
+        once the stimulation model and the block plans are fixed on all of
+        them); see :mod:`artifactclean.parallel`.
     **params
         Parameters of the chosen estimator (see its class).
 
@@ -58,6 +65,10 @@ def clean(
         samples, wrong dimensions.
     """
     est = make_estimator(method, **params)
+    workers = check_workers(workers)
+    if workers > 1 and np.ndim(data) == 2 and np.shape(data)[0] > 1:
+        return clean_in_groups(est, data, fs, workers=workers, stim_freq=stim_freq, stim_reference=stim_reference,
+                               clip_level=clip_level, nan_policy=nan_policy)[0]
     return est.fit_transform(
         data, fs=fs, stim_freq=stim_freq, stim_reference=stim_reference,
         nan_policy=nan_policy, clip_level=clip_level,

@@ -81,6 +81,10 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--force", action="store_true", help="overwrite an existing output")
     c.add_argument("--gain-uv", type=float, help="int16 step in uV for .dat/.bin (default: the input's own)")
     c.add_argument("--chunk-seconds", type=float, default=10.0, help="seconds read at a time (default 10)")
+    c.add_argument("--workers", type=int, default=1,
+                   help="threads cleaning groups of channels at once (default 1; 0: one per core); same output")
+    c.add_argument("--cluster", metavar="ADDRESS",
+                   help="dask scheduler address (tcp://host:8786): clean the pieces there, write here")
 
     g = sub.add_parser("bench", help="inject known spikes, run every method, rank them: built-in scenarios "
                                      "(--synthetic) or your own recording")
@@ -244,6 +248,7 @@ def _clean(args) -> int:
     out = clean_recording(rec, args.output, channels=channels, method=method, params=params, stim_freq=stim_freq,
                           monitor=monitor, force=args.force, gain_uv=args.gain_uv, chunk_s=args.chunk_seconds,
                           progress=_Bar(not args.quiet and sys.stderr.isatty()),
+                          workers=args.workers, cluster=args.cluster,
                           command="artifactclean " + " ".join(shlex.quote(a) for a in sys.argv[1:]))
     st = out["stimulation"]
     n_blocks = sum(1 for b in st["blocks"] if b["kind"] != "off")

@@ -220,6 +220,38 @@ class ArtifactEstimator(BaseEstimator):
         """
         return [(0, model.n_samples, None)]
 
+    #: attributes :meth:`prepare` sets that a copy for other channels carries along
+    _prepared_attrs: tuple = ()
+
+    def for_channels(self, channels) -> tuple["ArtifactEstimator", list[int]]:
+        """A clone for a subset of the channels, carrying what ``prepare`` decided.
+
+        Workers clean groups of channels with such clones. Every estimator
+        here treats channels independently except for the reference channel
+        a block plan reads (the DAC tick edges of the template), which the
+        clone's channel list then includes.
+
+        Parameters
+        ----------
+        channels : sequence of int
+            Channel indices (into the array ``prepare`` saw) the clone cleans.
+
+        Returns
+        -------
+        estimator : ArtifactEstimator
+            Unfitted clone, prepared for ``fit_channels``.
+        fit_channels : list of int
+            ``channels`` in order, then any channel the clone must see besides;
+            fit the clone on these and keep the first ``len(channels)`` rows.
+        """
+        from sklearn.base import clone
+
+        est = clone(self)
+        for name in self._prepared_attrs:
+            if hasattr(self, name):
+                setattr(est, name, getattr(self, name))
+        return est, [int(c) for c in channels]
+
     # subclasses ----------------------------------------------------------
     _method_name = "base"
 

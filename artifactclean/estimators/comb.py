@@ -62,6 +62,8 @@ class NotchComb(ArtifactEstimator):
             return np.zeros((0, 6))
         return np.vstack([signal.tf2sos(*signal.iirnotch(h, h / self.bandwidth_hz, fs=fs)) for h in harmonics])
 
+    _prepared_attrs = ("_freq",)
+
     def prepare(self, read, model, fs: float) -> None:
         """Take the notch frequency from the whole recording's main block (file pieces call this),
         so pieces without a block of their own are filtered like the rest."""

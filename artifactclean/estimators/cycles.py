@@ -19,7 +19,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
-from ..modulation import _FOOT, HALF_S, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, segment_gain, \
+from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, segment_gain, \
     segments_per_cycle
 from ..staircase import find_dac_grid, step_rate
 from ._kernels import grouped_eval
@@ -115,6 +115,25 @@ def spike_outliers(resid, wb, fs, u, span_cycles, outlier_z):
     return w, int(spread.sum())
 
 
+def _subset_plan(plan, fit: list[int]):
+    """A block plan for the channels ``fit`` (indices into the channels the plan was made on).
+
+    The reference's gain response row is kept: a reference outside ``fit``
+    gets the row after them, so the report names the lines it passes as the
+    whole-array run does.
+    """
+    ref, grid, unlocked, response = plan
+    rows = list(fit)
+    if ref in rows:
+        new_ref = rows.index(ref)
+    else:
+        new_ref = len(rows)
+        rows.append(ref)
+    if response is not None:
+        response = GainResponse(response.freqs, response.response[rows], response.rate)
+    return new_ref, grid, unlocked, response
+
+
 class CycleEstimator(ArtifactEstimator):
     """Base of the estimators that model the artifact cycle by cycle within each block.
 
@@ -166,6 +185,27 @@ class CycleEstimator(ArtifactEstimator):
         whole array is cleaned at once.
         """
         self._plans = {block_key(b): self._plan(read, b, fs) for b in model.blocks}
+
+    #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
+    _reads_reference = False
+
+    def for_channels(self, channels):
+        """A clone for ``channels`` with the block plans of :meth:`prepare` restricted to them.
+
+        A plan's reference channel and gain responses are indexed into the
+        channels the clone sees; when the estimator reads the reference
+        channel's data (:attr:`_reads_reference`, with a DAC grid) that channel
+        is added to ``fit_channels``.
+        """
+        est, fit = super().for_channels(channels)
+        plans = getattr(self, "_plans", None)
+        if plans is None:
+            return est, fit
+        for ref, grid, _, _ in plans.values():
+            if self._reads_reference and grid is not None and ref not in fit:
+                fit.append(int(ref))
+        est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
+        return est, fit
 
     def _plan(self, read, blk, fs):
         f = blk.freq_hz

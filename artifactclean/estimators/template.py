@@ -193,6 +193,7 @@ class TemplateSubtraction(CycleEstimator):
     """
 
     _method_name = "template"
+    _reads_reference = True
 
     def __init__(
         self,

@@ -21,6 +21,7 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Sequence
@@ -32,6 +33,8 @@ from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..staircase import find_dac_grid, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
+from ..parallel import (LockedReader, RecordingSpec, _subset_clip, channel_groups, check_workers, client_threads,
+                        open_client, ordered_results, piece_task)
 from .reader import NeoRecording, Recording
 from .writers import open_writer, output_paths
 
@@ -185,6 +188,8 @@ def clean_recording(
     max_range_s: float = 30.0,
     progress: Progress | None = None,
     command: str | None = None,
+    workers: int = 1,
+    cluster=None,
 ) -> dict:
     """Clean a recording into ``output`` (``.dat``/``.bin`` or ``.nix``).
 
@@ -212,6 +217,14 @@ def clean_recording(
         edges the result then differs slightly from cleaning the whole
         array at once.
     progress : callable(done, total, stage), optional
+    workers : int
+        Threads cleaning groups of channels at once (0: one per core); with
+        ``cluster``, the number of channel groups (default: the cluster's
+        threads). The output is the same whatever the count.
+    cluster : dask.distributed.Client or str, optional
+        A dask client, or a scheduler address such as ``"tcp://host:8786"``:
+        pieces are cleaned there, each task opening the file by path, and
+        written here in order.
 
     Returns
     -------
@@ -221,6 +234,13 @@ def clean_recording(
     """
     source = Path(rec.path) if isinstance(rec, NeoRecording) else None
     check_output(Path(output), source, force)
+    n_groups = check_workers(workers)
+    if cluster is not None:
+        if not isinstance(cluster, str) and not hasattr(cluster, "submit"):
+            raise TypeError(f"cluster must be a dask.distributed.Client or a scheduler address, "
+                            f"got {type(cluster).__name__}")
+        if source is None:
+            raise TypeError("a dask cluster opens the recording by path in each task: pass a file, not an array")
     if channels is None:
         channels = [i for i in range(rec.n_channels) if monitor is None or monitor[0] is not rec or i != monitor[1]]
     channels = list(channels)
@@ -252,79 +272,144 @@ def clean_recording(
     writer = open_writer(output, rec.fs, names, n, gain_uv=gain_uv) if Path(output).suffix.lower() != ".nix" \
         else open_writer(output, rec.fs, names, n)
     fs = rec.fs
-    with writer:
-        def emit(y, lost, a):
-            writer.write(y)
-            for ch in np.flatnonzero(lost.any(axis=1)):
-                for s0, s1 in mask_runs(lost[ch]):
-                    stretches.append(dict(channel=names[ch], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
-            if progress:
-                progress(a + y.shape[1], n, "cleaning")
+    client, own_client = open_client(cluster)
+    pool = None
+    try:
+        if client is not None:
+            src = RecordingSpec.of(rec)
+            submit_fn = lambda fn, *a: client.submit(fn, *a, pure=False)  # noqa: E731
+            n_groups = client_threads(client) if workers == 1 else n_groups
+        elif n_groups > 1:
+            src = LockedReader(rec)
+            pool = ThreadPoolExecutor(max_workers=n_groups)
+            submit_fn = pool.submit
+        else:
+            src = LockedReader(rec)
+            submit_fn = _run_now
+        groups = channel_groups(len(channels), n_groups)
+        read_all = src.read if isinstance(src, LockedReader) else rec.read
+        with writer:
+            def emit(y, lost, a):
+                writer.write(y)
+                for ch in np.flatnonzero(lost.any(axis=1)):
+                    for s0, s1 in mask_runs(lost[ch]):
+                        stretches.append(dict(channel=names[ch], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
+                if progress:
+                    progress(a + y.shape[1], n, "cleaning")
 
-        def copy(a0, b0):
-            for a, b in _chunks(a0, b0, chunk):
-                x = rec.read(a, b, channels)
-                lost = find_clipped(x, clip_level=rails)
-                x[lost] = 0.0
-                emit(x, lost, a)
+            def copy(a0, b0):
+                for a, b in _chunks(a0, b0, chunk):
+                    x = read_all(a, b, channels)
+                    lost = find_clipped(x, clip_level=rails)
+                    x[lost] = 0.0
+                    emit(x, lost, a)
 
-        pos = 0
-        max_len = max(int(max_range_s * fs * 4 / len(channels)), chunk)
-        if hasattr(est, "prepare"):
-            # block-level decisions from the same stretch an array run would use
-            est.prepare(lambda a, b: rec.read(a, b, channels), model, fs)
-        for s, e, blk in est.work_ranges(model, fs):
-            copy(pos, s)
-            f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
-            ctx = int(np.ceil(est.context_seconds(f_ctx) * fs))
-            # a piece holds at least twice its context as core, up to twice the memory budget;
-            # at low frequencies (long context) the context is cut there, and pieces then
-            # differ from a whole-array run by a fraction of a microvolt near their edges
-            piece_len = min(max(max_len, 4 * ctx), 2 * max_len)
-            ctx = min(ctx, piece_len // 4)
-            if e - s <= piece_len:
-                pieces, ctx = [(s, e)], 0
-            else:
-                # every piece but the last reads piece_len samples (core plus context), whatever
-                # the block's length, so memory follows the piece and not the recording
-                pieces, a = [], s
-                while a < e:
-                    lo_ = max(s, a - ctx)
-                    b = min(e, lo_ + piece_len - ctx)
-                    pieces.append((a, b))
-                    a = b
-            for a, b in pieces:
-                lo_, hi_ = max(s, a - ctx), min(e, b + ctx)
-                x = rec.read(lo_, hi_, channels)
-                est.fit(x, fs=fs, stim_model=model.window(lo_, hi_), clip_level=rails)
-                y = est.transform(x)[:, a - lo_: b - lo_].copy()
-                lost = est.lost_[:, a - lo_: b - lo_].copy()
-                reports.append(est.report_)
-                # the fitted arrays are a piece long: drop them before the next piece is read
-                del x, est.artifact_, est.lost_
+            max_len = max(int(max_range_s * fs * 4 / len(channels)), chunk)
+            if hasattr(est, "prepare"):
+                # block-level decisions from the same stretch an array run would use, on all channels
+                est.prepare(lambda a, b: read_all(a, b, channels), model, fs)
+
+            def items():
+                pos = 0
+                for s, e, blk in est.work_ranges(model, fs):
+                    if s > pos:
+                        yield "copy", (pos, s)
+                    for piece in _pieces(s, e, blk, est, model, fs, max_len):
+                        yield "tasks", piece
+                    pos = e
+                if pos < n:
+                    yield "copy", (pos, n)
+
+            def submit(piece):
+                lo_, hi_, a, b = piece
+                window = model.window(lo_, hi_)
+                futures = []
+                for g in groups:
+                    # a fresh clone per task: tasks of consecutive pieces run at once
+                    sub, fit = est.for_channels(g)
+                    futures.append(submit_fn(piece_task, src, [channels[i] for i in fit], len(g), lo_, hi_, a, b,
+                                             sub, window, _subset_clip(rails, fit), fs))
+                return futures
+
+            # one piece ahead per worker keeps them busy while the previous piece is written
+            ahead = 1 if submit_fn is _run_now else 2
+            for kind, payload, results in ordered_results(items(), submit, ahead):
+                if kind == "copy":
+                    copy(*payload)
+                    continue
+                _, _, a, b = payload
+                y = np.concatenate([r[0] for r in results], axis=0)
+                lost = np.concatenate([r[1] for r in results], axis=0)
+                if len(results) == 1:
+                    reports.append(results[0][2])
+                else:
+                    reports.append(dict(groups=[dict(channels=[names[i] for i in g], **r[2])
+                                                for g, r in zip(groups, results)]))
+                del results
                 emit(y, lost, a)
                 del y, lost
                 _release_memory()
-            pos = e
-        copy(pos, n)
-        meta = dict(
-            provenance=dict(
-                artifactclean_version=__version__,
-                method=method,
-                params=est.get_params(),
-                estimator_report=reports,
-                stimulation=model.to_dict(),
-                input=_checksum(source) if source is not None else dict(path=rec.source),
-                channels=names,
-                created_utc=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-                command=command,
-            ),
-            clipped_stretches=_merge(stretches),
-        )
-        written = writer.close(meta)
+            meta = dict(
+                provenance=dict(
+                    artifactclean_version=__version__,
+                    method=method,
+                    params=est.get_params(),
+                    estimator_report=reports,
+                    stimulation=model.to_dict(),
+                    input=_checksum(source) if source is not None else dict(path=rec.source),
+                    channels=names,
+                    created_utc=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+                    command=command,
+                    workers=len(groups),
+                    cluster=None if client is None else str(client.scheduler.address),
+                ),
+                clipped_stretches=_merge(stretches),
+            )
+            written = writer.close(meta)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+        if own_client:
+            client.close()
     return dict(written=[str(p) for p in written], stimulation=model.to_dict(),
                 clipped_stretches=meta["clipped_stretches"], saturated=getattr(writer, "saturated", 0),
                 gain_uv=gain_uv if Path(output).suffix.lower() != ".nix" else None)
+
+
+class _Done:
+    """A finished task, for the single-worker path (computed when submitted)."""
+
+    def __init__(self, value):
+        self._value = value
+
+    def result(self):
+        return self._value
+
+
+def _run_now(fn, *args):
+    return _Done(fn(*args))
+
+
+def _pieces(s: int, e: int, blk, est, model, fs: float, max_len: int) -> list[tuple[int, int, int, int]]:
+    """``(lo, hi, a, b)`` per piece of the work range ``s..e``: read ``lo..hi``, keep ``a..b``."""
+    f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
+    ctx = int(np.ceil(est.context_seconds(f_ctx) * fs))
+    # a piece holds at least twice its context as core, up to twice the memory budget;
+    # at low frequencies (long context) the context is cut there, and pieces then
+    # differ from a whole-array run by a fraction of a microvolt near their edges
+    piece_len = min(max(max_len, 4 * ctx), 2 * max_len)
+    ctx = min(ctx, piece_len // 4)
+    if e - s <= piece_len:
+        return [(s, e, s, e)]
+    # every piece but the last reads piece_len samples (core plus context), whatever
+    # the block's length, so memory follows the piece and not the recording
+    out, a = [], s
+    while a < e:
+        lo_ = max(s, a - ctx)
+        b = min(e, lo_ + piece_len - ctx)
+        out.append((lo_, min(e, b + ctx), a, b))
+        a = b
+    return out
 
 
 def _release_memory() -> None:

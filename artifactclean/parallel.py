@@ -1,0 +1,221 @@
+"""Cleaning spread over workers: groups of channels, on threads or on a dask cluster.
+
+Every estimator treats channels independently once the stimulation model and
+the per-block plans (:meth:`prepare`) are fixed on the whole channel set, so a
+recording can be cleaned as groups of channels with exactly the numbers of a
+single run. Local workers are threads: numpy's array operations and the
+compiled inner loops (numba, ``nogil``) release the interpreter lock, and
+threads share the recording instead of copying it. A dask cluster
+(:mod:`dask.distributed`) runs the same tasks in other processes or on other
+machines; files are then opened inside each task by path (see
+:class:`RecordingSpec`), because neo readers do not pickle after a read.
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from typing import Callable, Iterable, Sequence
+
+import numpy as np
+
+__all__ = ["channel_groups", "check_workers", "clean_in_groups", "RecordingSpec", "ordered_results", "open_client",
+           "client_threads"]
+
+
+def check_workers(workers) -> int:
+    """``workers`` as a positive int (``None`` or 0 means one per core)."""
+    if workers is None or (isinstance(workers, (int, np.integer)) and not isinstance(workers, bool) and workers == 0):
+        return max(1, os.cpu_count() or 1)
+    if isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 0:
+        raise ValueError(f"workers must be a positive integer (0 or None: one per core), got {workers!r}")
+    return int(workers)
+
+
+def channel_groups(n_channels: int, n_groups: int) -> list[list[int]]:
+    """Split ``range(n_channels)`` into at most ``n_groups`` contiguous groups of near-equal size."""
+    n_groups = max(1, min(int(n_groups), int(n_channels)))
+    bounds = np.linspace(0, n_channels, n_groups + 1).round().astype(int)
+    return [list(range(a, b)) for a, b in zip(bounds[:-1], bounds[1:]) if b > a]
+
+
+def _subset_clip(clip_level, fit: list[int]):
+    """``clip_level`` for the channels ``fit``: per-channel rails are indexed, the rest pass through."""
+    if clip_level is None or np.ndim(clip_level) == 0:
+        return clip_level
+    hi, lo = (np.asarray(v, dtype=float).reshape(-1) for v in clip_level)
+    return hi[fit], lo[fit]
+
+
+def _fit_group(est, x, n_keep: int, fit_kwargs: dict):
+    """Fit ``est`` on rows ``x`` and return the first ``n_keep`` rows of artifact and lost mask, and the report."""
+    est.fit(x, **fit_kwargs)
+    return est.artifact_[:n_keep], est.lost_[:n_keep], est.report_
+
+
+def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_reference=None,
+                    clip_level=None, nan_policy: str = "raise") -> tuple[np.ndarray, np.ndarray, list[dict]]:
+    """Clean an array as groups of channels on ``workers`` threads.
+
+    The stimulation model is fitted once on all channels and, for estimators
+    that plan per block, :meth:`prepare` runs on all channels, exactly as a
+    single :meth:`fit` would; each group is then fitted by a clone from
+    :meth:`~artifactclean.estimators.ArtifactEstimator.for_channels`.
+
+    Parameters
+    ----------
+    est : ArtifactEstimator
+    data : array_like, shape (n_channels, n_samples) or (n_samples,)
+    fs : float
+    workers : int
+    stim_freq, stim_reference, clip_level, nan_policy
+        As for :meth:`ArtifactEstimator.fit`.
+
+    Returns
+    -------
+    cleaned : ndarray, same shape as ``data``
+    lost : ndarray of bool, shape (n_channels, n_samples)
+    reports : list of dict
+        One per group, with the group's channel indices.
+    """
+    import warnings
+
+    from .estimators.base import _check_reference, _fit_model, validate_recording
+
+    est._validate_params()
+    x, fs, squeeze = validate_recording(data, fs, nan_policy=nan_policy)
+    finite = np.isfinite(x)
+    x_model = np.where(finite, x, 0.0) if not finite.all() else x
+    monitor = _check_reference(stim_reference, x.shape[1])
+    model = _fit_model(x_model, fs, stim_freq, monitor)
+    if not model.blocks:
+        hint = f" near {stim_freq} Hz" if stim_freq else ""
+        warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
+                      "frequency hint may be wrong, run `artifactclean survey` without it", stacklevel=3)
+    if hasattr(est, "prepare"):
+        est.prepare(lambda a, b: x_model[:, a:b], model, fs)
+    groups = channel_groups(x.shape[0], workers)
+    jobs = []
+    with ThreadPoolExecutor(max_workers=len(groups)) as pool:
+        for g in groups:
+            sub, fit = est.for_channels(g)
+            kwargs = dict(fs=fs, stim_model=model, clip_level=_subset_clip(clip_level, fit),
+                          stim_reference=monitor, nan_policy=nan_policy)
+            jobs.append(pool.submit(_fit_group, sub, x[fit], len(g), kwargs))
+        parts = [j.result() for j in jobs]
+    artifact = np.concatenate([p[0] for p in parts], axis=0)
+    lost = np.concatenate([p[1] for p in parts], axis=0)
+    with np.errstate(invalid="ignore"):
+        x -= artifact
+    x[lost] = 0.0
+    reports = [dict(channels=g, **p[2]) for g, p in zip(groups, parts)]
+    return (x[0] if squeeze else x), lost, reports
+
+
+# ---------------------------------------------------------------- files
+@dataclass(frozen=True)
+class RecordingSpec:
+    """What reopens a file recording inside a task: path, rawio format, stream, block, segment."""
+
+    path: str
+    format: str | None
+    stream: int
+    block: int
+    segment: int
+
+    @classmethod
+    def of(cls, rec) -> "RecordingSpec":
+        return cls(str(rec.path), rec.format, int(rec.stream_index), int(rec.block), int(rec.segment))
+
+    def open(self):
+        """The recording, opened once per process (headers are parsed once, reads are lazy)."""
+        key = self
+        with _OPEN_LOCK:
+            rec = _OPEN.get(key)
+            if rec is None:
+                from .io.reader import NeoRecording
+
+                rec = NeoRecording(self.path, format=self.format, stream=self.stream, block=self.block,
+                                   segment=self.segment)
+                _OPEN[key] = rec
+        return rec
+
+
+_OPEN: dict = {}
+_OPEN_LOCK = threading.Lock()
+
+
+class LockedReader:
+    """Reads of one open recording shared by threads, one at a time."""
+
+    def __init__(self, rec):
+        self.rec = rec
+        self.lock = threading.Lock()
+
+    def open(self):
+        return self
+
+    def read(self, a, b, channels):
+        with self.lock:
+            return self.rec.read(a, b, channels)
+
+
+def piece_task(source, channels: Sequence[int], n_keep: int, lo: int, hi: int, a: int, b: int, est, model,
+               clip_level, fs: float):
+    """Read samples ``lo..hi`` of ``channels`` from ``source``, clean them, return the core ``a..b``.
+
+    Runs in a worker: ``source`` is a :class:`LockedReader` (threads) or a
+    :class:`RecordingSpec` (processes, a cluster), opened here.
+    """
+    x = source.open().read(lo, hi, list(channels))
+    est.fit(x, fs=fs, stim_model=model, clip_level=clip_level)
+    y = est.transform(x)[:n_keep, a - lo: b - lo].copy()
+    lost = est.lost_[:n_keep, a - lo: b - lo].copy()
+    return y, lost, est.report_
+
+
+def ordered_results(items: Iterable, submit: Callable, ahead: int):
+    """Yield items in order with their task results, keeping up to ``ahead`` items submitted in advance.
+
+    ``items`` yields ``(kind, payload)``; ``submit(payload)`` returns a list of
+    futures for items of kind ``"tasks"`` (other kinds pass through with
+    ``None``). Memory stays bounded by ``ahead`` items, whatever the length.
+    """
+    queue: deque = deque()
+    it = iter(items)
+    done = False
+    while True:
+        while not done and sum(k == "tasks" for k, _, _ in queue) < ahead:
+            try:
+                kind, payload = next(it)
+            except StopIteration:
+                done = True
+                break
+            queue.append((kind, payload, submit(payload) if kind == "tasks" else None))
+        if not queue:
+            return
+        kind, payload, futures = queue.popleft()
+        yield kind, payload, None if futures is None else [f.result() for f in futures]
+
+
+def open_client(cluster):
+    """A ``dask.distributed.Client`` from a client, a scheduler address, or None; and whether we own it."""
+    if cluster is None:
+        return None, False
+    try:
+        from dask.distributed import Client
+    except ImportError as exc:  # pragma: no cover - depends on the installation
+        raise ImportError("a dask cluster needs dask.distributed: pip install 'artifactclean[cluster]'") from exc
+    if isinstance(cluster, Client):
+        return cluster, False
+    if isinstance(cluster, str):
+        return Client(cluster), True
+    raise TypeError(f"cluster must be a dask.distributed.Client or a scheduler address, got {type(cluster).__name__}")
+
+
+def client_threads(client) -> int:
+    """Worker threads a dask client's cluster offers."""
+    return max(1, int(sum(client.nthreads().values())))

@@ -1,0 +1,91 @@
+"""One worker against two, and a dask cluster against local, as ratios from one run.
+
+* an array (``--channels`` x ``--seconds`` at 30 kHz, 20 Hz with harmonics and
+  modulation): ``clean(workers=1)`` against ``clean(workers=2)``, best of
+  ``--repeat``; the outputs must be equal;
+* an Open Ephys binary file of the same: ``clean_recording`` with 1 and 2
+  worker threads, and on a ``dask.distributed.LocalCluster`` of 2 worker
+  processes (skipped without dask); the ``.dat`` files must be equal.
+
+    python benchmarks/workers.py [--channels 16] [--seconds 20] [--repeat 3]
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+
+def best(fn, repeat: int):
+    times, out = [], None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return min(times), out
+
+
+def main(argv=None) -> dict:
+    from artifactclean import clean
+    from artifactclean.demo_files import write_openephys_binary
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import clean_recording
+    from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
+
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--channels", type=int, default=16)
+    ap.add_argument("--seconds", type=float, default=20.0)
+    ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--method", default="template")
+    args = ap.parse_args(argv)
+    warnings.simplefilter("ignore")
+    rec = simulate_recording(args.seconds, n_channels=args.channels,
+                             artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0),
+                             neural=NeuralSpec(units=[]), blocks=[BlockSpec(1.0, args.seconds - 1.0, ramp_s=1.0)],
+                             seed=3)
+    x = rec.data
+    clean(x[:2, : int(5 * rec.fs)], rec.fs, method=args.method)  # compile the kernels outside the timing
+    t1, y1 = best(lambda: clean(x, rec.fs, method=args.method, workers=1), args.repeat)
+    t2, y2 = best(lambda: clean(x, rec.fs, method=args.method, workers=2), args.repeat)
+    res = dict(array=dict(one=t1, two=t2, equal=bool(np.array_equal(y1, y2))))
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        root = write_openephys_binary(tmp / "rec", x, rec.fs)
+        del x, y1, y2, rec
+
+        def run(out, **kw):
+            return lambda: clean_recording(open_recording(root), tmp / out, method=args.method, force=True, **kw)
+
+        f1, _ = best(run("one.dat"), args.repeat)
+        f2, _ = best(run("two.dat", workers=2), args.repeat)
+        res["file"] = dict(one=f1, two=f2, equal=(tmp / "one.dat").read_bytes() == (tmp / "two.dat").read_bytes())
+        try:
+            from dask.distributed import Client, LocalCluster
+        except ImportError:
+            res["dask"] = None
+        else:
+            with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
+                    Client(lc) as client:
+                run("dask.dat", cluster=client)()  # workers import and compile once
+                fd, _ = best(run("dask.dat", cluster=client), args.repeat)
+            res["dask"] = dict(seconds=fd,
+                               equal=(tmp / "one.dat").read_bytes() == (tmp / "dask.dat").read_bytes())
+    print(f"{args.channels} channels x {args.seconds:g} s at 30 kHz, {args.method!r}, best of {args.repeat}")
+    print(f"{'run':<34} {'speed-up vs 1 worker':>21} {'same output':>12}")
+    print(f"{'array, 2 worker threads':<34} {res['array']['one'] / res['array']['two']:>21.2f} "
+          f"{str(res['array']['equal']):>12}")
+    print(f"{'file, 2 worker threads':<34} {res['file']['one'] / res['file']['two']:>21.2f} "
+          f"{str(res['file']['equal']):>12}")
+    if res["dask"] is not None:
+        print(f"{'file, dask LocalCluster 2 procs':<34} {res['file']['one'] / res['dask']['seconds']:>21.2f} "
+              f"{str(res['dask']['equal']):>12}")
+    return res
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,134 @@
+"""Workers: groups of channels cleaned apart give exactly the single-run result."""
+
+import json
+import warnings
+
+import numpy as np
+import pytest
+
+from artifactclean import METHODS, clean
+from artifactclean.parallel import channel_groups, check_workers, clean_in_groups
+from artifactclean import TemplateSubtraction
+
+
+@pytest.fixture(scope="module")
+def short_dac(rec10_dac):
+    return rec10_dac.data[:, : int(6 * rec10_dac.fs)], rec10_dac.fs
+
+
+@pytest.mark.parametrize("method", sorted(METHODS))
+def test_two_workers_equal_one(method, short_dac):
+    x, fs = short_dac
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        one = clean(x, fs, method=method)
+        two = clean(x, fs, method=method, workers=2)
+    # channels are independent once model and plans are fixed: the same additions in the same order
+    np.testing.assert_array_equal(one, two)
+
+
+def test_groups_see_the_reference_channel_they_need(short_dac):
+    """With a DAC grid the template settles tick edges on the plan's reference channel: a group
+    without it fits on it too, and drops it."""
+    x, fs = short_dac
+    est = TemplateSubtraction()
+    from artifactclean.estimators.base import _fit_model
+
+    model = _fit_model(x, fs, None, None)
+    est.prepare(lambda a, b: x[:, a:b], model, fs)
+    (ref, grid, _, _), = est._plans.values()
+    assert grid is not None
+    others = [c for c in range(x.shape[0]) if c != ref]
+    sub, fit = est.for_channels(others[:1])
+    assert fit == [others[0], ref]
+    (sref, _, _, resp), = sub._plans.values()
+    assert sref == 1 and resp.response.shape[0] == 2
+    np.testing.assert_array_equal(resp.response[1], est._plans[next(iter(est._plans))][3].response[ref])
+
+
+def test_clipped_and_blanked_samples_equal_with_workers(rng):
+    from artifactclean.scenarios import make_scenario
+
+    rec = make_scenario("clipped_20hz_dac", seed=3, duration_s=6)
+    x = rec.data.copy()
+    x[2, 1000:1010] = np.nan
+    est = TemplateSubtraction()
+    one = est.fit_transform(x, fs=rec.fs, nan_policy="blank")
+    two, lost, reports = clean_in_groups(TemplateSubtraction(), x, rec.fs, workers=3, nan_policy="blank")
+    np.testing.assert_array_equal(one, two)
+    np.testing.assert_array_equal(est.lost_, lost)
+    assert lost[2, 1000:1010].all() and len(reports) == 3
+    assert [r["channels"] for r in reports] == channel_groups(4, 3)
+
+
+def test_worker_counts():
+    assert channel_groups(5, 2) == [[0, 1], [2, 3, 4]] or channel_groups(5, 2) == [[0, 1, 2], [3, 4]]
+    assert channel_groups(2, 8) == [[0], [1]]
+    assert sum(map(len, channel_groups(384, 7))) == 384
+    assert check_workers(3) == 3 and check_workers(0) >= 1
+    for bad in (-1, 1.5, "2", True):
+        with pytest.raises(ValueError, match="workers"):
+            check_workers(bad)
+    with pytest.raises(ValueError, match="workers"):
+        clean(np.zeros((2, 1000)), 1000.0, workers=-2)
+
+
+# ---------------------------------------------------------------- files
+@pytest.fixture(scope="module")
+def oe_file(tmp_path_factory):
+    from artifactclean.demo_files import write_openephys_binary
+    from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
+
+    from conftest import units4
+
+    rec = simulate_recording(16.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, drift_ppm=20.0),
+                             neural=NeuralSpec(units=units4()), blocks=[BlockSpec(1.0, 15.0, ramp_s=1.0)], seed=5)
+    return write_openephys_binary(tmp_path_factory.mktemp("oe") / "session", rec.data, rec.fs)
+
+
+def _clean_file(root, out, **kw):
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import clean_recording
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        # 3 s pieces: the block is cleaned in several pieces, some of them at once
+        summary = clean_recording(open_recording(root), out, max_range_s=3.0, chunk_s=1.0, **kw)
+    return out.read_bytes(), summary
+
+
+def test_file_cleaned_by_two_workers_is_the_same_file(oe_file, tmp_path):
+    one, s1 = _clean_file(oe_file, tmp_path / "one.dat")
+    two, s2 = _clean_file(oe_file, tmp_path / "two.dat", workers=2)
+    assert one == two
+    assert s1["clipped_stretches"] == s2["clipped_stretches"]
+    side = json.loads((tmp_path / "two.json").read_text())
+    prov = side["provenance"]
+    assert prov["workers"] == 2 and len(prov["estimator_report"]) > 3  # several pieces
+    assert [g["channels"] for g in prov["estimator_report"][0]["groups"]] == [["CH1", "CH2"], ["CH3", "CH4"]]
+
+
+def test_file_cleaned_on_a_dask_cluster_is_the_same_file(oe_file, tmp_path):
+    distributed = pytest.importorskip("dask.distributed")
+    one, _ = _clean_file(oe_file, tmp_path / "local.dat")
+    # worker processes: each task opens the file by path, as on a lab's cluster
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
+            distributed.Client(lc) as client:
+        remote, summary = _clean_file(oe_file, tmp_path / "dask.dat", cluster=client)
+    assert remote == one
+    prov = json.loads((tmp_path / "dask.json").read_text())["provenance"]
+    assert prov["workers"] == 2 and prov["cluster"].startswith("tcp://")
+
+
+def test_cluster_needs_a_file_not_an_array(tmp_path):
+    distributed = pytest.importorskip("dask.distributed")
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import clean_recording
+
+    with distributed.LocalCluster(n_workers=1, processes=False, dashboard_address=None) as lc, \
+            distributed.Client(lc) as client:
+        with pytest.raises(TypeError, match="by path"):
+            clean_recording(open_recording(np.zeros((2, 30000)), fs=30000.0), tmp_path / "x.dat", cluster=client)
+    assert not (tmp_path / "x.dat").exists()
+    with pytest.raises(TypeError, match="cluster"):
+        clean_recording(open_recording(np.zeros((2, 30000)), fs=30000.0), tmp_path / "x.dat", cluster=3)
