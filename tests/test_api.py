@@ -39,6 +39,8 @@ def test_bad_data(small):
         clean(np.zeros((1000, 4)), 1000.0)
     with pytest.raises(TypeError, match="numeric"):
         clean(np.array([["a", "b"]]), 1000.0)
+    with pytest.raises(TypeError, match="complex"):
+        clean(np.zeros((2, 1000), dtype=complex), 1000.0)
     x = small.data.copy()
     x[1, 100] = np.nan
     with pytest.raises(ValueError, match="NaN or inf.*channel 1, sample 100"):

@@ -116,3 +116,29 @@ def test_unlocked_dac_staircase_is_reported_not_hidden():
         warnings.simplefilter("error")
         est = ac.TemplateSubtraction().fit(locked.data, fs=locked.fs, stim_freq=10.0)
     assert est.report_["blocks"][0]["dac_ticks_per_cycle"] == 100
+
+
+def test_several_segments_are_named_not_dropped(tmp_path):
+    """A recording that stopped and restarted holds several segments; cleaning one must say so."""
+    import neo
+    import quantities as pq
+    from neo.io import NixIO
+
+    blk = neo.Block()
+    rng = np.random.default_rng(8)
+    for k in range(3):
+        seg = neo.Segment()
+        seg.analogsignals.append(neo.AnalogSignal(rng.standard_normal((60000, 2)), units="uV",
+                                                  sampling_rate=30000 * pq.Hz, t_start=5.0 * k * pq.s))
+        blk.segments.append(seg)
+    path = tmp_path / "gaps.nix"
+    with NixIO(str(path), "ow") as io:
+        io.write_block(blk)
+    r = cli("clean", path, "-o", tmp_path / "seg0.dat", "--stim-freq", "20", check=False)
+    assert r.returncode == 0 and "3 segments" in r.stderr and "--segment 1, 2" in r.stderr
+    r = cli("clean", path, "-o", tmp_path / "seg2.dat", "--segment", "2", "--stim-freq", "20", check=False)
+    assert r.returncode == 0 and "--segment 0, 1" in r.stderr
+    side = json.loads((tmp_path / "seg2.json").read_text())
+    assert side["n_samples"] == 60000
+    r = cli("clean", path, "-o", tmp_path / "seg9.dat", "--segment", "9", check=False)
+    assert r.returncode == 2 and "segment 9 does not exist" in r.stderr

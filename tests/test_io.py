@@ -64,7 +64,9 @@ def test_reader_reads_lazily_in_microvolts(oe):
 
 def test_survey_json_finds_frequency_and_blocks(oe):
     rec, root = oe
+    before = tree_hash(root)
     out = json.loads(cli("survey", root, "--json").stdout)
+    assert tree_hash(root) == before  # inputs are read, never written
     truth = rec.blocks[0]
     f = out["stimulation"]["frequency_hz"]
     assert abs(f / truth["freq_hz"] - 1) * 1e6 < 5.0  # within 5 ppm of the true (drifted) frequency
@@ -168,7 +170,11 @@ def test_unreadable_and_unknown_inputs(tmp_path):
     r = cli("survey", tmp_path / "nothing.oebin", check=False)
     assert r.returncode == 2 and "no such file" in r.stderr
     r = cli("survey", tmp_path, "--format", "Nonsense", check=False)
-    assert r.returncode == 2 and "unknown format" in r.stderr
+    assert r.returncode == 2 and "unknown format" in r.stderr and "OpenEphysBinary" in r.stderr
+    odd = tmp_path / "rec.xyz"
+    odd.write_text("?")
+    r = cli("survey", odd, check=False)
+    assert r.returncode == 2 and "--format" in r.stderr and "Traceback" not in r.stderr
 
 
 def test_segment_that_does_not_exist(oe):

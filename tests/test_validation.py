@@ -88,11 +88,13 @@ def test_ranking_puts_unbiased_first(case):
 def test_bench_on_an_open_ephys_recording(tmp_path):
     rec = simulate_recording(40.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0), seed=13)
     session = write_openephys_binary(tmp_path / "session", rec.data, rec.fs)
+    before = sorted((p.name, p.read_bytes()) for p in session.rglob("*") if p.is_file())
     out = tmp_path / "bench"
     r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "bench", str(session), "--stim-freq", "20",
                         "--out", str(out), "--methods", "template,comb", "--seeds", "0", "--write-hybrid"],
                        capture_output=True, text=True, timeout=600)
     assert r.returncode == 0, r.stderr
+    assert sorted((p.name, p.read_bytes()) for p in session.rglob("*") if p.is_file()) == before
     res = json.loads((out / "results.json").read_text())
     rows = res["rows"]
     assert {row["method"] for row in rows} == {"template", "comb"}
@@ -153,10 +155,12 @@ def test_score_sorting_pairs_units_and_counts(tmp_path):
         w.writerow(["time_s", "unit"])
         for t, u in zip(sorted_t, sorted_u):
             w.writerow([f"{t:.6f}", u])
+    inputs = [(tmp_path / n).read_bytes() for n in ("truth.csv", "sorted.csv")]
     r = subprocess.run([sys.executable, "-m", "artifactclean.cli", "score-sorting", "--truth", str(tmp_path / "truth.csv"),
                         "--sorted", str(tmp_path / "sorted.csv"), "--json"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 0, r.stderr
     assert {x["injected_unit"]: x["sorted_unit"] for x in json.loads(r.stdout)} == {"0": "a", "1": "b"}
+    assert [(tmp_path / n).read_bytes() for n in ("truth.csv", "sorted.csv")] == inputs
 
 
 def test_results_json_has_no_nan():

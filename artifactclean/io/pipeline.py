@@ -234,6 +234,7 @@ def clean_recording(
     """
     source = Path(rec.path) if isinstance(rec, NeoRecording) else None
     check_output(Path(output), source, force)
+    _warn_other_segments(rec)
     n_groups = check_workers(workers)
     if cluster is not None:
         if not isinstance(cluster, str) and not hasattr(cluster, "submit"):
@@ -445,12 +446,23 @@ def _merge(stretches: list[dict]) -> list[dict]:
     return out
 
 
+def _warn_other_segments(rec, stacklevel: int = 3) -> None:
+    """A file with gaps holds several segments; one is read at a time, and the others must not go unnoticed."""
+    n_seg = getattr(rec, "n_segments", 1)
+    if n_seg > 1:
+        others = ", ".join(str(k) for k in range(n_seg) if k != rec.segment)
+        warnings.warn(f"{rec.source} holds {n_seg} segments (the recording stopped and restarted); only segment "
+                      f"{rec.segment} is read here. Run again with --segment {others} (segment= in Python) "
+                      "for the rest", stacklevel=stacklevel)
+
+
 def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, stim_freq: float | None = None,
                      monitor: tuple[Recording, int] | None = None, progress: Progress | None = None) -> dict:
     """What to know before cleaning: blocks, refined frequencies, drift, per-channel artifact and clipping."""
     if channels is None:
         channels = [i for i in range(rec.n_channels) if monitor is None or monitor[0] is not rec or i != monitor[1]]
     channels = list(channels)
+    _warn_other_segments(rec)
     scan = scan_recording(rec, channels, progress=progress)
     model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
     main = model.main_block

@@ -151,6 +151,8 @@ class NeoRecording(Recording):
         self.stream_index = self._pick_stream(streams, stream)
         self.stream_name = str(streams["name"][self.stream_index])
         self.block, self.segment = block, segment
+        #: segments of this block: a recording that stopped and restarted (a gap) has several
+        self.n_segments = int(h["nb_segment"][block])
         sid = streams["id"][self.stream_index]
         chans = h["signal_channels"][h["signal_channels"]["stream_id"] == sid]
         self.channel_names = [str(c) for c in chans["name"]]
