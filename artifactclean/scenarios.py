@@ -45,7 +45,7 @@ def make_scenario(name: str, *, seed: int = 0, duration_s: float = 20.0) -> Synt
 
 
 def _sham_then_active(d: float) -> list[BlockSpec]:
-    return [BlockSpec(start_s=1.0, kind="sham", ramp_s=1.0),
+    return [BlockSpec(start_s=1.0, duration_s=2.0, kind="sham", ramp_s=1.0),
             BlockSpec(start_s=4.0, duration_s=d - 5.0, ramp_s=1.0)]
 
 

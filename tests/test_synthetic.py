@@ -1,6 +1,7 @@
 """The generator checked against its own parameters."""
 
 import numpy as np
+import pytest
 from scipy import signal
 from scipy.special import i0, i1
 
@@ -100,3 +101,14 @@ def test_spikes_refractory_and_locking():
     # mean resultant length of a von Mises: A(kappa) = I1/I0 (Mardia & Jupp 2000, Directional Statistics)
     assert abs(plv(ph) - i1(kappa) / i0(kappa)) < 0.04
     assert abs(np.angle(np.mean(np.exp(1j * (ph - 2.0))))) < 0.1
+
+
+@pytest.mark.parametrize("name", sorted(__import__("artifactclean.scenarios", fromlist=["SCENARIOS"]).SCENARIOS))
+def test_every_named_scenario_builds_with_its_blocks(name):
+    from artifactclean.scenarios import make_scenario
+
+    rec = make_scenario(name, seed=0, duration_s=8.0)
+    kinds = [b["kind"] for b in rec.blocks]
+    assert "active" in kinds and rec.data.shape == (4, 8 * 30000)
+    if "sham" in name:
+        assert kinds[0] == "sham" and np.all(np.isnan(rec.stim_phase[: int(0.9 * rec.fs)]))
