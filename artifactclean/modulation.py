@@ -183,7 +183,7 @@ def lowpass_taps(cutoff_hz: float, rate: float) -> np.ndarray:
 
 
 def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-                     max_hz: float | None = None) -> np.ndarray:
+                     max_hz: float | None = None, scale: float | None = None) -> np.ndarray:
     """Filter sequences (rows of ``seq``, sampled at ``rate``) by ``taps``, zero phase, edges held.
 
     With ``envelope`` (the block's ramps per sample of the sequences, 1 on
@@ -194,13 +194,24 @@ def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: n
     linear one of the block model is followed there rather than rung by
     narrow lines; where the envelope is below 2 % (margins, ramp feet) only
     the envelope part is kept.
+
+    ``scale`` fixes the plateau level instead of the median: a sequence
+    normalised to 1 on the plateau (the template's gain) then gets a result
+    that depends on its samples within the filter's reach only, so a piece
+    of a block is filtered exactly as the whole block (on the plateau the
+    level cancels anyway; within the ramps it does not).
     """
     seq = np.atleast_2d(seq)
     if envelope is None:
         return ndimage.convolve1d(seq, taps, axis=-1, mode="nearest")
     # 0.9, not 1: a data-driven envelope breathes around 1 on the plateau
     plateau = envelope > 0.9
-    scale = np.median(seq[:, plateau], axis=-1, keepdims=True) if plateau.any() else np.ones((seq.shape[0], 1))
+    if scale is not None:
+        scale = np.full((seq.shape[0], 1), float(scale))
+    elif plateau.any():
+        scale = np.median(seq[:, plateau], axis=-1, keepdims=True)
+    else:
+        scale = np.ones((seq.shape[0], 1))
     base = scale * envelope[None, :]
     dev = seq - base
     # margins and ramp feet carry almost no artifact: a fitted value there is noise over nothing
@@ -216,10 +227,11 @@ def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: n
 
 
 def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
-                envelope: np.ndarray | None = None, max_hz: float | None = None) -> np.ndarray:
+                envelope: np.ndarray | None = None, max_hz: float | None = None,
+                scale: float | None = None) -> np.ndarray:
     """Filter each channel's gain sequence by its ``response`` (see :func:`filter_sequences`)."""
     out = np.empty_like(gain)
     for ch in range(gain.shape[0]):
         taps = response.taps(min(ch, response.response.shape[0] - 1), rate)
-        out[ch] = filter_sequences(gain[ch:ch + 1], taps, rate, envelope, max_hz)[0]
+        out[ch] = filter_sequences(gain[ch:ch + 1], taps, rate, envelope, max_hz, scale)[0]
     return out

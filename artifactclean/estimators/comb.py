@@ -45,8 +45,9 @@ class NotchComb(ArtifactEstimator):
     context_cycles = 0.0
 
     def context_seconds(self, freq_hz: float) -> float:
-        # an IIR notch decays over ~ 1 / (pi * bandwidth) seconds; take ten of those
-        return 10.0 / (np.pi * self.bandwidth_hz)
+        # an IIR notch's transient decays as exp(-pi * bandwidth * t) (pole radius 1 - pi bw / fs):
+        # ln(1e9) time constants leave a piece edge 1e-9 of the artifact
+        return float(np.log(1e9) / (np.pi * self.bandwidth_hz))
 
     def _validate_params(self) -> None:
         if not self.max_freq > 0:

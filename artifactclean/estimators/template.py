@@ -404,7 +404,9 @@ class TemplateSubtraction(CycleEstimator):
             else:
                 g[ch] = 1.0
         if response is not None:
-            g = smooth_gain(g, response, seg_rate, seg_env, self.tracking_hz)
+            # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
+            # level keeps the ramps' filtering local, so pieces of a block match the whole block
+            g = smooth_gain(g, response, seg_rate, seg_env, self.tracking_hz, scale=1.0)
         out = np.empty_like(xb)
         for ch in range(xb.shape[0]):
             out[ch] = np.interp(u, seg_u, g[ch])
