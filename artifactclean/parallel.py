@@ -178,27 +178,30 @@ def piece_task(source, channels: Sequence[int], n_keep: int, lo: int, hi: int, a
 
 
 def ordered_results(items: Iterable, submit: Callable, ahead: int):
-    """Yield items in order with their task results, keeping up to ``ahead`` items submitted in advance.
+    """Yield items in order with their task's result, keeping up to ``ahead`` tasks submitted in advance.
 
-    ``items`` yields ``(kind, payload)``; ``submit(payload)`` returns a list of
-    futures for items of kind ``"tasks"`` (other kinds pass through with
-    ``None``). Memory stays bounded by ``ahead`` items, whatever the length.
+    ``items`` yields ``(kind, payload)``; for kind ``"task"``, ``submit(payload)``
+    returns a future (other kinds pass through with ``None``). Memory stays
+    bounded by ``ahead`` results, whatever the number of items.
     """
     queue: deque = deque()
     it = iter(items)
     done = False
     while True:
-        while not done and sum(k == "tasks" for k, _, _ in queue) < ahead:
+        while not done and sum(k == "task" for k, _, _ in queue) < ahead:
             try:
                 kind, payload = next(it)
             except StopIteration:
                 done = True
                 break
-            queue.append((kind, payload, submit(payload) if kind == "tasks" else None))
+            queue.append((kind, payload, submit(payload) if kind == "task" else None))
         if not queue:
             return
-        kind, payload, futures = queue.popleft()
-        yield kind, payload, None if futures is None else [f.result() for f in futures]
+        kind, payload, future = queue.popleft()
+        result = None if future is None else future.result()
+        del future
+        yield kind, payload, result
+        del result
 
 
 def open_client(cluster):

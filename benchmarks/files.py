@@ -44,7 +44,7 @@ def _child(job: str, src: str, out: str, workers: int) -> None:
     rec = open_recording(src)
     t0 = time.perf_counter()
     if job == "copy":
-        chunk = int(10.0 * rec.fs)
+        chunk = int(10.0 * rec.fs * min(1.0, 4 / rec.n_channels))  # the chunks clean_recording reads
         with open_writer(out, rec.fs, rec.channel_names, rec.n_samples, gain_uv=0.195) as w:
             for a in range(0, rec.n_samples, chunk):
                 w.write(rec.read(a, min(rec.n_samples, a + chunk)))

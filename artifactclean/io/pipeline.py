@@ -65,7 +65,7 @@ def _chunks(start: int, stop: int, size: int):
         yield a, min(stop, a + size)
 
 
-def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int = 2**20,
+def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int | None = None,
                    progress: Progress | None = None) -> Scan:
     """One pass over ``channels`` of ``rec``: mean, SD and amplifier rails per channel.
 
@@ -74,6 +74,9 @@ def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int = 2**2
     :func:`artifactclean.clipping.find_rails`.
     """
     k = len(channels)
+    if chunk is None:
+        # 4 Mi samples a read (32 MiB as float64), whatever the channel count
+        chunk = max(1, 2**22 // max(k, 1))
     s1, s2 = np.zeros(k), np.zeros(k)
     hi, lo = np.full(k, -np.inf), np.full(k, np.inf)
     hi_run, lo_run = np.zeros(k, bool), np.zeros(k, bool)
@@ -235,7 +238,7 @@ def clean_recording(
     source = Path(rec.path) if isinstance(rec, NeoRecording) else None
     check_output(Path(output), source, force)
     _warn_other_segments(rec)
-    n_groups = check_workers(workers)
+    n_workers = check_workers(workers)
     if cluster is not None:
         if not isinstance(cluster, str) and not hasattr(cluster, "submit"):
             raise TypeError(f"cluster must be a dask.distributed.Client or a scheduler address, "
@@ -249,7 +252,8 @@ def clean_recording(
         raise ValueError("no channels to clean")
     est = make_estimator(method, **(params or {}))
     est._validate_params()
-    chunk = max(1, int(chunk_s * rec.fs))
+    # chunk_s is for 4 channels: more channels read shorter chunks, so memory follows the budget
+    chunk = max(1, int(chunk_s * rec.fs * min(1.0, 4 / len(channels))))
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
     model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
     names = [rec.channel_names[i] for i in channels]
@@ -270,24 +274,30 @@ def clean_recording(
     n = rec.n_samples
     stretches: list[dict] = []
     reports = []
-    writer = open_writer(output, rec.fs, names, n, gain_uv=gain_uv) if Path(output).suffix.lower() != ".nix" \
-        else open_writer(output, rec.fs, names, n)
     fs = rec.fs
+    # a task holds at most `budget` samples (channels x time): groups of channels, each cleaned
+    # over pieces long enough for the estimator's full context; whatever the channel count
+    budget = max(int(max_range_s * fs * 4), 4 * chunk)
+    ctx_max = max([_context(est, blk, model, fs) for _, _, blk in est.work_ranges(model, fs)] or [0])
+    per_group = int(np.clip(budget // max(int(max_range_s * fs), 4 * ctx_max, 1), 1, len(channels)))
     client, own_client = open_client(cluster)
     pool = None
     try:
         if client is not None:
             src = RecordingSpec.of(rec)
             submit_fn = lambda fn, *a: client.submit(fn, *a, pure=False)  # noqa: E731
-            n_groups = client_threads(client) if workers == 1 else n_groups
-        elif n_groups > 1:
+            n_workers = client_threads(client) if workers == 1 else n_workers
+        elif n_workers > 1:
             src = LockedReader(rec)
-            pool = ThreadPoolExecutor(max_workers=n_groups)
+            pool = ThreadPoolExecutor(max_workers=n_workers)
             submit_fn = pool.submit
         else:
             src = LockedReader(rec)
             submit_fn = _run_now
-        groups = channel_groups(len(channels), n_groups)
+        groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
+        span = budget // max(len(g) for g in groups)  # samples of time a task may hold
+        writer = open_writer(output, fs, names, n, gain_uv=gain_uv, groups=groups) \
+            if Path(output).suffix.lower() != ".nix" else open_writer(output, fs, names, n, groups=groups)
         read_all = src.read if isinstance(src, LockedReader) else rec.read
         with writer:
             def emit(y, lost, a):
@@ -305,7 +315,6 @@ def clean_recording(
                     x[lost] = 0.0
                     emit(x, lost, a)
 
-            max_len = max(int(max_range_s * fs * 4 / len(channels)), chunk)
             if hasattr(est, "prepare"):
                 # block-level decisions from the same stretch an array run would use, on all channels
                 est.prepare(lambda a, b: read_all(a, b, channels), model, fs)
@@ -315,39 +324,37 @@ def clean_recording(
                 for s, e, blk in est.work_ranges(model, fs):
                     if s > pos:
                         yield "copy", (pos, s)
-                    for piece in _pieces(s, e, blk, est, model, fs, max_len):
-                        yield "tasks", piece
+                    for piece in _pieces(s, e, _context(est, blk, model, fs), span):
+                        for k in range(len(groups)):
+                            yield "task", piece + (k,)
                     pos = e
                 if pos < n:
                     yield "copy", (pos, n)
 
-            def submit(piece):
-                lo_, hi_, a, b = piece
-                window = model.window(lo_, hi_)
-                futures = []
-                for g in groups:
-                    # a fresh clone per task: tasks of consecutive pieces run at once
-                    sub, fit = est.for_channels(g)
-                    futures.append(submit_fn(piece_task, src, [channels[i] for i in fit], len(g), lo_, hi_, a, b,
-                                             sub, window, _subset_clip(rails, fit), fs))
-                return futures
+            def submit(item):
+                lo_, hi_, a, b, k = item
+                # a fresh clone per task: tasks of consecutive pieces run at once
+                sub, fit = est.for_channels(groups[k])
+                return submit_fn(piece_task, src, [channels[i] for i in fit], len(groups[k]), lo_, hi_, a, b,
+                                 sub, model.window(lo_, hi_), _subset_clip(rails, fit), fs)
 
-            # one piece ahead per worker keeps them busy while the previous piece is written
-            ahead = 1 if submit_fn is _run_now else 2
-            for kind, payload, results in ordered_results(items(), submit, ahead):
+            # tasks submitted ahead keep the workers busy while results are written
+            ahead = 1 if submit_fn is _run_now else 2 * n_workers
+            for kind, item, result in ordered_results(items(), submit, ahead):
                 if kind == "copy":
-                    copy(*payload)
+                    copy(*item)
                     continue
-                _, _, a, b = payload
-                y = np.concatenate([r[0] for r in results], axis=0)
-                lost = np.concatenate([r[1] for r in results], axis=0)
-                if len(results) == 1:
-                    reports.append(results[0][2])
-                else:
-                    reports.append(dict(groups=[dict(channels=[names[i] for i in g], **r[2])
-                                                for g, r in zip(groups, results)]))
-                del results
-                emit(y, lost, a)
+                _, _, a, b, k = item
+                y, lost, rep = result
+                del result
+                g = groups[k]
+                reports.append(dict(channels=[names[i] for i in g], start_s=a / fs, stop_s=b / fs, **rep))
+                writer.write_group(k, y)
+                for j in np.flatnonzero(lost.any(axis=1)):
+                    for s0, s1 in mask_runs(lost[j]):
+                        stretches.append(dict(channel=names[g[j]], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
+                if progress and k == len(groups) - 1:
+                    progress(b, n, "cleaning")
                 del y, lost
                 _release_memory()
             meta = dict(
@@ -361,7 +368,8 @@ def clean_recording(
                     channels=names,
                     created_utc=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
                     command=command,
-                    workers=len(groups),
+                    workers=n_workers,
+                    channel_groups=[[names[i] for i in g] for g in groups],
                     cluster=None if client is None else str(client.scheduler.address),
                 ),
                 clipped_stretches=_merge(stretches),
@@ -391,14 +399,21 @@ def _run_now(fn, *args):
     return _Done(fn(*args))
 
 
-def _pieces(s: int, e: int, blk, est, model, fs: float, max_len: int) -> list[tuple[int, int, int, int]]:
-    """``(lo, hi, a, b)`` per piece of the work range ``s..e``: read ``lo..hi``, keep ``a..b``."""
+def _context(est, blk, model, fs: float) -> int:
+    """Samples of context the estimator declares for a work range (its block's frequency)."""
     f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
-    ctx = int(np.ceil(est.context_seconds(f_ctx) * fs))
-    # a piece holds at least twice its context as core, up to twice the memory budget;
-    # at low frequencies (long context) the context is cut there, and pieces then
-    # differ from a whole-array run by a fraction of a microvolt near their edges
-    piece_len = min(max(max_len, 4 * ctx), 2 * max_len)
+    return int(np.ceil(est.context_seconds(f_ctx) * fs))
+
+
+def _pieces(s: int, e: int, ctx: int, span: int) -> list[tuple[int, int, int, int]]:
+    """``(lo, hi, a, b)`` per piece of the work range ``s..e``: read ``lo..hi``, keep ``a..b``.
+
+    A piece holds at least twice its context as core, up to twice ``span``;
+    where the context is longer than that (low frequencies, one channel per
+    group) it is cut to a quarter of the piece, and pieces then differ from a
+    whole-array run by a fraction of a microvolt near their edges.
+    """
+    piece_len = min(max(span, 4 * ctx), 2 * span)
     ctx = min(ctx, piece_len // 4)
     if e - s <= piece_len:
         return [(s, e, s, e)]

@@ -44,12 +44,38 @@ def _temp(path: Path) -> Path:
 
 
 class _Writer:
-    def __init__(self, path: Path, fs: float, channel_names, n_samples: int):
+    """Common part: temporary names, and channels written in groups.
+
+    ``groups`` (lists of channel indices covering every channel once) lets
+    groups of channels be written separately, each in time order
+    (:meth:`write_group`); :meth:`write` writes all channels at once.
+    """
+
+    def __init__(self, path: Path, fs: float, channel_names, n_samples: int, groups=None):
         self.path = Path(path)
         self.fs = float(fs)
         self.channel_names = [str(c) for c in channel_names]
         self.n_samples = int(n_samples)
-        self.written = 0
+        n_ch = len(self.channel_names)
+        self.groups = [list(range(n_ch))] if groups is None else [list(map(int, g)) for g in groups]
+        if sorted(c for g in self.groups for c in g) != list(range(n_ch)):
+            raise ValueError(f"channel groups {self.groups} do not cover channels 0..{n_ch - 1} once each")
+        self._group_written = [0] * len(self.groups)
+
+    @property
+    def written(self) -> int:
+        """Samples written on every channel."""
+        return min(self._group_written)
+
+    def write(self, chunk_uv: np.ndarray) -> None:
+        """Append a chunk of shape (n_channels, n) in microvolts, all channels."""
+        for k, g in enumerate(self.groups):
+            self.write_group(k, chunk_uv[g])
+
+    def write_group(self, k: int, chunk_uv: np.ndarray) -> None:
+        """Append a chunk of the channels of group ``k`` (shape (len(group), n), microvolts)."""
+        self._put(k, chunk_uv)
+        self._group_written[k] += chunk_uv.shape[1]
 
     def __enter__(self):
         return self
@@ -73,28 +99,56 @@ class _Writer:
 class DatWriter(_Writer):
     """Interleaved int16 samples x channels plus a JSON sidecar."""
 
-    def __init__(self, path, fs, channel_names, n_samples, *, gain_uv: float = 0.195, offset_uv: float = 0.0):
-        super().__init__(path, fs, channel_names, n_samples)
+    def __init__(self, path, fs, channel_names, n_samples, *, gain_uv: float = 0.195, offset_uv: float = 0.0,
+                 groups=None):
+        super().__init__(path, fs, channel_names, n_samples, groups)
         if not gain_uv > 0:
             raise ValueError(f"gain must be positive (uV per bit), got {gain_uv}")
         self.gain_uv = float(gain_uv)
         self.offset_uv = float(offset_uv)
         self.saturated = 0
         self._tmp = _temp(self.path)
-        self._fh = open(self._tmp, "wb")
+        # one group writes the file itself; several write a spool each (samples x the group's
+        # channels, in time order), interleaved into the file at close
+        if len(self.groups) == 1:
+            self._spools = [self._tmp]
+        else:
+            self._spools = [self._tmp.with_name(f"{self._tmp.name}.group{k}") for k in range(len(self.groups))]
+        self._fhs = [open(p, "wb") for p in self._spools]
 
-    def write(self, chunk_uv: np.ndarray) -> None:
-        """Append a chunk of shape (n_channels, n) in microvolts."""
+    def _put(self, k: int, chunk_uv: np.ndarray) -> None:
         q = np.rint((chunk_uv - self.offset_uv) / self.gain_uv)
         over = (q > 32767) | (q < -32768)
         self.saturated += int(over.sum())
         np.clip(q, -32768, 32767, out=q)
-        self._fh.write(np.ascontiguousarray(q.T).astype("<i2").tobytes())
-        self.written += chunk_uv.shape[1]
+        self._fhs[k].write(np.ascontiguousarray(q.T).astype("<i2").tobytes())
+
+    def _interleave(self, rows_per_read: int = 2**22) -> None:
+        """Spools (samples x group channels) into the file (samples x all channels), a few MiB at a time."""
+        n_ch = len(self.channel_names)
+        rows = max(1, rows_per_read // n_ch)
+        # plain reads, not memory maps: mapped pages would count as this process's memory
+        spools = [open(p, "rb") for p in self._spools]
+        try:
+            with open(self._tmp, "wb") as out:
+                for a in range(0, self.written, rows):
+                    b = min(self.written, a + rows)
+                    block = np.empty((b - a, n_ch), dtype="<i2")
+                    for fh, g in zip(spools, self.groups):
+                        block[:, g] = np.fromfile(fh, dtype="<i2", count=(b - a) * len(g)).reshape(b - a, len(g))
+                    out.write(block.tobytes())
+        finally:
+            for fh in spools:
+                fh.close()
+        for p in self._spools:
+            p.unlink()
 
     def close(self, meta: dict) -> list[Path]:
         """Finish: write the sidecar and move both files into place."""
-        self._fh.close()
+        for fh in self._fhs:
+            fh.close()
+        if len(self._spools) > 1:
+            self._interleave()
         side = dict(
             format="interleaved int16, samples x channels, little-endian",
             sampling_rate_hz=self.fs,
@@ -115,26 +169,32 @@ class DatWriter(_Writer):
         return [self.path, side_path]
 
     def abort(self) -> None:
-        if not self._fh.closed:
-            self._fh.close()
+        for fh in self._fhs:
+            if not fh.closed:
+                fh.close()
+        for p in self._spools:
+            if p != self._tmp:
+                try:
+                    p.unlink()
+                except FileNotFoundError:
+                    pass
         super().abort()
 
 
 class NixWriter(_Writer):
     """NIX file through neo's NixIO (signal kept in memory as float32 until close)."""
 
-    def __init__(self, path, fs, channel_names, n_samples, **_):
-        super().__init__(path, fs, channel_names, n_samples)
+    def __init__(self, path, fs, channel_names, n_samples, *, groups=None, **_):
+        super().__init__(path, fs, channel_names, n_samples, groups)
         try:
             import nixio  # noqa: F401
         except ImportError as exc:
             raise ValueError("writing .nix needs the nixio package: pip install nixio") from exc
         self._buf = np.empty((self.n_samples, len(self.channel_names)), dtype=np.float32)
 
-    def write(self, chunk_uv: np.ndarray) -> None:
-        n = chunk_uv.shape[1]
-        self._buf[self.written:self.written + n] = chunk_uv.T
-        self.written += n
+    def _put(self, k: int, chunk_uv: np.ndarray) -> None:
+        a = self._group_written[k]
+        self._buf[a:a + chunk_uv.shape[1], self.groups[k]] = chunk_uv.T
 
     def close(self, meta: dict) -> list[Path]:
         import neo
