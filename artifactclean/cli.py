@@ -458,6 +458,8 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def main(argv=None) -> int:
+    from .parallel import ClusterError
+
     args = _parser().parse_args(argv)
     import warnings
 
@@ -485,7 +487,7 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("artifactclean: interrupted; no output was left behind", file=sys.stderr)
         return 130
-    except (ValueError, TypeError, OSError) as exc:
+    except (ValueError, TypeError, OSError, ImportError, ClusterError) as exc:
         if args.debug:
             raise
         print(f"artifactclean: error: {exc}", file=sys.stderr)

@@ -23,7 +23,7 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 
 __all__ = ["channel_groups", "check_workers", "clean_in_groups", "RecordingSpec", "ordered_results", "open_client",
-           "client_threads"]
+           "client_threads", "check_cluster", "piece_task", "ClusterError"]
 
 
 def check_workers(workers) -> int:
@@ -217,6 +217,33 @@ def open_client(cluster):
     if isinstance(cluster, str):
         return Client(cluster), True
     raise TypeError(f"cluster must be a dask.distributed.Client or a scheduler address, got {type(cluster).__name__}")
+
+
+class ClusterError(RuntimeError):
+    """A dask cluster that cannot clean this recording as a local run would."""
+
+
+def _installed_version() -> str:
+    from . import __version__
+
+    return __version__
+
+
+def check_cluster(client) -> None:
+    """Refuse a cluster whose workers run another artifactclean (or none): results would differ."""
+    from . import __version__
+
+    try:
+        found = client.run(_installed_version)
+    except Exception as exc:  # a worker that cannot import the package raises here
+        raise ClusterError(f"the dask workers cannot run artifactclean ({exc}); install artifactclean "
+                           f"{__version__} where they run") from None
+    other = sorted({v for v in found.values() if v != __version__})
+    if not found:
+        raise ClusterError("the dask cluster has no workers; start some (`dask worker ADDRESS`)")
+    if other:
+        raise ClusterError(f"dask workers run artifactclean {', '.join(other)}; this is {__version__}. "
+                           "Install the same version on the workers (and restart them after an upgrade)")
 
 
 def client_threads(client) -> int:

@@ -55,8 +55,9 @@ def main(argv=None) -> dict:
     res = dict(array=dict(one=t1, two=t2, equal=bool(np.array_equal(y1, y2))))
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        root = write_openephys_binary(tmp / "rec", x, rec.fs)
-        del x, y1, y2, rec
+        fs = rec.fs
+        root = write_openephys_binary(tmp / "rec", x, fs)
+        x = y1 = y2 = rec = None  # free the array before the file runs
 
         def run(out, **kw):
             return lambda: clean_recording(open_recording(root), tmp / out, method=args.method, force=True, **kw)

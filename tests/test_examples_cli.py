@@ -48,3 +48,18 @@ def test_benchmark_prints_ratios():
                        capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     assert "throughput / numpy.copyto" in r.stdout and "template" in r.stdout
+
+
+@pytest.mark.parametrize("script, args, expect", [
+    ("files.py", ["--seconds", "8", "--channels", "2"], "peak memory of clean, 4x / 1x"),
+    ("workers.py", ["--channels", "4", "--seconds", "6", "--repeat", "1"], "file, 2 worker threads"),
+    ("profile_default.py", ["--seconds", "6", "--top", "5"], "own share"),
+])
+def test_other_benchmarks_run_small(script, args, expect):
+    # small sizes: the scripts must keep working; their figures come from full-size runs
+    r = subprocess.run([sys.executable, str(ROOT / "benchmarks" / script), *args], capture_output=True, text=True,
+                       timeout=600)
+    assert r.returncode == 0, r.stderr[-2000:]
+    assert expect in r.stdout
+    if script == "workers.py":
+        assert "False" not in r.stdout  # every way of running gave the same output

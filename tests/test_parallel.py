@@ -100,7 +100,8 @@ def _clean_file(root, out, **kw):
 def test_file_cleaned_by_two_workers_is_the_same_file(oe_file, tmp_path):
     one, s1 = _clean_file(oe_file, tmp_path / "one.dat")
     two, s2 = _clean_file(oe_file, tmp_path / "two.dat", workers=2)
-    assert one == two
+    three, _ = _clean_file(oe_file, tmp_path / "three.dat", workers=3)
+    assert one == two == three
     assert s1["clipped_stretches"] == s2["clipped_stretches"]
     side = json.loads((tmp_path / "two.json").read_text())
     prov = side["provenance"]
@@ -160,3 +161,16 @@ def test_file_pieces_equal_the_whole_array(method, tmp_path):
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2  # cleaned in pieces of time
     y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
+
+
+def test_a_cluster_running_another_version_is_refused(oe_file, tmp_path, monkeypatch):
+    distributed = pytest.importorskip("dask.distributed")
+    import artifactclean.parallel as par
+
+    with distributed.LocalCluster(n_workers=1, processes=False, dashboard_address=None) as lc, \
+            distributed.Client(lc) as client:
+        # in-process workers share this module: make them report another version
+        monkeypatch.setattr(par, "_installed_version", lambda: "0.0.1")
+        with pytest.raises(par.ClusterError, match="0.0.1"):
+            _clean_file(oe_file, tmp_path / "v.dat", cluster=client)
+    assert not list(tmp_path.glob("*.dat")) and not list(tmp_path.glob(".*partial*"))

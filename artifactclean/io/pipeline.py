@@ -33,8 +33,8 @@ from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..staircase import find_dac_grid, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
-from ..parallel import (LockedReader, RecordingSpec, _subset_clip, channel_groups, check_workers, client_threads,
-                        open_client, ordered_results, piece_task)
+from ..parallel import (LockedReader, RecordingSpec, _subset_clip, channel_groups, check_cluster, check_workers,
+                        client_threads, open_client, ordered_results, piece_task)
 from .reader import NeoRecording, Recording
 from .writers import open_writer, output_paths
 
@@ -284,6 +284,7 @@ def clean_recording(
     pool = None
     try:
         if client is not None:
+            check_cluster(client)
             src = RecordingSpec.of(rec)
             submit_fn = lambda fn, *a: client.submit(fn, *a, pure=False)  # noqa: E731
             n_workers = client_threads(client) if workers == 1 else n_workers
@@ -295,7 +296,9 @@ def clean_recording(
             src = LockedReader(rec)
             submit_fn = _run_now
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
-        span = budget // max(len(g) for g in groups)  # samples of time a task may hold
+        # samples of time a task may hold: from the budget alone, not from how many workers split the
+        # channels, so the pieces (and the output, to the bit) do not depend on the worker count
+        span = budget // per_group
         writer = open_writer(output, fs, names, n, gain_uv=gain_uv, groups=groups) \
             if Path(output).suffix.lower() != ".nix" else open_writer(output, fs, names, n, groups=groups)
         read_all = src.read if isinstance(src, LockedReader) else rec.read
