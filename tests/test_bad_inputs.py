@@ -142,3 +142,35 @@ def test_several_segments_are_named_not_dropped(tmp_path):
     assert side["n_samples"] == 60000
     r = cli("clean", path, "-o", tmp_path / "seg9.dat", "--segment", "9", check=False)
     assert r.returncode == 2 and "segment 9 does not exist" in r.stderr
+
+
+@pytest.mark.parametrize("failure, reason", [
+    (lambda: OSError(28, "No space left on device"), "No space left"),   # errno.ENOSPC
+    (lambda: PermissionError(13, "Permission denied"), "Permission denied"),  # a read-only folder
+])
+@pytest.mark.parametrize("workers", [1, 2])
+def test_failed_write_leaves_nothing_behind(failure, reason, workers, tmp_path, monkeypatch, capsys):
+    """A full disk or a folder that turns read-only mid-run (not provokable as root, so the write
+    itself is made to fail): one-line error, exit code 2, no output and no temporary file."""
+    from artifactclean import cli
+    from artifactclean.io import writers
+
+    rec = simulate_recording(12.0, neural=NeuralSpec(units=[]), blocks=[BlockSpec(1.0, 10.0)], seed=58)
+    root = write_openephys_binary(tmp_path / "s", rec.data, rec.fs)
+    calls = {"n": 0}
+    real_put = writers.DatWriter._put
+
+    def failing_put(self, k, chunk):
+        calls["n"] += 1
+        if calls["n"] > 2:  # fail after some data went to disk
+            raise failure()
+        return real_put(self, k, chunk)
+
+    monkeypatch.setattr(writers.DatWriter, "_put", failing_put)
+    out = tmp_path / "o.dat"
+    code = cli.main(["clean", str(root), "-o", str(out), "--stim-freq", "20", "--workers", str(workers),
+                     "--chunk-seconds", "1"])
+    err = capsys.readouterr().err
+    assert code == 2 and reason in err and "Traceback" not in err
+    assert not out.exists() and not out.with_suffix(".json").exists()
+    assert not list(tmp_path.glob(".*partial*"))
