@@ -282,6 +282,9 @@ def clean_recording(
     per_group = int(np.clip(budget // max(int(max_range_s * fs), 4 * ctx_max, 1), 1, len(channels)))
     client, own_client = open_client(cluster)
     pool = None
+    # the input's SHA-256 for the provenance, read beside the cleaning (hashlib releases the GIL)
+    hasher = ThreadPoolExecutor(max_workers=1) if source is not None else None
+    checksum = hasher.submit(_checksum, source) if hasher is not None else None
     try:
         if client is not None:
             check_cluster(client)
@@ -367,7 +370,7 @@ def clean_recording(
                     params=est.get_params(),
                     estimator_report=reports,
                     stimulation=model.to_dict(),
-                    input=_checksum(source) if source is not None else dict(path=rec.source),
+                    input=checksum.result() if checksum is not None else dict(path=rec.source),
                     channels=names,
                     created_utc=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
                     command=command,
@@ -381,6 +384,8 @@ def clean_recording(
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
+        if hasher is not None:
+            hasher.shutdown(wait=True, cancel_futures=True)
         if own_client:
             client.close()
     return dict(written=[str(p) for p in written], stimulation=model.to_dict(),
