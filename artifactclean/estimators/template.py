@@ -106,7 +106,11 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
     # a bin whose window holds almost no artifact energy (only cycles of near-zero gain, e.g.
     # margins, because the rest were clipped there) gives a ratio of noise to nothing: a hole
     # judged per template (locally), so a piece of a block decides as the whole block
-    typical = np.median(g, axis=-1, keepdims=True)
+    # typical over the bins that hold data: with more than half the bins clipped somewhere in the
+    # window (heavily clipped channels), a median over all bins is 0 and no bin would be a hole
+    with np.errstate(invalid="ignore"):
+        typical = np.nanmedian(np.where(g > 0, g, np.nan), axis=-1, keepdims=True)
+    typical = np.nan_to_num(typical, nan=0.0)
     holes = g <= 0.05 * typical
     if holes.any():
         # bins with no data (phases clipped in every cycle of the window): interpolate
