@@ -22,8 +22,8 @@ from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
-__all__ = ["channel_groups", "check_workers", "clean_in_groups", "RecordingSpec", "ordered_results", "open_client",
-           "client_threads", "check_cluster", "piece_task", "ClusterError"]
+__all__ = ["channel_groups", "check_workers", "clean_in_groups", "subset_clip", "RecordingSpec", "ordered_results",
+           "open_client", "client_threads", "check_cluster", "piece_task", "ClusterError"]
 
 
 def check_workers(workers) -> int:
@@ -42,7 +42,7 @@ def channel_groups(n_channels: int, n_groups: int) -> list[list[int]]:
     return [list(range(a, b)) for a, b in zip(bounds[:-1], bounds[1:]) if b > a]
 
 
-def _subset_clip(clip_level, fit: list[int]):
+def subset_clip(clip_level, fit: list[int]):
     """``clip_level`` for the channels ``fit``: per-channel rails are indexed, the rest pass through."""
     if clip_level is None or np.ndim(clip_level) == 0:
         return clip_level
@@ -102,7 +102,7 @@ def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_
     with ThreadPoolExecutor(max_workers=len(groups)) as pool:
         for g in groups:
             sub, fit = est.for_channels(g)
-            kwargs = dict(fs=fs, stim_model=model, clip_level=_subset_clip(clip_level, fit),
+            kwargs = dict(fs=fs, stim_model=model, clip_level=subset_clip(clip_level, fit),
                           stim_reference=monitor, nan_policy=nan_policy)
             jobs.append(pool.submit(_fit_group, sub, x[fit], len(g), kwargs))
         parts = [j.result() for j in jobs]

@@ -8,9 +8,10 @@ The recording is read three times, never whole:
    spread) streamed through the same decimation as
    :func:`artifactclean.fit_stimulation`, which gives the stimulation model;
 3. the cleaning pass: each range an estimator cleans independently (a block
-   and its margins for the template) is read, cleaned and written; the
-   stretches between are copied. Ranges longer than ``max_range_s`` are
-   cleaned in pieces with the estimator's declared context on each side.
+   and its margins for the template) is cleaned as tasks of one channel
+   group over one piece of time (with the estimator's declared context on
+   each side), on this thread, worker threads or a dask cluster, and written
+   group by group; the stretches between ranges are copied.
 
 For recordings whose blocks fit in one range the output equals
 ``artifactclean.clean`` on the same samples.
@@ -33,7 +34,7 @@ from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..staircase import find_dac_grid, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
-from ..parallel import (LockedReader, RecordingSpec, _subset_clip, channel_groups, check_cluster, check_workers,
+from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
                         client_threads, open_client, ordered_results, piece_task)
 from .reader import NeoRecording, Recording
 from .writers import open_writer, output_paths
@@ -213,12 +214,15 @@ def clean_recording(
         int16 step for ``.dat`` (default: the file's own gain when it is
         stored as integers, else 0.195 uV).
     chunk_s, max_range_s : float
-        Copy chunk, and the longest range cleaned in one piece, in seconds
-        for 4 channels (scaled down for more channels, so memory stays
-        bounded by the piece, not the recording). Longer blocks are cleaned
-        in pieces with the estimator's context on each side; near piece
-        edges the result then differs slightly from cleaning the whole
-        array at once.
+        Seconds read at a time for copying, and the memory budget of one
+        cleaning task, both in seconds of 4 channels (more channels read
+        shorter chunks). A task cleans a group of channels over a piece of
+        time with the estimator's full context on each side; channels are
+        grouped so that a piece holds at least four contexts, so the
+        output equals cleaning the whole array at once (to float32 for the
+        template, adaptive and comb; at 5 Hz and below the template's
+        context is cut to a quarter of a piece, and pieces then differ by a
+        fraction of a microvolt near their edges).
     progress : callable(done, total, stage), optional
     workers : int
         Threads cleaning groups of channels at once (0: one per core); with
@@ -342,7 +346,7 @@ def clean_recording(
                 # a fresh clone per task: tasks of consecutive pieces run at once
                 sub, fit = est.for_channels(groups[k])
                 return submit_fn(piece_task, src, [channels[i] for i in fit], len(groups[k]), lo_, hi_, a, b,
-                                 sub, model.window(lo_, hi_), _subset_clip(rails, fit), fs)
+                                 sub, model.window(lo_, hi_), subset_clip(rails, fit), fs)
 
             # tasks submitted ahead keep the workers busy while results are written
             ahead = 1 if submit_fn is _run_now else 2 * n_workers
