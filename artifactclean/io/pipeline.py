@@ -310,11 +310,15 @@ def clean_recording(
             if Path(output).suffix.lower() != ".nix" else open_writer(output, fs, names, n, groups=groups)
         read_all = src.read if isinstance(src, LockedReader) else rec.read
         with writer:
+            def note_lost(lost, a, rows):
+                # lost samples of channels `rows` (indices into names), starting at sample a
+                for j in np.flatnonzero(lost.any(axis=1)):
+                    for s0, s1 in mask_runs(lost[j]):
+                        stretches.append(dict(channel=names[rows[j]], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
+
             def emit(y, lost, a):
                 writer.write(y)
-                for ch in np.flatnonzero(lost.any(axis=1)):
-                    for s0, s1 in mask_runs(lost[ch]):
-                        stretches.append(dict(channel=names[ch], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
+                note_lost(lost, a, range(len(names)))
                 if progress:
                     progress(a + y.shape[1], n, "cleaning")
 
@@ -360,9 +364,7 @@ def clean_recording(
                 g = groups[k]
                 reports.append(dict(channels=[names[i] for i in g], start_s=a / fs, stop_s=b / fs, **rep))
                 writer.write_group(k, y)
-                for j in np.flatnonzero(lost.any(axis=1)):
-                    for s0, s1 in mask_runs(lost[j]):
-                        stretches.append(dict(channel=names[g[j]], start_s=(a + s0) / fs, stop_s=(a + s1) / fs))
+                note_lost(lost, a, g)
                 if progress and k == len(groups) - 1:
                     progress(b, n, "cleaning")
                 del y, lost
