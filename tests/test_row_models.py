@@ -102,3 +102,47 @@ def test_stimulation_free_input_unchanged(method):
     with pytest.warns(UserWarning, match="no stimulation"):
         y = clean(rec.data, rec.fs, stim_freq=20.0, method=method)
     np.testing.assert_array_equal(y, rec.data)
+
+
+@pytest.fixture(scope="module")
+def clipped_plateau():
+    # rail at 3600 uV on a 4.8 mV channel (ch 3) and a 4 mV one (ch 0): the same phases clip in
+    # every cycle of the plateau, so a piece of time inside it holds no unclipped cycle there
+    return simulate_recording(24.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, heart_depth=0.02,
+                                                          resp_depth=0.01, drift_ppm=40.0, clip_uv=3600.0,
+                                                          channel_gains=(1.0, -0.7, 0.45, -1.2)),
+                              neural=NeuralSpec(units=[]), seed=11)
+
+
+@pytest.mark.parametrize("method", ["regression", "pca"])
+def test_piece_inside_a_clipped_plateau_is_cleaned(clipped_plateau, method):
+    """A piece of time wholly on the plateau of a heavily clipped channel (as the file pipeline cuts
+    long blocks) is cleaned outside the lost stretches, and every clipped sample is reported lost.
+    Before the filling was made local, such a piece was left with ~2 mV of artifact on usable
+    samples (its clipped phases were filled with zeros where the whole block borrowed ramp cycles)."""
+    from artifactclean import make_estimator
+    from artifactclean.spikes import spike_band
+
+    rec = clipped_plateau
+    x, fs = rec.data, rec.fs
+    whole = make_estimator(method)
+    y_whole = whole.fit_transform(x, fs=fs)
+    lo, hi = int(8 * fs), int(18 * fs)
+    est = make_estimator(method)
+    est.prepare(lambda a, b: x[:, a:b], whole.stim_model_, fs)
+    est.fit(x[:, lo:hi], fs=fs, stim_model=whole.stim_model_.window(lo, hi))
+    y = est.transform(x[:, lo:hi])
+    assert np.all(est.lost_[rec.clipped[:, lo:hi]])  # reported, never hidden
+    core = slice(int(2 * fs), int(8 * fs))
+    resid = np.where(est.lost_, 0.0, y - rec.neural[:, lo:hi])
+    sb = spike_band(resid, fs)[:, core]
+    lost = est.lost_[:, core]
+    # 2 ms around lost samples excluded: the spike-band filter spreads them (as score_cleaning)
+    near = np.array([np.convolve(m.astype(float), np.ones(int(4e-3 * fs) + 1), mode="same") > 0 for m in lost])
+    noise = rec.spec["neural"]["noise_uv"]
+    for ch in (0, 3):
+        assert lost[ch].mean() > 0.1  # heavily clipped indeed
+        assert np.sqrt(np.mean(sb[ch, ~near[ch]] ** 2)) <= 0.5 * noise
+        # and the piece agrees with the whole block where both keep the samples
+        both = ~lost[ch] & ~whole.lost_[ch, lo:hi][core]
+        assert np.abs(y[ch, core] - y_whole[ch, lo:hi][core])[both].max() <= 0.05 * 3600.0

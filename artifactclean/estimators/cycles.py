@@ -34,6 +34,9 @@ _PLAN_S = 20.0
 #: steps per second (far above noise) that reveal a staircase no locked grid explains
 _UNLOCKED_STEPS = 50.0
 
+#: rows on either side a row estimator fills an unusable bin from (see fill_rows)
+_FILL_ROWS = 15
+
 
 def block_key(blk) -> tuple:
     """Identity of a stimulation block that survives StimulationModel.window()."""
@@ -385,7 +388,10 @@ class RowModelEstimator(CycleEstimator):
     A work range is put on the grid, ``_fit_rows`` models each channel's
     rows, and the model is read back at the samples. With ``robust``, the
     spike-band outliers of the first model's residual are left out and the
-    rows fitted again (their bins filled by :func:`fill_rows`).
+    rows fitted again (their bins filled by :func:`fill_rows`). A phase
+    clipped in some cycle is interpolated along the cycle in every row
+    within :data:`_FILL_ROWS` rows and reported as lost, like the clipped
+    samples (the cycles that escaped the rail there are a biased sample).
 
     Subclasses implement ``_fit_rows(v, w, env, taps_fast, taps_slow, rate)``
     for one channel: ``v, w`` of shape (n_rows, n_bins), ``env`` the block
@@ -401,6 +407,13 @@ class RowModelEstimator(CycleEstimator):
         # rows are cycles: sequences along rows are sampled at f
         slow = lowpass_taps(KEEP_HZ, f)
         v, w = grid.gather(xb, wb)
+        censor = None
+        if np.any(wb == 0):
+            # a phase lost (clipped) in some row is interpolated along the cycle in every row
+            # within the filling window, and reported as lost too (see fill_rows); bins outside
+            # the range (first and last partial cycles) are not lost
+            lost_bins = (w == 0) & (grid.gather(xb, np.ones_like(wb))[1] > 0)
+            censor = ndimage.maximum_filter1d(lost_bins, 2 * _FILL_ROWS + 1, axis=1, mode="nearest")
         n_out = 0
         passes = 2 if self.robust else 1
         for it in range(passes):
@@ -408,8 +421,9 @@ class RowModelEstimator(CycleEstimator):
             chosen = []
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
-                g_row, vd, wd = self._demodulate(v[ch], w[ch], env, fast, f)
-                rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f)
+                cen = None if censor is None else censor[ch]
+                g_row, vd, wd = self._demodulate(v[ch], w[ch], env, fast, f, cen)
+                rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen)
                 chosen.append(info)
             art = grid.scatter(rows, xb)
             if it < passes - 1:
@@ -420,9 +434,13 @@ class RowModelEstimator(CycleEstimator):
                       modulation_lines_hz=[] if response is None else response.passed_lines(ref),
                       outliers_left_out=int(n_out), unlocked_dac_steps_per_s=float(unlocked),
                       channels=chosen)
-        return art, report, None
+        lost = None
+        if censor is not None:
+            lost = grid.scatter(censor.astype(np.float64)) > 0
+            report["censored_samples"] = int(lost.sum())
+        return art, report, lost
 
-    def _demodulate(self, v, w, env, taps, rate):
+    def _demodulate(self, v, w, env, taps, rate, censor=None):
         """The envelope of the rows as the data show it, and the rows rescaled to their centres.
 
         The strongest harmonic's amplitude (the fundamental, normally),
@@ -437,7 +455,7 @@ class RowModelEstimator(CycleEstimator):
         are left out.
         """
         n_rows, n_bins = v.shape
-        filled = fill_rows(v, w, env)
+        filled = fill_rows(v, w, env, _FILL_ROWS, censor)
         filled = filled - filled.mean(axis=1, keepdims=True)
         plateau = env > 0.99
         k = np.arange(1, n_bins // 2 + 1)
@@ -464,25 +482,49 @@ class RowModelEstimator(CycleEstimator):
     track_amplitude = True
 
 
-def fill_rows(v: np.ndarray, w: np.ndarray, env: np.ndarray, half_rows: int = 15) -> np.ndarray:
-    """Rows with unusable bins (lost, or left out as spikes) filled from the same bin nearby.
+def fill_rows(v: np.ndarray, w: np.ndarray, env: np.ndarray, half_rows: int = _FILL_ROWS,
+              censor: np.ndarray | None = None) -> np.ndarray:
+    """Rows with unusable bins (lost, or left out as spikes) filled from nearby data.
 
     A filled bin takes the weighted mean of its bin over ``half_rows`` rows
     on either side, scaled by the envelope, so neither spikes nor clipped
-    peaks enter the fit through the filling; bins with no usable neighbour
-    take the envelope times the block's mean cycle.
+    peaks enter the fit through the filling. A bin with no usable neighbour
+    (a phase clipped in every cycle around it) is interpolated along the
+    cycle from the row's usable bins: an estimate from the data around the
+    gap, never from other parts of the block, so a piece of a block is
+    filled as the whole block is. The filled values only keep the fit of the
+    usable bins sensible (a zero there would drag every harmonic); the lost
+    samples themselves stay lost.
+
+    ``censor`` (bool, like ``v``) marks bins interpolated along the cycle in
+    every row, usable or not: phases clipped somewhere nearby, where the rows
+    that escaped the rail are a biased sample and rows filled differently
+    from one another would make the fitted amplitudes jump.
     """
+    if censor is not None and censor.any():
+        w = w * ~censor
+    else:
+        censor = None
     if np.all(w > 0):
         return v
     e = np.maximum(env, 1e-3)[:, None]
     size = 2 * half_rows + 1
     num = ndimage.uniform_filter1d(w * v * e, size, axis=0, mode="constant")
     den = ndimage.uniform_filter1d(w * e * e, size, axis=0, mode="constant")
-    total = (w * e * e).sum(axis=0)
-    mean = (w * v * e).sum(axis=0) / np.maximum(total, 1e-300)
-    near = den > 1e-3 * np.maximum(den.max(axis=0, keepdims=True), 1e-300)
-    local = np.where(near, num / np.where(near, den, 1.0), mean[None, :]) * e
-    return np.where(w > 0, v, local)
+    # usable weight judged against what the window would hold with every bin usable (local)
+    full = ndimage.uniform_filter1d(np.broadcast_to(e * e, w.shape), size, axis=0, mode="constant")
+    near = den > 1e-3 * full
+    if censor is not None:
+        near &= ~censor
+    out = np.where(w > 0, v, np.where(near, num / np.where(near, den, 1.0), 0.0) * e)
+    known = (w > 0) | near
+    n_bins = v.shape[1]
+    idx = np.arange(n_bins)
+    for r in np.flatnonzero(~known.all(axis=1)):
+        ok = known[r]
+        if ok.any():
+            out[r, ~ok] = np.interp(idx[~ok], idx[ok], out[r, ok], period=n_bins)
+    return out
 
 
 def noise_of_sequences(seq: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:

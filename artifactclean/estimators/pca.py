@@ -113,9 +113,9 @@ class CyclePCA(RowModelEstimator):
         if not self.keep_factor >= 0:
             raise ValueError(f"keep_factor must be >= 0, got {self.keep_factor!r}")
 
-    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate):
+    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None):
         n_rows, n_bins = v.shape
-        rows = fill_rows(v, w, env)
+        rows = fill_rows(v, w, env, censor=censor)
         rows = rows - rows.mean(axis=1, keepdims=True)
         plateau = np.abs(env - 1.0) < 0.1
         use = plateau if plateau.sum() > 8 else np.ones(n_rows, dtype=bool)

@@ -103,9 +103,9 @@ class HarmonicRegression(RowModelEstimator):
         if not self.keep_factor > 0:
             raise ValueError(f"keep_factor must be positive, got {self.keep_factor!r}")
 
-    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate):
+    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None):
         n_rows, n_bins = v.shape
-        rows = fill_rows(v, w, env)
+        rows = fill_rows(v, w, env, censor=censor)
         # a cycle's own mean is the slow LFP under it, not artifact
         coef = np.fft.rfft(rows - rows.mean(axis=1, keepdims=True), axis=1)[:, 1:]
         n_h = coef.shape[1] if self.n_harmonics is None else min(int(self.n_harmonics), coef.shape[1])
