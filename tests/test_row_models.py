@@ -146,3 +146,20 @@ def test_piece_inside_a_clipped_plateau_is_cleaned(clipped_plateau, method):
         # and the piece agrees with the whole block where both keep the samples
         both = ~lost[ch] & ~whole.lost_[ch, lo:hi][core]
         assert np.abs(y[ch, core] - y_whole[ch, lo:hi][core])[both].max() <= 0.05 * 3600.0
+
+
+@pytest.mark.parametrize("dac", [None, 1000.0])
+def test_occupied_bins_are_those_gather_weights_when_all_usable(dac):
+    from artifactclean.staircase import find_dac_grid
+
+    rec = simulate_recording(4.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=dac), seed=3)
+    fs = rec.fs
+    sel = slice(int(1.5 * fs), int(3 * fs))
+    u = np.unwrap(rec.stim_phase[sel]) / (2 * np.pi)
+    x = rec.data[:, sel]
+    grid = CycleGrid(u, fs, 20.0, find_dac_grid(x[0], u, fs, 20.0) if dac else None)
+    assert (grid.dac is not None) == (dac is not None)
+    _, w = grid.gather(x, np.ones_like(x))
+    occ = grid.occupied()
+    assert np.array_equal(w[0] > 0, occ)
+    assert 0.9 < occ.mean() < 1.0  # partial first and last cycles

@@ -333,6 +333,19 @@ class CycleGrid:
         slope = (u[-1] - u[0]) / max(n - 1, 1)
         self.row_centres = np.clip(np.round((np.arange(self.n_rows) + 0.5 - uc[0]) / slope), 0, n - 1).astype(np.int64)
 
+    def occupied(self) -> np.ndarray:
+        """Bins (n_rows, n_bins) that hold samples of the range, whatever their weights.
+
+        The bins :meth:`gather` gives a weight to when every sample is usable:
+        the first and last cycles of a range are partial.
+        """
+        if self.dac is None:
+            return (self._inside > 0).reshape(self.n_rows, self.n_bins)
+        use = np.ones(self.n)
+        use[self.amb_lo] = 0.0
+        use[self.amb_hi] = 0.0
+        return (np.bincount(self.key, use, self.n_rows * self.n_bins) > 0.5).reshape(self.n_rows, self.n_bins)
+
     def gather(self, x: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Grid values and weights (0 where no usable sample), both (n_channels, n_rows, n_bins)."""
         n_ch = x.shape[0]
@@ -412,7 +425,7 @@ class RowModelEstimator(CycleEstimator):
             # a phase lost (clipped) in some row is interpolated along the cycle in every row
             # within the filling window, and reported as lost too (see fill_rows); bins outside
             # the range (first and last partial cycles) are not lost
-            lost_bins = (w == 0) & (grid.gather(xb, np.ones_like(wb))[1] > 0)
+            lost_bins = (w == 0) & grid.occupied()[None]
             censor = ndimage.maximum_filter1d(lost_bins, 2 * _FILL_ROWS + 1, axis=1, mode="nearest")
         n_out = 0
         passes = 2 if self.robust else 1
