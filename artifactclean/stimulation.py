@@ -45,7 +45,11 @@ class StimBlock:
 
     Sample indices are half-open ``[start, stop)``. ``ramp_up_stop`` and
     ``ramp_down_start`` bound the plateau (equal for a sham block).
-    ``phase_ref`` is the phase (rad) at sample ``ref_sample``.
+    ``phase_ref`` is the phase (rad) at sample ``ref_sample``. ``edges``
+    holds start, ramp corners and stop as the whole recording has them
+    (shifted like the others) when :meth:`StimulationModel.window` clipped
+    the block to a piece of it: the ramps' shape is the block's, not the
+    piece's.
     """
 
     kind: str
@@ -58,9 +62,15 @@ class StimBlock:
     ref_sample: int
     amplitude: float
     drift_ppm: float | None = None
+    edges: tuple[int, int, int, int] | None = None
+
+    def geometry(self) -> tuple[int, int, int, int]:
+        """Start, ramp-up end, ramp-down start and stop of the whole block (see ``edges``)."""
+        return self.edges if self.edges is not None else (self.start, self.ramp_up_stop, self.ramp_down_start, self.stop)
 
     def to_dict(self, fs: float) -> dict:
         d = asdict(self)
+        d.pop("edges")
         d.update(start_s=self.start / fs, stop_s=self.stop / fs,
                  ramp_up_s=(self.ramp_up_stop - self.start) / fs,
                  ramp_down_s=(self.stop - self.ramp_down_start) / fs)
@@ -139,7 +149,8 @@ class StimulationModel:
             blocks.append(StimBlock(
                 b.kind, max(b.start, start) - start, min(b.stop, stop) - start,
                 int(np.clip(b.ramp_up_stop, start, stop)) - start, int(np.clip(b.ramp_down_start, start, stop)) - start,
-                b.freq_hz, b.phase_ref, b.ref_sample - start, b.amplitude, b.drift_ppm))
+                b.freq_hz, b.phase_ref, b.ref_sample - start, b.amplitude, b.drift_ppm,
+                tuple(int(v) - start for v in b.geometry())))
         return StimulationModel(self.fs, stop - start, blocks, self.nominal_freq_hz, self.reference)
 
     def to_dict(self) -> dict:
@@ -298,28 +309,41 @@ def _envelope(x: np.ndarray, fs: float, f: float, n_cycles: int = 4) -> np.ndarr
 def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float) -> tuple[float, float, float, float]:
     """Start, plateau start, plateau stop and stop (decimated samples) of one envelope segment.
 
-    Linear ramps are extrapolated to zero from the part between 20% and 80% of
-    the plateau, so the block edges do not depend on the detection threshold.
+    Each ramp is a straight line fitted to the envelope between 20% and 80%
+    of the plateau level; it is extrapolated to zero (the block edge) and to
+    the plateau level (the ramp's corner), so neither depends on a detection
+    threshold. The 90% points bound the corners (and stand in for a ramp too
+    short to fit): a linear ramp reaches 90% a tenth of its length before
+    its corner, and a block model ending its ramps there leaves the gain to
+    follow a kink of a tenth of the amplitude.
     """
     seg = env[lo:hi]
     top = np.flatnonzero(seg >= 0.9 * level)
     p0, p1 = (lo + top[0], lo + top[-1]) if top.size else (lo, hi)
 
-    def extrapolate(idx: np.ndarray, fallback: float) -> float:
+    def line(idx: np.ndarray) -> tuple[float, float] | None:
         vals = env[idx]
         keep = (vals > 0.2 * level) & (vals < 0.8 * level)
         if keep.sum() < 3:
-            return fallback
+            return None
         slope, icpt = np.polyfit(idx[keep], vals[keep], 1)
-        if abs(slope) < 1e-12:
-            return fallback
-        return -icpt / slope
+        return None if abs(slope) < 1e-12 else (slope, icpt)
 
-    start = extrapolate(np.arange(max(0, lo - 1), p0 + 1), lo)
-    stop = extrapolate(np.arange(p1, min(env.size, hi + 1)), hi)
+    up = line(np.arange(max(0, lo - 1), p0 + 1))
+    down = line(np.arange(p1, min(env.size, hi + 1)))
+    start = lo if up is None else -up[1] / up[0]
+    stop = hi if down is None else -down[1] / down[0]
     start = min(max(start, lo - (p0 - lo) - 2), lo)
     stop = max(min(stop, hi + (hi - p1) + 2), hi)
-    return start, p0, p1, stop
+    # corners: where each ramp reaches the plateau's typical level (its maximum is raised by the
+    # heartbeat), between the 90% point and 1/9 of the ramp beyond it (the most a linear ramp's
+    # 90% point can be early)
+    mid = float(np.median(env[p0:p1 + 1])) if p1 > p0 else level
+    c0 = float(p0) if up is None else float(np.clip((mid - up[1]) / up[0], p0, p0 + (p0 - start) / 9.0))
+    c1 = float(p1) if down is None else float(np.clip((mid - down[1]) / down[0], p1 - (stop - p1) / 9.0, p1))
+    if c0 > c1:  # a sham block: ramps meet at the top
+        c0 = c1 = 0.5 * (c0 + c1)
+    return start, c0, c1, stop
 
 
 @dataclass

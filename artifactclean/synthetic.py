@@ -78,6 +78,9 @@ class ArtifactSpec:
     2, 3, ... of the fundamental. Modulation depths are peak fractional
     changes of the artifact amplitude. ``channel_gains`` are signed and
     multiply ``amplitude_uv`` (the peak of the fundamental) per channel.
+    ``heart_harmonics`` lists ``(relative_amplitude, phase_rad)`` for
+    harmonics 2, 3, ... of the cardiac rate in the impedance pulse (the
+    pulse is not a sinusoid); empty for a sinusoidal heartbeat.
     """
 
     freq_hz: float = 20.0
@@ -86,6 +89,7 @@ class ArtifactSpec:
     harmonics: Sequence[tuple[float, float]] = ((0.08, 0.4), (0.04, 1.1), (0.02, 2.0), (0.01, 0.7))
     heart_rate_hz: float = 2.0
     heart_depth: float = 0.02
+    heart_harmonics: Sequence[tuple[float, float]] = ((0.5, 0.3), (0.25, 0.6))
     resp_rate_hz: float = 0.3
     resp_depth: float = 0.01
     drift_ppm: float = 40.0
@@ -202,10 +206,14 @@ def _smooth_rate_phase(n: int, fs: float, rate_hz: float, variability: float, rn
     return 2 * np.pi * np.cumsum(rate) / fs + rng.uniform(0, 2 * np.pi)
 
 
-def _heart_shape(phase: np.ndarray) -> np.ndarray:
+def _heart_shape(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -> np.ndarray:
     # pulsatile, not sinusoidal: harmonics of the cardiac rate, scaled to peak |1|
-    h = np.cos(phase) + 0.5 * np.cos(2 * phase + 0.3) + 0.25 * np.cos(3 * phase + 0.6)
-    return h / 1.60
+    h = np.cos(phase)
+    for k, (rel, ph) in enumerate(harmonics, start=2):
+        h = h + rel * np.cos(k * phase + ph)
+    grid = np.linspace(0, 2 * np.pi, 3600, endpoint=False)
+    peak = np.abs(np.cos(grid) + sum(rel * np.cos(k * grid + ph) for k, (rel, ph) in enumerate(harmonics, start=2)))
+    return h / peak.max()
 
 
 def _colored_lfp(n_channels: int, n: int, fs: float, rms: float, rng) -> np.ndarray:
@@ -356,7 +364,8 @@ def simulate_recording(
         raise ValueError(f"channel_gains needs {n_channels} values, got {gains.size}")
     mod = np.ones(n)
     if artifact.heart_depth:
-        mod += artifact.heart_depth * _heart_shape(_smooth_rate_phase(n, fs, artifact.heart_rate_hz, 0.03, rng))
+        mod += artifact.heart_depth * _heart_shape(_smooth_rate_phase(n, fs, artifact.heart_rate_hz, 0.03, rng),
+                                                   artifact.heart_harmonics)
     if artifact.resp_depth:
         mod += artifact.resp_depth * np.sin(_smooth_rate_phase(n, fs, artifact.resp_rate_hz, 0.05, rng))
     art = artifact.amplitude_uv * gains[:, None] * (mod * stim)[None, :]

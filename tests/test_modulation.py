@@ -1,9 +1,10 @@
 """The gain filter: modulation lines pass, the neural floor and ramps are handled."""
 
 import numpy as np
+import pytest
 from scipy import signal
 
-from artifactclean.modulation import KEEP_HZ, design_gain_response, segment_gain, smooth_gain
+from artifactclean.modulation import KEEP_HZ, GainResponse, design_gain_response, ramp_cutoff, segment_gain, smooth_gain
 
 
 def _gain_series(rng, rate=40.0, seconds=20.0, lines=((2.0, 0.02), (4.0, 0.01))):
@@ -64,3 +65,43 @@ def test_segment_gain_ignores_offsets(rng):
     assert rate == 40.0
     centres = ((np.arange(g.shape[1]) + 0.5) / 4 * fs / f).astype(int)
     np.testing.assert_allclose(g[0], g_true[np.minimum(centres, n - 1)], atol=0.03)
+
+
+def test_heartbeat_lines_pass_through_the_ramps(rng):
+    """Within a ramp the gain follows the ramp's shape below max_hz and, as on the plateau, the
+    response's lines: a 4 Hz heartbeat harmonic passed by the response is not cut at the ramps."""
+    rate = 40.0
+    n = 1600
+    t = np.arange(n) / rate
+    env = np.clip(np.minimum(t / 4.0, (t[-1] - t) / 4.0), 0.0, 1.0)  # 4 s ramps
+    line = 0.02 * np.sin(2 * np.pi * 4.0 * t)
+    freqs = np.linspace(0, rate / 2, 161)
+    resp = ((freqs <= 1.0) | (np.abs(freqs - 4.0) < 0.5)).astype(float)
+    response = GainResponse(freqs, resp[None], rate)
+    gain = env * (1 + line)
+    out = smooth_gain(gain[None], response, rate, env, max_hz=2.0)[0]
+    ramp = (env > 0.3) & (env < 0.7)
+    # the 4 Hz line on the ramp is followed (the old blend replaced it there by a 2 Hz low-pass)
+    err = out[ramp] - gain[ramp]
+    assert np.sqrt(np.mean(err ** 2)) < 0.25 * np.sqrt(np.mean((env * line)[ramp] ** 2))
+
+
+def test_ramp_cutoff_follows_the_ramp_length():
+    from artifactclean.stimulation import StimBlock
+
+    fs = 30000.0
+
+    def blk(up_s, down_s, f=5.0):
+        return StimBlock("active", 0, int(20 * fs), int(up_s * fs), int((20 - down_s) * fs), f, 0.0, 0, 1.0, None)
+
+    assert ramp_cutoff(blk(0.5, 2.0), fs, 10.0) == pytest.approx(4.0)  # 2 / shorter ramp
+    assert ramp_cutoff(blk(0.1, 0.1), fs, 10.0) == 10.0  # capped at max_hz
+    assert ramp_cutoff(blk(10.0, 10.0), fs, 10.0) == 2 * KEEP_HZ
+    assert ramp_cutoff(blk(10.0, 10.0, f=20.0), fs, 10.0) == pytest.approx(5.0)  # f / 4
+    assert ramp_cutoff(blk(0.0, 0.0), fs, 10.0) == 10.0  # abrupt edges
+    # a piece of the block (window) keeps the block's ramps
+    from artifactclean.stimulation import StimulationModel
+
+    piece = StimulationModel(fs, int(20 * fs), [blk(0.5, 2.0)]).window(int(0.3 * fs), int(10 * fs)).blocks[0]
+    assert piece.ramp_up_stop - piece.start < int(0.5 * fs)  # clipped to the piece ...
+    assert ramp_cutoff(piece, fs, 10.0) == pytest.approx(4.0)  # ... its ramp is not

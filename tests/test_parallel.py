@@ -163,6 +163,30 @@ def test_file_pieces_equal_the_whole_array(method, tmp_path):
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
 
 
+def test_pieces_that_start_inside_a_long_ramp_equal_the_whole_array(tmp_path):
+    """10 s ramps (common in tACS protocols) are longer than a piece: a piece that reads part of one
+    must still see the block's ramp, not the part it holds (1.4 uV next to the ramp before)."""
+    from neo.io import NixIO
+
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import clean_recording
+    from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
+
+    rec = simulate_recording(44.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0),
+                             blocks=[BlockSpec(1.0, 42.0, ramp_s=10.0)], seed=6)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "y.nix", max_range_s=6.0)
+        whole = clean(rec.data, rec.fs)
+    with NixIO(str(tmp_path / "y.nix"), "ro") as io:
+        blk = io.read_block()
+    starts = sorted({r["start_s"] for r in json.loads(blk.annotations["provenance"])["estimator_report"]})
+    # a piece boundary within a context (~6 s) of a ramp: one piece reads part of that ramp only
+    assert any(1.0 < a < 17.0 or 27.0 < a < 43.0 for a in starts[1:]), starts
+    y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
+    assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
+
+
 def test_a_cluster_running_another_version_is_refused(oe_file, tmp_path, monkeypatch):
     distributed = pytest.importorskip("dask.distributed")
     import artifactclean.parallel as par

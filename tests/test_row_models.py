@@ -46,9 +46,9 @@ def test_cycle_fft_is_least_squares_harmonic_fit(rng):
 
 
 @pytest.mark.parametrize("method", ["regression", "pca"])
-def test_modulated_20hz_figures(mod20, method):
-    y = clean(mod20.data, mod20.fs, stim_freq=20.0, method=method)
-    s = score_cleaning(mod20, y)
+def test_modulated_20hz_figures(mod20_40s, method):
+    y = clean(mod20_40s.data, mod20_40s.fs, stim_freq=20.0, method=method)
+    s = score_cleaning(mod20_40s, y)
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
     assert s["recall_ratio"] >= 0.99
     assert s["sixth_recall_min_over_max"] >= 0.95

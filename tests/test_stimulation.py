@@ -50,6 +50,21 @@ def test_blocks_kinds_and_edges():
     assert np.abs(err).max() < 0.01
 
 
+@pytest.mark.parametrize("freq", [10.0, 20.0, 40.0])
+def test_ramp_corners_are_where_the_ramps_end(freq):
+    """A linear ramp reaches 90% of its plateau a tenth of its length before its corner (geometry);
+    the plateau bounds are the corners themselves, within what the 2% heartbeat on the ramp allows
+    (2% of a 1 s ramp: 20 ms), not the 90% points (75-85 ms early before the corners were
+    extrapolated)."""
+    rec = simulate_recording(12.0, artifact=ArtifactSpec(freq_hz=freq), blocks=[BlockSpec(1.0, 10.0, ramp_s=1.0)],
+                             seed=5)
+    b = fit_stimulation(rec.data, rec.fs, stim_freq=freq).blocks[0]
+    fs = rec.fs
+    assert abs(b.ramp_up_stop / fs - 2.0) < 0.025
+    assert abs(b.ramp_down_start / fs - 10.0) < 0.025
+    assert abs(b.start / fs - 1.0) < 0.025 and abs(b.stop / fs - 11.0) < 0.025
+
+
 def test_without_nominal_frequency():
     rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=13.0), seed=4)
     m = fit_stimulation(rec.data, rec.fs)

@@ -112,3 +112,23 @@ def test_every_named_scenario_builds_with_its_blocks(name):
     assert "active" in kinds and rec.data.shape == (4, 8 * 30000)
     if "sham" in name:
         assert kinds[0] == "sham" and np.all(np.isnan(rec.stim_phase[: int(0.9 * rec.fs)]))
+
+
+@pytest.mark.parametrize("harmonics", [(), ((0.5, 0.3), (0.25, 0.6))])
+def test_heartbeat_depth_is_the_peak_change_and_its_harmonics_are_sidebands(harmonics):
+    # depth = peak fractional change of the artifact amplitude (ArtifactSpec docstring); a pulse with
+    # cardiac harmonics k puts sidebands at f +- k * rate (AM, Oppenheim & Willsky 1997), a sinusoid only at k = 1
+    spec = ArtifactSpec(freq_hz=20.0, harmonics=(), heart_depth=0.05, heart_harmonics=harmonics, resp_depth=0.0,
+                        drift_ppm=0, lsb_uv=None, amplitude_uv=1000.0)
+    rec = simulate_recording(40.0, fs=1000.0, n_channels=1, artifact=spec,
+                             blocks=[BlockSpec(0.0, 40.0, ramp_s=0.0)], seed=2)
+    env = np.abs(signal.hilbert(rec.artifact[0]))[2000:-2000] / 1000.0
+    assert abs(env.max() - 1.05) < 0.003 or abs(env.min() - 0.95) < 0.003
+    assert env.max() < 1.053 and env.min() > 0.947
+    f, p = signal.welch(rec.artifact[0], fs=rec.fs, nperseg=8000)
+    first = p[(f > 21.5) & (f < 22.5)].max()  # f + 2 Hz
+    second = p[(f > 23.5) & (f < 24.5)].max()  # f + 2 x 2 Hz
+    if harmonics:
+        assert second > 0.1 * first  # (0.5)^2 = 0.25 in power, smeared by the rate wander
+    else:
+        assert second < 1e-4 * first  # window leakage only

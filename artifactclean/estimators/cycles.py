@@ -19,8 +19,8 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
-from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, segment_gain, \
-    segments_per_cycle
+from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, \
+    ramp_cutoff, segment_gain, segments_per_cycle
 from ..staircase import find_dac_grid, step_rate
 from ._kernels import grouped_eval
 from .base import ArtifactEstimator
@@ -46,8 +46,9 @@ def block_key(blk) -> tuple:
 def trapezoid(n: int, blk, offset: int) -> np.ndarray:
     """Block envelope on samples ``offset .. offset + n``: linear ramps, plateau 1, 0 outside."""
     i = np.arange(offset, offset + n, dtype=np.float64)
-    up = (i - blk.start) / max(blk.ramp_up_stop - blk.start, 1) if blk.ramp_up_stop > blk.start else np.where(i >= blk.start, 1.0, 0.0)
-    down = (blk.stop - i) / max(blk.stop - blk.ramp_down_start, 1) if blk.stop > blk.ramp_down_start else np.where(i < blk.stop, 1.0, 0.0)
+    start, up_stop, down_start, stop = blk.geometry()  # the whole block's ramps, in a piece too
+    up = (i - start) / max(up_stop - start, 1) if up_stop > start else np.where(i >= start, 1.0, 0.0)
+    down = (stop - i) / max(stop - down_start, 1) if stop > down_start else np.where(i < stop, 1.0, 0.0)
     env = np.clip(np.minimum(up, down), 0.0, 1.0)
     # a small floor keeps margin cycles (no artifact expected) from dividing by zero
     return np.maximum(env, 1e-3)
@@ -419,6 +420,7 @@ class RowModelEstimator(CycleEstimator):
         env = trapezoid(xb.shape[1], blk, offset)[grid.row_centres]
         # rows are cycles: sequences along rows are sampled at f
         slow = lowpass_taps(KEEP_HZ, f)
+        ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
         v, w = grid.gather(xb, wb)
         censor = None
         if np.any(wb == 0):
@@ -435,7 +437,7 @@ class RowModelEstimator(CycleEstimator):
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
-                g_row, vd, wd = self._demodulate(v[ch], w[ch], env, fast, f, cen)
+                g_row, vd, wd = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz)
                 rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen)
                 chosen.append(info)
             art = grid.scatter(rows, xb)
@@ -453,7 +455,7 @@ class RowModelEstimator(CycleEstimator):
             report["censored_samples"] = int(lost.sum())
         return art, report, lost
 
-    def _demodulate(self, v, w, env, taps, rate, censor=None):
+    def _demodulate(self, v, w, env, taps, rate, censor=None, ramp_hz=None):
         """The envelope of the rows as the data show it, and the rows rescaled to their centres.
 
         The strongest harmonic's amplitude (the fundamental, normally),
@@ -475,7 +477,8 @@ class RowModelEstimator(CycleEstimator):
         coef = np.fft.rfft(filled, axis=1)[:, 1:]
         power = np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)
         lead = coef[:, int(np.argmax(power))] if k.size else np.ones(n_rows)
-        pair = filter_sequences(np.stack([lead.real, lead.imag]), taps, rate, env, self.tracking_hz)
+        pair = filter_sequences(np.stack([lead.real, lead.imag]), taps, rate, env,
+                                self.tracking_hz if ramp_hz is None else ramp_hz)
         mag = np.hypot(pair[0], pair[1])
         level = np.median(mag[plateau]) if plateau.any() else max(float(mag.max()), 1e-300)
         g_row = np.where(env < _FOOT, env, mag / max(level, 1e-300))

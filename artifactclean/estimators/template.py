@@ -51,7 +51,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import segments_per_cycle, smooth_gain
+from ..modulation import ramp_cutoff, segments_per_cycle, smooth_gain
 from ._kernels import grouped_eval, phase_sums, segment_stats, tick_sums
 from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
@@ -311,6 +311,7 @@ class TemplateSubtraction(CycleEstimator):
         trap = trapezoid(n, blk, offset)
         gain = np.repeat(trap[None, :], n_ch, axis=0)
         seg_env = trap[(seg_starts + np.append(seg_starts[1:], n)) // 2]
+        ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
         # phases clipped anywhere in the window are left out of every fit, not only the
         # clipped samples: the cycles that escaped the rail there are a biased selection
         if censored is not None:
@@ -331,7 +332,7 @@ class TemplateSubtraction(CycleEstimator):
                 tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride)
                 t_n = grouped_eval(tmpl, n_bins, *reader, compiled=self.compiled)
             if self.track_amplitude:
-                gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle, response, seg_env)
+                gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle, response, seg_env, ramp_hz)
             if self.robust and it == passes - 2:
                 w, n_out = spike_outliers(xb - gain * t_n, wb, fs, u, max(4, k_half // 2), self.outlier_z)
         info = dict(
@@ -392,7 +393,7 @@ class TemplateSubtraction(CycleEstimator):
         s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
         return _shape(s, g, n_bins, k_groups, denoise, stride)
 
-    def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate, response, seg_env):
+    def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate, response, seg_env, ramp_hz):
         num, den, full = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
         g = np.zeros_like(num)
         for ch in range(g.shape[0]):
@@ -410,7 +411,7 @@ class TemplateSubtraction(CycleEstimator):
         if response is not None:
             # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
             # level keeps the ramps' filtering local, so pieces of a block match the whole block
-            g = smooth_gain(g, response, seg_rate, seg_env, self.tracking_hz, scale=1.0)
+            g = smooth_gain(g, response, seg_rate, seg_env, ramp_hz, scale=1.0)
         out = np.empty_like(xb)
         for ch in range(xb.shape[0]):
             out[ch] = np.interp(u, seg_u, g[ch])
