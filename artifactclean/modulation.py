@@ -33,6 +33,8 @@ __all__ = ["GainResponse", "design_gain_response", "filter_sequences", "lowpass_
 KEEP_HZ = 1.0
 #: half-length (s) of the gain filter; its resolution is about 1 / this
 HALF_S = 2.0
+#: the most the gain filter restores of what segment means and interpolation take off
+_MAX_BOOST = 1.5
 #: envelope below which (margins, ramp feet) the gain is the envelope itself
 _FOOT = 0.02
 
@@ -56,11 +58,22 @@ class GainResponse:
     rate: float
 
     def taps(self, ch: int, rate: float | None = None) -> np.ndarray:
-        """Symmetric FIR taps (``scipy.signal.firwin2``) for channel ``ch`` at ``rate``."""
+        """Symmetric FIR taps (``scipy.signal.firwin2``) for channel ``ch`` at ``rate``.
+
+        The response is divided by ``sinc(f / rate)^3`` (at most
+        :data:`_MAX_BOOST`): what a mean over each gain segment and the
+        linear interpolation between segment centres take off a modulation
+        at ``f`` (boxcar and triangle kernels, textbook Fourier pairs).
+        """
         rate = self.rate if rate is None else rate
         nyq = rate / 2
         f = np.concatenate((self.freqs[self.freqs < nyq], [nyq]))
         r = np.interp(f, self.freqs, self.response[ch], right=0.0)
+        # a gain sample is a mean over its segment (a cycle, or part of one) and samples read the
+        # gain by linear interpolation between segment centres: sinc(f / rate) times sinc^2
+        # (the triangle kernel), 11% short at 6 Hz from segments at 40 Hz, 37% from cycles at 20 Hz;
+        # what passes is restored to its full amplitude
+        r = r / np.maximum(np.sinc(f / rate) ** 3, 1 / _MAX_BOOST)
         numtaps = 2 * int(HALF_S * rate) + 1
         taps = signal.firwin2(numtaps, f, r, fs=rate, window="hann")
         # the window smooths the response near 0 Hz too: restore a unit gain there exactly,
