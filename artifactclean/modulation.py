@@ -60,10 +60,11 @@ class GainResponse:
     def taps(self, ch: int, rate: float | None = None) -> np.ndarray:
         """Symmetric FIR taps (``scipy.signal.firwin2``) for channel ``ch`` at ``rate``.
 
-        The response is divided by ``sinc(f / rate)^3`` (at most
-        :data:`_MAX_BOOST`): what a mean over each gain segment and the
-        linear interpolation between segment centres take off a modulation
-        at ``f`` (boxcar and triangle kernels, textbook Fourier pairs).
+        The response ``r`` is multiplied by ``(1 / sinc(f / rate)^3) ** r``
+        (at most :data:`_MAX_BOOST`): a mean over each gain segment and the
+        linear interpolation between segment centres take ``sinc^3`` off a
+        modulation at ``f`` (boxcar and triangle kernels, textbook Fourier
+        pairs), restored in full where the response passes in full.
         """
         rate = self.rate if rate is None else rate
         nyq = rate / 2
@@ -72,8 +73,11 @@ class GainResponse:
         # a gain sample is a mean over its segment (a cycle, or part of one) and samples read the
         # gain by linear interpolation between segment centres: sinc(f / rate) times sinc^2
         # (the triangle kernel), 11% short at 6 Hz from segments at 40 Hz, 37% from cycles at 20 Hz;
-        # what passes is restored to its full amplitude
-        r = r / np.maximum(np.sinc(f / rate) ** 3, 1 / _MAX_BOOST)
+        # what passes is restored in proportion to how surely it is modulation: a line barely out of
+        # the floor (response well below 1) is mostly floor, which a full boost would amplify
+        # (measured at 5 Hz: LFP error away from the harmonics 0.28 with this, 0.31 with full boost)
+        boost = 1 / np.maximum(np.sinc(f / rate) ** 3, 1 / _MAX_BOOST)
+        r = r * boost ** r
         numtaps = 2 * int(HALF_S * rate) + 1
         taps = signal.firwin2(numtaps, f, r, fs=rate, window="hann")
         # the window smooths the response near 0 Hz too: restore a unit gain there exactly,
