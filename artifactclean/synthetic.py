@@ -206,14 +206,18 @@ def _smooth_rate_phase(n: int, fs: float, rate_hz: float, variability: float, rn
     return 2 * np.pi * np.cumsum(rate) / fs + rng.uniform(0, 2 * np.pi)
 
 
+def _harmonic_sum(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -> np.ndarray:
+    """``cos(phase)`` plus ``rel * cos(k * phase + ph)`` for harmonics k = 2, 3, ... of ``harmonics``."""
+    out = np.cos(phase)
+    for k, (rel, ph) in enumerate(harmonics, start=2):
+        out = out + rel * np.cos(k * phase + ph)
+    return out
+
+
 def _heart_shape(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -> np.ndarray:
     # pulsatile, not sinusoidal: harmonics of the cardiac rate, scaled to peak |1|
-    h = np.cos(phase)
-    for k, (rel, ph) in enumerate(harmonics, start=2):
-        h = h + rel * np.cos(k * phase + ph)
-    grid = np.linspace(0, 2 * np.pi, 3600, endpoint=False)
-    peak = np.abs(np.cos(grid) + sum(rel * np.cos(k * grid + ph) for k, (rel, ph) in enumerate(harmonics, start=2)))
-    return h / peak.max()
+    peak = np.abs(_harmonic_sum(np.linspace(0, 2 * np.pi, 3600, endpoint=False), harmonics)).max()
+    return _harmonic_sum(phase, harmonics) / peak
 
 
 def _colored_lfp(n_channels: int, n: int, fs: float, rms: float, rng) -> np.ndarray:
@@ -270,9 +274,7 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
             t_held = t
         f_true = f_nom * clock
         ph_held = 2 * np.pi * f_true * t_held + blk.phase0
-        wave = np.cos(ph_held)
-        for h, (rel, ph) in enumerate(spec.harmonics, start=2):
-            wave += rel * np.cos(h * ph_held + ph)
+        wave = _harmonic_sum(ph_held, spec.harmonics)
         env = np.ones_like(t)
         if blk.ramp_s > 0:
             env = np.clip(np.minimum(t_held, dur - t_held) / blk.ramp_s, 0.0, 1.0)

@@ -455,7 +455,7 @@ class RowModelEstimator(CycleEstimator):
             report["censored_samples"] = int(lost.sum())
         return art, report, lost
 
-    def _demodulate(self, v, w, env, taps, rate, censor=None, ramp_hz=None):
+    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz):
         """The envelope of the rows as the data show it, and the rows rescaled to their centres.
 
         The strongest harmonic's amplitude (the fundamental, normally),
@@ -477,8 +477,7 @@ class RowModelEstimator(CycleEstimator):
         coef = np.fft.rfft(filled, axis=1)[:, 1:]
         power = np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)
         lead = coef[:, int(np.argmax(power))] if k.size else np.ones(n_rows)
-        pair = filter_sequences(np.stack([lead.real, lead.imag]), taps, rate, env,
-                                self.tracking_hz if ramp_hz is None else ramp_hz)
+        pair = filter_sequences(np.stack([lead.real, lead.imag]), taps, rate, env, ramp_hz)
         mag = np.hypot(pair[0], pair[1])
         level = np.median(mag[plateau]) if plateau.any() else max(float(mag.max()), 1e-300)
         g_row = np.where(env < _FOOT, env, mag / max(level, 1e-300))
