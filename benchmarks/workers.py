@@ -21,13 +21,20 @@ from pathlib import Path
 import numpy as np
 
 
-def best(fn, repeat: int):
-    times, out = [], None
+def best_pair(fn1, fn2, repeat: int):
+    """Best times of ``fn1`` and ``fn2`` run in turns, and their last outputs.
+
+    Alternating keeps both runs under the same load on a shared machine (run
+    back to back, one worker's times drifted 1.5-3.4 s within one run while
+    the other core's load changed).
+    """
+    times, outs = ([], []), [None, None]
     for _ in range(repeat):
-        t0 = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t0)
-    return min(times), out
+        for k, fn in enumerate((fn1, fn2)):
+            t0 = time.perf_counter()
+            outs[k] = fn()
+            times[k].append(time.perf_counter() - t0)
+    return min(times[0]), min(times[1]), outs[0], outs[1]
 
 
 def main(argv=None) -> dict:
@@ -50,8 +57,8 @@ def main(argv=None) -> dict:
                              seed=3)
     x = rec.data
     clean(x[:2, : int(5 * rec.fs)], rec.fs, method=args.method)  # compile the kernels outside the timing
-    t1, y1 = best(lambda: clean(x, rec.fs, method=args.method, workers=1), args.repeat)
-    t2, y2 = best(lambda: clean(x, rec.fs, method=args.method, workers=2), args.repeat)
+    t1, t2, y1, y2 = best_pair(lambda: clean(x, rec.fs, method=args.method, workers=1),
+                               lambda: clean(x, rec.fs, method=args.method, workers=2), args.repeat)
     res = dict(array=dict(one=t1, two=t2, equal=bool(np.array_equal(y1, y2))))
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
@@ -62,8 +69,7 @@ def main(argv=None) -> dict:
         def run(out, **kw):
             return lambda: clean_recording(open_recording(root), tmp / out, method=args.method, force=True, **kw)
 
-        f1, _ = best(run("one.dat"), args.repeat)
-        f2, _ = best(run("two.dat", workers=2), args.repeat)
+        f1, f2, _, _ = best_pair(run("one.dat"), run("two.dat", workers=2), args.repeat)
         res["file"] = dict(one=f1, two=f2, equal=(tmp / "one.dat").read_bytes() == (tmp / "two.dat").read_bytes())
         try:
             from dask.distributed import Client, LocalCluster
@@ -73,17 +79,17 @@ def main(argv=None) -> dict:
             with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
                     Client(lc) as client:
                 run("dask.dat", cluster=client)()  # workers import and compile once
-                fd, _ = best(run("dask.dat", cluster=client), args.repeat)
-            res["dask"] = dict(seconds=fd,
+                f1d, fd, _, _ = best_pair(run("one.dat"), run("dask.dat", cluster=client), args.repeat)
+            res["dask"] = dict(one=f1d, seconds=fd,
                                equal=(tmp / "one.dat").read_bytes() == (tmp / "dask.dat").read_bytes())
-    print(f"{args.channels} channels x {args.seconds:g} s at 30 kHz, {args.method!r}, best of {args.repeat}")
+    print(f"{args.channels} channels x {args.seconds:g} s at 30 kHz, {args.method!r}, best of {args.repeat} in turns")
     print(f"{'run':<34} {'speed-up vs 1 worker':>21} {'same output':>12}")
     print(f"{'array, 2 worker threads':<34} {res['array']['one'] / res['array']['two']:>21.2f} "
           f"{str(res['array']['equal']):>12}")
     print(f"{'file, 2 worker threads':<34} {res['file']['one'] / res['file']['two']:>21.2f} "
           f"{str(res['file']['equal']):>12}")
     if res["dask"] is not None:
-        print(f"{'file, dask LocalCluster 2 procs':<34} {res['file']['one'] / res['dask']['seconds']:>21.2f} "
+        print(f"{'file, dask LocalCluster 2 procs':<34} {res['dask']['one'] / res['dask']['seconds']:>21.2f} "
               f"{str(res['dask']['equal']):>12}")
     return res
 
