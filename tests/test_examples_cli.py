@@ -55,6 +55,7 @@ def test_benchmark_prints_ratios():
     ("workers.py", ["--channels", "4", "--seconds", "6", "--repeat", "1"], "file, 2 worker threads"),
     ("profile_default.py", ["--seconds", "6", "--top", "5"], "own share"),
     ("acceptance.py", ["--seconds", "6", "--freqs", "40"], "sine"),
+    ("pieces.py", ["--seconds", "8", "--max-range", "3", "--method", "template", "comb"], "template"),
 ])
 def test_other_benchmarks_run_small(script, args, expect):
     # small sizes: the scripts must keep working; their figures come from full-size runs
