@@ -126,8 +126,7 @@ def find_dac_grid(
         return None
     ms = np.arange(m_lo, m_hi + 1)
     # fold step positions on each candidate tick period
-    ph = np.exp(2j * np.pi * np.outer(ms, np.mod(u_mid, 1.0)))
-    r = np.abs(ph.mean(axis=1))
+    r = _fold_concentration(u_mid, ms)
     best = int(np.argmax(r))
     if r[best] < min_concentration:
         return None
@@ -171,6 +170,22 @@ def step_rate(x: np.ndarray, fs: float, *, z_threshold: float = 8.0) -> float:
     if sigma <= 0:
         return 0.0
     return float(_step_positions(q, z_threshold * sigma).size / (x.size / fs))
+
+
+def _fold_concentration(u: np.ndarray, ms: np.ndarray, width: int = 64) -> np.ndarray:
+    """``|mean(exp(2 pi i m u))|`` for each of the consecutive integers ``ms``.
+
+    ``exp(2 pi i (m0 + k) u)`` is ``exp(2 pi i m0 u)`` times ``exp(2 pi i k u)``:
+    a table of the second for ``k < width`` and one matrix-vector product per
+    ``width`` candidates take the place of an exponential per candidate and step.
+    """
+    u = np.mod(u, 1.0)
+    table = np.exp(2j * np.pi * np.outer(np.arange(width), u))
+    r = np.empty(ms.size)
+    for c0 in range(0, ms.size, width):
+        k = min(width, ms.size - c0)
+        r[c0:c0 + k] = np.abs(table[:k] @ np.exp(2j * np.pi * ms[c0] * u)) / u.size
+    return r
 
 
 def _step_positions(q: np.ndarray, level: float) -> np.ndarray:

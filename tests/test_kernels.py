@@ -29,6 +29,8 @@ def test_kernels_match_numpy(rng):
     be, al = rng.uniform(size=i0.size), rng.uniform(size=i0.size)
     np.testing.assert_allclose(K.grouped_eval(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al),
                                K.grouped_eval_np(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al), rtol=1e-12)
+    keys = np.sort(rng.integers(0, 7 * 100, x.shape[1]))
+    np.testing.assert_array_equal(K.tick_eval(t, keys, 100, 3, 8), K.tick_eval_np(t, keys, 100, 3, 8))
     starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
     for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
         np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)
@@ -39,6 +41,34 @@ def test_kernels_match_numpy(rng):
         np.testing.assert_array_equal(a, c)
 
 
+def test_residual_highpass_flag_widening_and_interpolation_match_scipy_and_numpy(rng):
+    from scipy import ndimage, signal
+
+    x = rng.standard_normal((3, 4000))
+    t = rng.standard_normal(x.shape)
+    gain = 1 + 0.1 * rng.standard_normal(x.shape)
+    w = (rng.uniform(size=x.shape) > 0.05).astype(float)
+    sos = signal.butter(2, 300.0, btype="highpass", fs=30000.0, output="sos")
+    # reference: scipy.signal.sosfilt on the residual with lost samples zeroed
+    ref = np.abs(signal.sosfilt(sos, (x - gain * t) * (w > 0), axis=1))
+    np.testing.assert_allclose(K.highpass_residual(sos, x, t, gain, w), ref, rtol=1e-12, atol=1e-12)
+    ref1 = np.abs(signal.sosfilt(sos, (x - t) * (w > 0), axis=1))
+    np.testing.assert_allclose(K.highpass_residual(sos, x, t, None, w), ref1, rtol=1e-12, atol=1e-12)
+    # reference: scipy.ndimage.maximum_filter1d (a running maximum of the flags)
+    bad = rng.uniform(size=x.shape) > 0.995
+    bad[0, :2] = bad[1, -1] = True  # flags at both ends
+    np.testing.assert_array_equal(K.widen_flags(bad, 30),
+                                  ndimage.maximum_filter1d(bad, 61, axis=1, mode="constant", cval=False))
+    # reference: numpy.interp row by row, knots unevenly spaced, points beyond both ends
+    xp = np.sort(rng.uniform(0, 10, 40))
+    pts = np.sort(rng.uniform(-1, 11, 3000))
+    fp = rng.standard_normal((3, xp.size))
+    got = K.lerp_rows(fp, *K.lerp_positions(xp, pts))
+    for row, g in zip(fp, got):
+        np.testing.assert_allclose(g, np.interp(pts, xp, row), rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(K.lerp_rows(fp, *K.lerp_positions(xp, pts), compiled=False), got, rtol=1e-12)
+
+
 @pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])
 def test_estimator_same_with_and_without_compiled_loops(fixture, request):
     rec = request.getfixturevalue(fixture)
@@ -47,3 +77,26 @@ def test_estimator_same_with_and_without_compiled_loops(fixture, request):
     a = TemplateSubtraction(compiled=True).fit_transform(x, fs=rec.fs, stim_freq=f)
     b = TemplateSubtraction(compiled=False).fit_transform(x, fs=rec.fs, stim_freq=f)
     np.testing.assert_allclose(a, b, rtol=0, atol=1e-6 * np.abs(x).max())
+
+
+def test_median_of_positive_bins_is_numpy_nanmedian(rng):
+    from artifactclean.estimators.template import _median_of_positive
+
+    g = rng.uniform(0.1, 2.0, (2, 5, 64))
+    g[1, 2, :40] = 0.0  # a template with empty bins
+    g[1, 3] = 0.0  # one with none usable
+    # reference: numpy.nanmedian with the empty bins as NaN (0 where a row has none)
+    with np.errstate(invalid="ignore"), pytest.warns(RuntimeWarning, match="All-NaN"):
+        ref = np.nan_to_num(np.nanmedian(np.where(g > 0, g, np.nan), axis=-1, keepdims=True), nan=0.0)
+    np.testing.assert_array_equal(_median_of_positive(g), ref)
+    np.testing.assert_array_equal(_median_of_positive(g[:1]), np.median(g[:1], axis=-1, keepdims=True))
+
+
+def test_fold_concentration_is_the_direct_circular_mean(rng):
+    from artifactclean.staircase import _fold_concentration
+
+    u = np.cumsum(rng.uniform(0.001, 0.01, 700))
+    ms = np.arange(7, 300)
+    # the definition: resultant length of the step phases folded on m ticks per cycle
+    direct = np.abs(np.exp(2j * np.pi * np.outer(ms, np.mod(u, 1.0))).mean(axis=1))
+    np.testing.assert_allclose(_fold_concentration(u, ms), direct, rtol=0, atol=1e-12)

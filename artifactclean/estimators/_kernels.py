@@ -18,7 +18,8 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
     HAVE_NUMBA = False
 
-__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "gain_sums"]
+__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "gain_sums", "highpass_residual",
+           "lerp_positions", "lerp_rows", "tick_eval", "widen_flags"]
 
 
 def _jit(fn):
@@ -73,6 +74,26 @@ def grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha):
     return (1 - beta) * lo + beta * hi
 
 
+def group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
+    """Two neighbouring group templates and the weight of the second, for cycle positions.
+
+    Group ``i`` holds cycles ``i*stride .. (i+1)*stride - 1``; its centre is at
+    cycle position ``(i + 0.5) * stride``.
+    """
+    q = cycle_pos / stride - 0.5
+    i0 = np.clip(np.floor(q).astype(np.int64), 0, n_groups - 1)
+    beta = np.clip(q - i0, 0.0, 1.0)
+    i1 = np.minimum(i0 + 1, n_groups - 1)
+    return i0, i1, beta
+
+
+def tick_eval_np(t, key, n_bins, stride, n_groups):
+    """Template at DAC tick keys (every sample of a tick holds one value), between group centres."""
+    row, b = np.divmod(key, n_bins)
+    i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
+    return (1 - beta) * t[:, i0 * n_bins + b] + beta * t[:, i1 * n_bins + b]
+
+
 def segment_stats_np(x, w, t, seg_starts):
     """Per gain segment, about each segment's own (weighted) means: sum w x t, sum w t^2, sum t^2.
 
@@ -87,6 +108,45 @@ def segment_stats_np(x, w, t, seg_starts):
     n = np.diff(np.append(seg_starts, x.shape[-1]))
     full = red(t * t) - red(t) ** 2 / n
     return num, den, full
+
+
+def highpass_residual_np(sos, x, t, gain, w):
+    """``|sosfilt(sos, (x - gain t) * (w > 0))|`` along the last axis (``gain`` None means 1)."""
+    from scipy import signal
+
+    r = x - (t if gain is None else gain * t)
+    return np.abs(signal.sosfilt(sos, r * (w > 0), axis=-1))
+
+
+def widen_flags_np(bad, half):
+    """Flags widened by ``half`` samples on either side, along the last axis."""
+    from scipy import ndimage
+
+    return ndimage.maximum_filter1d(bad, 2 * half + 1, axis=-1, mode="constant", cval=False)
+
+
+def lerp_positions(xp: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Where each of the sorted ``x`` falls between the sorted knots ``xp``: left knot and fraction.
+
+    Outside the knots the fraction is clipped to 0 or 1, so :func:`lerp_rows`
+    holds the end values, as :func:`numpy.interp` does.
+    """
+    j = np.clip(np.searchsorted(xp, x, side="right") - 1, 0, max(xp.size - 2, 0))
+    if xp.size < 2:
+        return j, np.zeros(x.size)
+    frac = np.clip((x - xp[j]) / (xp[j + 1] - xp[j]), 0.0, 1.0)
+    return j, frac
+
+
+def lerp_rows_np(fp, j, frac, out):
+    """Rows of ``fp`` read at positions (``j``, ``frac``) from :func:`lerp_positions`, into ``out``."""
+    if fp.shape[1] < 2:
+        out[:] = fp[:, :1]
+        return out
+    lo = fp[:, j]
+    np.multiply(fp[:, j + 1] - lo, frac, out=out)
+    out += lo
+    return out
 
 
 # ----------------------------------------------------------------------------- compiled
@@ -132,6 +192,18 @@ def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
             lo = (1 - a) * t[ch, r0 + b0[i]] + a * t[ch, r0 + b1[i]]
             hi = (1 - a) * t[ch, r1 + b0[i]] + a * t[ch, r1 + b1[i]]
             out[ch, i] = (1 - beta[i]) * lo + beta[i] * hi
+
+
+def _tick_eval_loop(t, key, n_bins, stride, n_groups, out):
+    for ch in range(t.shape[0]):
+        for i in range(key.size):
+            row = key[i] // n_bins
+            b = key[i] - row * n_bins
+            q = (row + (b + 0.5) / n_bins) / stride - 0.5
+            i0 = min(max(int(np.floor(q)), 0), n_groups - 1)
+            beta = min(max(q - i0, 0.0), 1.0)
+            i1 = min(i0 + 1, n_groups - 1)
+            out[ch, i] = (1 - beta) * t[ch, i0 * n_bins + b] + beta * t[ch, i1 * n_bins + b]
 
 
 def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
@@ -185,6 +257,51 @@ def _gain_seg_sums_loop(x, w, b, seg, tmpl, sw, sx, st, sxt, stt):
             stt[ch, k] += wi * t * t
 
 
+def _highpass_residual_loop(sos, x, t, gain, use_gain, w, out):
+    # direct form II transposed, section by section per sample: the recursion of scipy.signal.sosfilt
+    n_sec = sos.shape[0]
+    z = np.zeros((n_sec, 2))
+    for ch in range(x.shape[0]):
+        z[:] = 0.0
+        for i in range(x.shape[1]):
+            if w[ch, i] > 0:
+                v = x[ch, i] - (gain[ch, i] * t[ch, i] if use_gain else t[ch, i])
+            else:
+                v = 0.0
+            for s in range(n_sec):
+                y = sos[s, 0] * v + z[s, 0]
+                z[s, 0] = sos[s, 1] * v - sos[s, 4] * y + z[s, 1]
+                z[s, 1] = sos[s, 2] * v - sos[s, 5] * y
+                v = y
+            out[ch, i] = abs(v)
+
+
+def _lerp_rows_loop(fp, j, frac, out):
+    for ch in range(fp.shape[0]):
+        for i in range(j.size):
+            lo = fp[ch, j[i]]
+            out[ch, i] = (fp[ch, j[i] + 1] - lo) * frac[i] + lo
+
+
+def _widen_flags_loop(bad, half, out):
+    n = bad.shape[1]
+    for ch in range(bad.shape[0]):
+        last = -half - 1  # the latest flag at or before i
+        for i in range(n):
+            if bad[ch, i]:
+                last = i
+            out[ch, i] = i - last <= half
+        nxt = n + half  # the next flag at or after i
+        for i in range(n - 1, -1, -1):
+            if bad[ch, i]:
+                nxt = i
+            if nxt - i <= half:
+                out[ch, i] = True
+
+
+_widen_flags_c = _jit(_widen_flags_loop)
+_highpass_residual_c = _jit(_highpass_residual_loop)
+_lerp_rows_c = _jit(_lerp_rows_loop)
 _gain_bin_sums_c = _jit(_gain_bin_sums_loop)
 _gain_seg_sums_c = _jit(_gain_seg_sums_loop)
 
@@ -225,13 +342,20 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, *, compiled: bool = True):
 _phase_sums_c = _jit(_phase_sums_loop)
 _tick_sums_c = _jit(_tick_sums_loop)
 _segment_stats_c = _jit(_segment_stats_loop)
+_tick_eval_c = _jit(_tick_eval_loop)
 _grouped_eval_c = _jit(_grouped_eval_loop)
 
 
-def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, compiled: bool = True):
+def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, out=None, compiled: bool = True):
+    """Template read back at each sample (see :func:`grouped_eval_np`), into ``out`` if given."""
     if not (compiled and HAVE_NUMBA):
-        return grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha)
-    out = np.empty((t.shape[0], i0.size))
+        res = grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha)
+        if out is None:
+            return res
+        out[:] = res
+        return out
+    if out is None:
+        out = np.empty((t.shape[0], i0.size))
     _grouped_eval_c(t, n_bins, i0, i1, beta, b0, b1, alpha, out)
     return out
 
@@ -242,7 +366,7 @@ def phase_sums(x, w, gain, gi, ga, inside, n_bins, stride, n_groups, *, compiled
         return phase_sums_np(x, w, gain, gi, ga, inside, n_bins, stride, n_groups)
     s = np.zeros((x.shape[0], n_groups * n_bins))
     g = np.zeros_like(s)
-    _phase_sums_c(x, w, gain, gi, ga, inside.astype(np.float64), n_bins, stride, s, g)
+    _phase_sums_c(x, w, gain, gi, ga, np.asarray(inside, dtype=np.float64), n_bins, stride, s, g)
     return s.reshape(-1, n_groups, n_bins), g.reshape(-1, n_groups, n_bins)
 
 
@@ -263,3 +387,53 @@ def segment_stats(x, w, t, seg_starts, *, compiled: bool = True):
     num, den, full = np.empty(shape), np.empty(shape), np.empty(shape)
     _segment_stats_c(x, w, t, seg_starts, num, den, full)
     return num, den, full
+
+
+def highpass_residual(sos, x, t, gain=None, w=None, *, compiled: bool = True) -> np.ndarray:
+    """Rectified high-pass (``sos`` sections, zero initial state) of the residual ``x - gain t``.
+
+    Samples with ``w == 0`` (lost) enter as 0, so their edges do not ring.
+    One pass and one output array, where numpy needs four arrays of the data's size.
+    """
+    if not (compiled and HAVE_NUMBA):
+        return highpass_residual_np(sos, x, t, gain, w)
+    sos = np.ascontiguousarray(sos, dtype=np.float64)
+    if not np.allclose(sos[:, 3], 1.0):
+        raise ValueError("sos sections must be normalised (a0 == 1)")
+    out = np.empty(x.shape)
+    use_gain = gain is not None
+    _highpass_residual_c(sos, x, t, gain if use_gain else t, use_gain, w, out)
+    return out
+
+
+def lerp_rows(fp, j, frac, out=None, *, compiled: bool = True) -> np.ndarray:
+    """Linear interpolation of each row of ``fp`` (n_rows, n_knots) at precomputed positions.
+
+    ``j, frac`` come from :func:`lerp_positions` (shared by every row and
+    every pass over a block); equal to :func:`numpy.interp` row by row to
+    rounding.
+    """
+    if out is None:
+        out = np.empty((fp.shape[0], j.size))
+    if not (compiled and HAVE_NUMBA) or fp.shape[1] < 2:
+        return lerp_rows_np(fp, j, frac, out)
+    _lerp_rows_c(np.ascontiguousarray(fp, dtype=np.float64), j, frac, out)
+    return out
+
+
+def widen_flags(bad, half: int, *, compiled: bool = True) -> np.ndarray:
+    """Boolean flags (n_rows, n) widened by ``half`` samples on either side of each flag."""
+    if not (compiled and HAVE_NUMBA):
+        return widen_flags_np(bad, half)
+    out = np.empty(bad.shape, dtype=bool)
+    _widen_flags_c(np.ascontiguousarray(bad), int(half), out)
+    return out
+
+
+def tick_eval(t, key, n_bins: int, stride: int, n_groups: int, *, compiled: bool = True) -> np.ndarray:
+    """Templates ``t`` (n_ch, n_groups * n_bins) read at DAC tick keys: see :func:`tick_eval_np`."""
+    if not (compiled and HAVE_NUMBA):
+        return tick_eval_np(t, key, n_bins, stride, n_groups)
+    out = np.empty((t.shape[0], key.size))
+    _tick_eval_c(np.ascontiguousarray(t), np.ascontiguousarray(key, dtype=np.int64), n_bins, stride, n_groups, out)
+    return out

@@ -22,7 +22,7 @@ from ..clipping import find_clipped
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, \
     ramp_cutoff, segment_gain, segments_per_cycle
 from ..staircase import find_dac_grid, step_rate
-from ._kernels import grouped_eval
+from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["CycleEstimator", "CycleGrid", "RowModelEstimator", "block_key", "fill_rows", "noise_of_sequences",
@@ -80,16 +80,17 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
     return np.maximum.accumulate(new)  # ticks never run backwards
 
 
-def spike_outliers(resid, wb, fs, u, span_cycles, outlier_z):
+def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compiled=True):
     """Zero the weight of spike-band outliers (and 1 ms around them) in ``wb``; return it and the count.
 
+    Outliers are judged on the residual ``x - gain * fit`` (``gain`` None: 1).
     The threshold is set stretch by stretch (``span_cycles`` cycles, counted
     from absolute cycle numbers), so it follows slow changes of the noise
     and a piece of a block flags what the whole block would.
     """
     sos = signal.butter(2, min(300.0, 0.4 * fs), btype="highpass", fs=fs, output="sos")
     # lost samples carry no residual (zero), so their edges do not ring into flags
-    hp = np.abs(signal.sosfilt(sos, resid * (wb > 0), axis=1))
+    hp = highpass_residual(sos, x, fit, gain, wb, compiled=compiled)
     bad = np.zeros(hp.shape, dtype=bool)
     stretch = np.floor(u / span_cycles).astype(np.int64)
     bounds = np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
@@ -105,16 +106,8 @@ def spike_outliers(resid, wb, fs, u, span_cycles, outlier_z):
             thr = max(outlier_z * 1.4826 * med, q99, 1e-12)
             bad[ch, a:b] = (seg > thr) & ok
     half = max(1, int(round(1e-3 * fs)))
-    # widen each flag by `half` samples: a difference array over the (few) flagged samples
-    n = bad.shape[1]
-    spread = np.zeros(bad.shape, dtype=bool)
-    for ch in range(bad.shape[0]):
-        idx = np.flatnonzero(bad[ch])
-        if idx.size:
-            d = np.zeros(n + 1, dtype=np.int32)
-            np.add.at(d, np.maximum(idx - half, 0), 1)
-            np.add.at(d, np.minimum(idx + half + 1, n), -1)
-            spread[ch] = np.cumsum(d[:n]) > 0
+    # widen each flag by `half` samples on either side (a running maximum)
+    spread = widen_flags(bad, half, compiled=compiled)
     w = wb * ~spread
     return w, int(spread.sum())
 
@@ -442,7 +435,7 @@ class RowModelEstimator(CycleEstimator):
                 chosen.append(info)
             art = grid.scatter(rows, xb)
             if it < passes - 1:
-                w_out, n_out = spike_outliers(xb - art, wb, fs, u, 30, self.outlier_z)
+                w_out, n_out = spike_outliers(xb, art, wb, fs, u, 30, self.outlier_z)
                 v, w = grid.gather(xb, w_out)
         report = dict(freq_hz=f, bins_per_cycle=grid.n_bins,
                       dac_ticks_per_cycle=None if dac is None else dac.ticks_per_cycle,

@@ -52,7 +52,8 @@ from scipy import ndimage
 
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import ramp_cutoff, segments_per_cycle, smooth_gain
-from ._kernels import grouped_eval, phase_sums, segment_stats, tick_sums
+from ._kernels import (group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_eval,
+                       tick_sums)
 from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
 __all__ = ["TemplateSubtraction"]
@@ -67,17 +68,20 @@ def _group_window(grp: np.ndarray, k_groups: int) -> np.ndarray:
     return c[:, np.minimum(idx + k_groups + 1, n_groups)] - c[:, np.maximum(idx - k_groups, 0)]
 
 
-def _group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
-    """Two neighbouring group templates and the weight of the second, for cycle positions.
+def _median_of_positive(g: np.ndarray) -> np.ndarray:
+    """Median over the last axis of the positive entries of ``g >= 0`` (0 where there are none).
 
-    Group ``i`` holds cycles ``i*stride .. (i+1)*stride - 1``; its centre is at
-    cycle position ``(i + 0.5) * stride``.
+    The same numbers as ``numpy.nanmedian`` with the zeros set to NaN, which
+    goes row by row; templates without empty bins (the usual case) take one
+    vectorised ``numpy.median``.
     """
-    q = cycle_pos / stride - 0.5
-    i0 = np.clip(np.floor(q).astype(np.int64), 0, n_groups - 1)
-    beta = np.clip(q - i0, 0.0, 1.0)
-    i1 = np.minimum(i0 + 1, n_groups - 1)
-    return i0, i1, beta
+    positive = g > 0
+    if positive.all():
+        return np.median(g, axis=-1, keepdims=True)
+    typical = np.zeros(g.shape[:-1] + (1,))
+    some = positive.any(axis=-1)  # rows with none stay 0 (and raise no all-NaN warning)
+    typical[some] = np.nanmedian(np.where(positive[some], g[some], np.nan), axis=-1, keepdims=True)
+    return typical
 
 
 def _shape(s, g, n_bins, k_groups, denoise, stride):
@@ -108,9 +112,7 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
     # judged per template (locally), so a piece of a block decides as the whole block
     # typical over the bins that hold data: with more than half the bins clipped somewhere in the
     # window (heavily clipped channels), a median over all bins is 0 and no bin would be a hole
-    with np.errstate(invalid="ignore"):
-        typical = np.nanmedian(np.where(g > 0, g, np.nan), axis=-1, keepdims=True)
-    typical = np.nan_to_num(typical, nan=0.0)
+    typical = _median_of_positive(g)
     holes = g <= 0.05 * typical
     if holes.any():
         # bins with no data (phases clipped in every cycle of the window): interpolate
@@ -286,7 +288,7 @@ class TemplateSubtraction(CycleEstimator):
             slope = (u[-1] - u[0]) / max(n - 1, 1)
             u_grid = row0 + (np.arange(n_grid) + 0.5) / n_bins
             n_g = (u_grid - u[0]) / slope
-            inside = (n_g >= 0) & (n_g <= n - 1)
+            inside = ((n_g >= 0) & (n_g <= n - 1)).astype(np.float64)  # a weight in every pass
             gi = np.clip(np.floor(n_g).astype(np.int64), 0, n - 2)
             ga = np.clip(n_g - gi, 0.0, 1.0)
             sampler = (gi, ga, inside)
@@ -295,12 +297,14 @@ class TemplateSubtraction(CycleEstimator):
             bpos = np.mod(uc, 1.0) * n_bins - 0.5
             b0f = np.floor(bpos).astype(np.int64)
             alpha = bpos - b0f
-            reader = _group_position(uc, stride, n_groups) + (np.mod(b0f, n_bins), np.mod(b0f + 1, n_bins), alpha)
+            reader = group_position(uc, stride, n_groups) + (np.mod(b0f, n_bins), np.mod(b0f + 1, n_bins), alpha)
         # gain segments: enough per cycle to sample the tracking band
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         seg = np.floor(u * per_cycle).astype(np.int64)
         seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
         seg_u = (seg[seg_starts] + 0.5) / per_cycle
+        # every pass reads the gain at the same phases: place them between segment centres once
+        seg_pos = lerp_positions(seg_u, u)
 
         censored = None
         if np.any(wb == 0):
@@ -330,11 +334,15 @@ class TemplateSubtraction(CycleEstimator):
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups)
             else:
                 tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride)
-                t_n = grouped_eval(tmpl, n_bins, *reader, compiled=self.compiled)
+                # one buffer for every pass: fresh arrays of the data's size cost page faults
+                t_n = grouped_eval(tmpl, n_bins, *reader, out=None if it == 0 else t_n, compiled=self.compiled)
             if self.track_amplitude:
-                gain = self._gain(xb, w, t_n, seg_starts, seg_u, u, f * per_cycle, response, seg_env, ramp_hz)
+                # the new gain depends only on the template: it overwrites the old one
+                gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response, seg_env,
+                                  ramp_hz, out=gain)
             if self.robust and it == passes - 2:
-                w, n_out = spike_outliers(xb - gain * t_n, wb, fs, u, max(4, k_half // 2), self.outlier_z)
+                w, n_out = spike_outliers(xb, t_n, wb, fs, u, max(4, k_half // 2), self.outlier_z, gain=gain,
+                                          compiled=self.compiled)
         info = dict(
             freq_hz=f,
             n_cycles=(2 * k_groups + 1) * stride,
@@ -347,7 +355,7 @@ class TemplateSubtraction(CycleEstimator):
             censored_samples=0 if censored is None else int(censored.sum()),
             unlocked_dac_steps_per_s=float(unlocked),
         )
-        return gain * t_n, info, censored
+        return np.multiply(gain, t_n, out=t_n), info, censored
 
     def _censored(self, wb, sampler, key, reader, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.
@@ -371,7 +379,7 @@ class TemplateSubtraction(CycleEstimator):
         half = np.full(n, 0.5)
         if sampler is None:
             row, b = np.divmod(key, n_bins)
-            i0, i1, _ = _group_position(row + (b + 0.5) / n_bins, stride, n_groups)
+            i0, i1, _ = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
             cen = grouped_eval(bad, n_bins, i0, i1, half, b, b, half, compiled=self.compiled) > 0
         else:
             i0, i1, _, b0, b1, _ = reader
@@ -380,9 +388,7 @@ class TemplateSubtraction(CycleEstimator):
 
     def _read_ticks(self, tmpl, key, n_bins, stride, n_groups):
         """Template at DAC tick keys, interpolated between group centres."""
-        row, b = np.divmod(key, n_bins)
-        i0, i1, beta = _group_position(row + (b + 0.5) / n_bins, stride, n_groups)
-        return grouped_eval(tmpl, n_bins, i0, i1, beta, b, b, np.zeros(key.size), compiled=self.compiled)
+        return tick_eval(tmpl, key, n_bins, stride, n_groups, compiled=self.compiled)
 
     def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride):
         s, g = tick_sums(xb, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
@@ -393,7 +399,7 @@ class TemplateSubtraction(CycleEstimator):
         s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
         return _shape(s, g, n_bins, k_groups, denoise, stride)
 
-    def _gain(self, xb, w, t_n, seg_starts, seg_u, u, seg_rate, response, seg_env, ramp_hz):
+    def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, seg_env, ramp_hz, out):
         num, den, full = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
         g = np.zeros_like(num)
         for ch in range(g.shape[0]):
@@ -412,7 +418,4 @@ class TemplateSubtraction(CycleEstimator):
             # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
             # level keeps the ramps' filtering local, so pieces of a block match the whole block
             g = smooth_gain(g, response, seg_rate, seg_env, ramp_hz, scale=1.0)
-        out = np.empty_like(xb)
-        for ch in range(xb.shape[0]):
-            out[ch] = np.interp(u, seg_u, g[ch])
-        return out
+        return lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
