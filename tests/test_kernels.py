@@ -29,8 +29,6 @@ def test_kernels_match_numpy(rng):
     be, al = rng.uniform(size=i0.size), rng.uniform(size=i0.size)
     np.testing.assert_allclose(K.grouped_eval(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al),
                                K.grouped_eval_np(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al), rtol=1e-12)
-    keys = np.sort(rng.integers(0, 7 * 100, x.shape[1]))
-    np.testing.assert_array_equal(K.tick_eval(t, keys, 100, 3, 8), K.tick_eval_np(t, keys, 100, 3, 8))
     starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
     for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
         np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)

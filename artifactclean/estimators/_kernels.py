@@ -19,7 +19,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     HAVE_NUMBA = False
 
 __all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "gain_sums", "highpass_residual",
-           "lerp_positions", "lerp_rows", "tick_eval", "widen_flags"]
+           "lerp_positions", "lerp_rows", "widen_flags"]
 
 
 def _jit(fn):
@@ -85,13 +85,6 @@ def group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
     beta = np.clip(q - i0, 0.0, 1.0)
     i1 = np.minimum(i0 + 1, n_groups - 1)
     return i0, i1, beta
-
-
-def tick_eval_np(t, key, n_bins, stride, n_groups):
-    """Template at DAC tick keys (every sample of a tick holds one value), between group centres."""
-    row, b = np.divmod(key, n_bins)
-    i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
-    return (1 - beta) * t[:, i0 * n_bins + b] + beta * t[:, i1 * n_bins + b]
 
 
 def segment_stats_np(x, w, t, seg_starts):
@@ -192,18 +185,6 @@ def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
             lo = (1 - a) * t[ch, r0 + b0[i]] + a * t[ch, r0 + b1[i]]
             hi = (1 - a) * t[ch, r1 + b0[i]] + a * t[ch, r1 + b1[i]]
             out[ch, i] = (1 - beta[i]) * lo + beta[i] * hi
-
-
-def _tick_eval_loop(t, key, n_bins, stride, n_groups, out):
-    for ch in range(t.shape[0]):
-        for i in range(key.size):
-            row = key[i] // n_bins
-            b = key[i] - row * n_bins
-            q = (row + (b + 0.5) / n_bins) / stride - 0.5
-            i0 = min(max(int(np.floor(q)), 0), n_groups - 1)
-            beta = min(max(q - i0, 0.0), 1.0)
-            i1 = min(i0 + 1, n_groups - 1)
-            out[ch, i] = (1 - beta) * t[ch, i0 * n_bins + b] + beta * t[ch, i1 * n_bins + b]
 
 
 def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
@@ -342,7 +323,6 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, *, compiled: bool = True):
 _phase_sums_c = _jit(_phase_sums_loop)
 _tick_sums_c = _jit(_tick_sums_loop)
 _segment_stats_c = _jit(_segment_stats_loop)
-_tick_eval_c = _jit(_tick_eval_loop)
 _grouped_eval_c = _jit(_grouped_eval_loop)
 
 
@@ -429,11 +409,3 @@ def widen_flags(bad, half: int, *, compiled: bool = True) -> np.ndarray:
     _widen_flags_c(np.ascontiguousarray(bad), int(half), out)
     return out
 
-
-def tick_eval(t, key, n_bins: int, stride: int, n_groups: int, *, compiled: bool = True) -> np.ndarray:
-    """Templates ``t`` (n_ch, n_groups * n_bins) read at DAC tick keys: see :func:`tick_eval_np`."""
-    if not (compiled and HAVE_NUMBA):
-        return tick_eval_np(t, key, n_bins, stride, n_groups)
-    out = np.empty((t.shape[0], key.size))
-    _tick_eval_c(np.ascontiguousarray(t), np.ascontiguousarray(key, dtype=np.int64), n_bins, stride, n_groups, out)
-    return out

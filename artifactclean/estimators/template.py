@@ -52,8 +52,7 @@ from scipy import ndimage
 
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import ramp_cutoff, segments_per_cycle, smooth_gain
-from ._kernels import (group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_eval,
-                       tick_sums)
+from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
 from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
 __all__ = ["TemplateSubtraction"]
@@ -388,7 +387,9 @@ class TemplateSubtraction(CycleEstimator):
 
     def _read_ticks(self, tmpl, key, n_bins, stride, n_groups):
         """Template at DAC tick keys, interpolated between group centres."""
-        return tick_eval(tmpl, key, n_bins, stride, n_groups, compiled=self.compiled)
+        row, b = np.divmod(key, n_bins)
+        i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
+        return grouped_eval(tmpl, n_bins, i0, i1, beta, b, b, np.zeros(key.size), compiled=self.compiled)
 
     def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride):
         s, g = tick_sums(xb, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
