@@ -26,7 +26,7 @@ from scipy import ndimage, signal
 
 from .estimators._kernels import gain_sums
 
-__all__ = ["GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "ramp_cutoff",
+__all__ = ["GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "plateau_level", "ramp_cutoff",
            "segment_gain", "segments_per_cycle", "smooth_gain"]
 
 #: below this (Hz) the gain always passes: respiration (~0.2-0.5 Hz) and the filter's transition
@@ -37,6 +37,8 @@ HALF_S = 2.0
 _MAX_BOOST = 1.5
 #: envelope below which (margins, ramp feet) the gain is the envelope itself
 _FOOT = 0.02
+#: envelope above which a sequence is on its plateau (0.9, not 1: a data-driven envelope breathes)
+_PLATEAU = 0.9
 
 
 @dataclass
@@ -239,23 +241,21 @@ def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: n
     higher one lets the neural floor through the gain beside every harmonic
     for the whole ramp.
 
-    ``scale`` fixes the plateau level instead of the median: a sequence
-    normalised to 1 on the plateau (the template's gain) then gets a result
-    that depends on its samples within the filter's reach only, so a piece
-    of a block is filtered exactly as the whole block (on the plateau the
-    level cancels anyway; within the ramps it does not).
+    ``scale`` fixes the plateau level (one, or one per sequence) instead of
+    the median (:func:`plateau_level`): a sequence normalised to 1 on the
+    plateau (the template's gain), or one whose level was measured once per
+    block, then gets a result that depends on its samples within the
+    filter's reach only, so a piece of a block is filtered exactly as the
+    whole block (on the plateau the level cancels anyway; within the ramps
+    it does not).
     """
     seq = np.atleast_2d(seq)
     if envelope is None:
         return ndimage.convolve1d(seq, taps, axis=-1, mode="nearest")
-    # 0.9, not 1: a data-driven envelope breathes around 1 on the plateau
-    plateau = envelope > 0.9
-    if scale is not None:
-        scale = np.full((seq.shape[0], 1), float(scale))
-    elif plateau.any():
-        scale = np.median(seq[:, plateau], axis=-1, keepdims=True)
-    else:
-        scale = np.ones((seq.shape[0], 1))
+    plateau = envelope > _PLATEAU
+    if scale is None:
+        scale = plateau_level(seq, envelope)
+    scale = np.broadcast_to(np.asarray(scale, dtype=np.float64).reshape(-1, 1), (seq.shape[0], 1))
     base = scale * envelope[None, :]
     dev = seq - base
     # margins and ramp feet carry almost no artifact: a fitted value there is noise over nothing
@@ -269,6 +269,15 @@ def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: n
         broad = ndimage.convolve1d(dev - fine, lowpass_taps(max_hz, rate), axis=-1, mode="nearest")
         fine = fine + zone * broad
     return base + fine
+
+
+def plateau_level(seq: np.ndarray, envelope: np.ndarray) -> np.ndarray:
+    """Median of each sequence (row of ``seq``) where ``envelope`` is on its plateau (1 if none is)."""
+    seq = np.atleast_2d(seq)
+    plateau = envelope > _PLATEAU
+    if not plateau.any():
+        return np.ones(seq.shape[0])
+    return np.median(seq[:, plateau], axis=-1)
 
 
 def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,

@@ -84,6 +84,7 @@ def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_
     import warnings
 
     from .estimators.base import _check_reference, _fit_model, validate_recording
+    from .estimators.cycles import array_reader
 
     est._validate_params()
     x, fs, squeeze = validate_recording(data, fs, nan_policy=nan_policy)
@@ -96,7 +97,7 @@ def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_
         warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
                       "frequency hint may be wrong, run `artifactclean survey` without it", stacklevel=3)
     if hasattr(est, "prepare"):
-        est.prepare(lambda a, b: x_model[:, a:b], model, fs)
+        est.prepare(array_reader(x_model), model, fs)
     groups = channel_groups(x.shape[0], workers)
     jobs = []
     with ThreadPoolExecutor(max_workers=len(groups)) as pool:

@@ -121,6 +121,7 @@ def test_piece_inside_a_clipped_plateau_is_cleaned(clipped_plateau, method):
     Before the filling was made local, such a piece was left with ~2 mV of artifact on usable
     samples (its clipped phases were filled with zeros where the whole block borrowed ramp cycles)."""
     from artifactclean import make_estimator
+    from artifactclean.estimators.cycles import array_reader
     from artifactclean.spikes import spike_band
 
     rec = clipped_plateau
@@ -129,7 +130,7 @@ def test_piece_inside_a_clipped_plateau_is_cleaned(clipped_plateau, method):
     y_whole = whole.fit_transform(x, fs=fs)
     lo, hi = int(8 * fs), int(18 * fs)
     est = make_estimator(method)
-    est.prepare(lambda a, b: x[:, a:b], whole.stim_model_, fs)
+    est.prepare(array_reader(x), whole.stim_model_, fs)
     est.fit(x[:, lo:hi], fs=fs, stim_model=whole.stim_model_.window(lo, hi))
     y = est.transform(x[:, lo:hi])
     assert np.all(est.lost_[rec.clipped[:, lo:hi]])  # reported, never hidden

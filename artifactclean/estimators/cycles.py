@@ -14,18 +14,19 @@
 from __future__ import annotations
 
 import warnings
+from typing import NamedTuple
 
 import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, \
-    ramp_cutoff, segment_gain, segments_per_cycle
+    plateau_level, ramp_cutoff, segment_gain, segments_per_cycle
 from ..staircase import find_dac_grid, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
 
-__all__ = ["CycleEstimator", "CycleGrid", "RowModelEstimator", "block_key", "fill_rows", "noise_of_sequences",
+__all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows", "noise_of_sequences",
            "settle_edges", "spike_outliers", "trapezoid"]
 
 #: seconds of plateau the DAC grid is searched in
@@ -36,6 +37,38 @@ _UNLOCKED_STEPS = 50.0
 
 #: rows on either side a row estimator fills an unusable bin from (see fill_rows)
 _FILL_ROWS = 15
+
+#: cycles over which a row estimator sets its spike-outlier threshold
+_OUTLIER_ROWS = 30
+
+
+class BlockPlan(NamedTuple):
+    """What :meth:`CycleEstimator.prepare` decides once per block.
+
+    Attributes
+    ----------
+    ref : int
+        Channel the DAC grid is read from (the strongest unclipped one).
+    grid : DacGrid or None
+        DAC staircase locked to the cycle, if any.
+    unlocked : float
+        Steps per second no locked grid explains.
+    response : GainResponse or None
+        Gain filter response per channel.
+    decided : list of dict or None
+        The estimator's own choices per channel (:meth:`CycleEstimator._decide`).
+    """
+
+    ref: int
+    grid: object
+    unlocked: float
+    response: GainResponse | None
+    decided: list | None
+
+
+def array_reader(x: np.ndarray, offset: int = 0):
+    """``read(a, b, rows=None)`` for :meth:`CycleEstimator.prepare`: samples ``a..b`` of an array starting at ``offset``."""
+    return lambda a, b, rows=None: x[slice(None) if rows is None else rows, a - offset:b - offset]
 
 
 def block_key(blk) -> tuple:
@@ -119,7 +152,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response = plan
+    ref, grid, unlocked, response, decided = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -128,7 +161,9 @@ def _subset_plan(plan, fit: list[int]):
         rows.append(ref)
     if response is not None:
         response = GainResponse(response.freqs, response.response[rows], response.rate)
-    return new_ref, grid, unlocked, response
+    if decided is not None:
+        decided = [decided[i] for i in rows]
+    return BlockPlan(new_ref, grid, unlocked, response, decided)
 
 
 class CycleEstimator(ArtifactEstimator):
@@ -176,7 +211,8 @@ class CycleEstimator(ArtifactEstimator):
         """Decide, once per block, what must not depend on how a recording is cut.
 
         File pieces call this before cleaning a block piece by piece:
-        ``read(a, b)`` returns samples ``a..b`` of all channels. The DAC grid
+        ``read(a, b, rows=None)`` returns samples ``a..b`` of the channels
+        ``rows`` (indices; all channels by default). The DAC grid
         (and the channel it is read from) comes from the middle of the
         block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
         whole array is cleaned at once.
@@ -198,23 +234,31 @@ class CycleEstimator(ArtifactEstimator):
         plans = getattr(self, "_plans", None)
         if plans is None:
             return est, fit
-        for ref, grid, _, _ in plans.values():
+        for ref, grid, *_ in plans.values():
             if self._reads_reference and grid is not None and ref not in fit:
                 fit.append(int(ref))
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
         return est, fit
 
     def _plan(self, read, blk, fs):
+        """The block's :class:`BlockPlan`.
+
+        ``read(a, b, rows=None)`` gives samples ``a..b`` of the channels
+        ``rows`` (all by default). ``decided`` holds per-channel choices of
+        the estimator made on the plateau's middle (:meth:`_decide`), or None.
+        """
+        ref, grid, unlocked, response = self._stretch_plan(read, blk, fs)
+        return BlockPlan(ref, grid, unlocked, response, self._decide(read, blk, fs, grid, response))
+
+    def _decide(self, read, blk, fs, grid, response):
+        """Per-channel choices made once per block (None: the estimator makes none)."""
+        return None
+
+    def _stretch_plan(self, read, blk, fs):
         f = blk.freq_hz
-        p0, p1 = blk.ramp_up_stop, blk.ramp_down_start
-        if p1 - p0 < 10 * fs / f:
-            p0, p1 = blk.start, blk.stop
         n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
         # at most _PLAN_S s, less for many channels (memory), never under a second
-        span = max(1.0, min(_PLAN_S, _PLAN_S * 8 / max(n_ch, 1)))
-        half = int(min(span * fs, p1 - p0) // 2)
-        mid = (p0 + p1) // 2
-        a, b = mid - half, mid + half
+        a, b = plan_stretch(blk, fs, max(1.0, min(_PLAN_S, _PLAN_S * 8 / max(n_ch, 1))))
         x = np.asarray(read(a, b), dtype=np.float64)
         # the strongest channel shows the DAC steps best; a clipped one shows rail edges instead
         spread = np.std(x, axis=1)
@@ -251,15 +295,28 @@ class CycleEstimator(ArtifactEstimator):
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
-            plan = self._plan(lambda a, b: xb[:, a - offset:b - offset], blk, fs)
-        ref, grid, unlocked, response = plan
+            plan = self._plan(array_reader(xb, offset), blk, fs)
+        ref, grid, unlocked, response, decided = plan
         if unlocked > _UNLOCKED_STEPS:
             warnings.warn(
                 f"a DAC staircase ({unlocked:.0f} steps/s) that is not locked to the {blk.freq_hz:.3f} Hz "
                 f"cycle: {type(self).__name__} cannot follow it and a spike-band residual will remain; check "
                 "the result with the validation figures", stacklevel=5)
-        return ref, grid, unlocked, response
+        return ref, grid, unlocked, response, decided
 
+
+def plan_stretch(blk, fs: float, span_s: float) -> tuple[int, int]:
+    """Samples ``a, b`` of the middle of ``blk``'s plateau, at most ``span_s`` seconds.
+
+    A block too short for a plateau of ten cycles gives the middle of the whole block.
+    """
+    f = blk.freq_hz
+    p0, p1 = blk.ramp_up_stop, blk.ramp_down_start
+    if p1 - p0 < 10 * fs / f:
+        p0, p1 = blk.start, blk.stop
+    half = int(min(span_s * fs, p1 - p0) // 2)
+    mid = (p0 + p1) // 2
+    return mid - half, mid + half
 
 
 class CycleGrid:
@@ -406,8 +463,59 @@ class RowModelEstimator(CycleEstimator):
     modelled rows and a dict of what it chose.
     """
 
+    #: channels whose plateau stretch is read at once for :meth:`_decide` (memory)
+    _DECIDE_CHANNELS = 8
+
+    def _decide(self, read, blk, fs, grid, response):
+        """Choices every range of the block shares, per channel, from the middle of its plateau.
+
+        The lead harmonic and its level (:meth:`_demodulate`) and what
+        ``_fit_rows`` chooses (which harmonics are kept and tracked fast, the
+        sequences' plateau levels) are made here once, on up to ``_PLAN_S``
+        seconds read :attr:`_DECIDE_CHANNELS` channels at a time, so that a
+        block cleaned in pieces makes the choices of the whole block.
+        """
+        f = blk.freq_hz
+        a, b = plan_stretch(blk, fs, _PLAN_S)
+        if (b - a) * f / fs < 8:
+            return None  # too few cycles to choose from: each range chooses for itself
+        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+        cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        cgrid = CycleGrid(cycles, fs, f, grid)
+        env = trapezoid(b - a, blk, a)[cgrid.row_centres]
+        slow = lowpass_taps(KEEP_HZ, f)
+        ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
+        decided = []
+        for c0 in range(0, n_ch, self._DECIDE_CHANNELS):
+            rows = list(range(c0, min(n_ch, c0 + self._DECIDE_CHANNELS)))
+            x = np.asarray(read(a, b, rows), dtype=np.float64)
+            wb = (~find_clipped(x)).astype(np.float64)
+            v, w = cgrid.gather(x, wb)
+            censor = self._censor(cgrid, w, wb)
+            for j, ch in enumerate(rows):
+                fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
+                cen = None if censor is None else censor[j]
+                g_row, vd, wd, made = self._demodulate(v[j], w[j], env, fast, f, cen, ramp_hz)
+                _, info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen)
+                made.update(info.pop("decided", {}))
+                decided.append(made)
+        return decided
+
+    @staticmethod
+    def _censor(grid, w, wb):
+        """Bins interpolated along the cycle (phases lost in some row within the filling window), or None.
+
+        A phase lost (clipped) in some row is interpolated along the cycle in every row within
+        the filling window, and reported as lost too (see fill_rows); bins outside the range
+        (first and last partial cycles) are not lost.
+        """
+        if not np.any(wb == 0):
+            return None
+        lost_bins = (w == 0) & grid.occupied()[None]
+        return ndimage.maximum_filter1d(lost_bins, 2 * _FILL_ROWS + 1, axis=1, mode="nearest")
+
     def _block(self, xb, wb, u, fs, blk, offset):
-        ref, dac, unlocked, response = self._block_plan(xb, blk, fs, offset)
+        ref, dac, unlocked, response, decided = self._block_plan(xb, blk, fs, offset)
         f = blk.freq_hz
         grid = CycleGrid(u, fs, f, dac)
         env = trapezoid(xb.shape[1], blk, offset)[grid.row_centres]
@@ -415,13 +523,7 @@ class RowModelEstimator(CycleEstimator):
         slow = lowpass_taps(KEEP_HZ, f)
         ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
         v, w = grid.gather(xb, wb)
-        censor = None
-        if np.any(wb == 0):
-            # a phase lost (clipped) in some row is interpolated along the cycle in every row
-            # within the filling window, and reported as lost too (see fill_rows); bins outside
-            # the range (first and last partial cycles) are not lost
-            lost_bins = (w == 0) & grid.occupied()[None]
-            censor = ndimage.maximum_filter1d(lost_bins, 2 * _FILL_ROWS + 1, axis=1, mode="nearest")
+        censor = self._censor(grid, w, wb)
         n_out = 0
         passes = 2 if self.robust else 1
         for it in range(passes):
@@ -430,12 +532,14 @@ class RowModelEstimator(CycleEstimator):
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
-                g_row, vd, wd = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz)
-                rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen)
+                dec = None if decided is None else decided[ch]
+                g_row, vd, wd, _ = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz, dec)
+                rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen, decided=dec)
+                info.pop("decided", None)
                 chosen.append(info)
             art = grid.scatter(rows, xb)
             if it < passes - 1:
-                w_out, n_out = spike_outliers(xb, art, wb, fs, u, 30, self.outlier_z)
+                w_out, n_out = spike_outliers(xb, art, wb, fs, u, _OUTLIER_ROWS, self.outlier_z)
                 v, w = grid.gather(xb, w_out)
         report = dict(freq_hz=f, bins_per_cycle=grid.n_bins,
                       dac_ticks_per_cycle=None if dac is None else dac.ticks_per_cycle,
@@ -448,7 +552,7 @@ class RowModelEstimator(CycleEstimator):
             report["censored_samples"] = int(lost.sum())
         return art, report, lost
 
-    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz):
+    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz, decided=None):
         """The envelope of the rows as the data show it, and the rows rescaled to their centres.
 
         The strongest harmonic's amplitude (the fundamental, normally),
@@ -461,30 +565,49 @@ class RowModelEstimator(CycleEstimator):
         Reading back interpolates between row centres, which restores the
         change. Bins where the envelope is below 2 % (margins, ramp feet)
         are left out.
+
+        Which harmonic leads, the plateau level of its sequences and of its
+        amplitude come from ``decided`` (made by :meth:`_decide` on the
+        block's plateau) when given, else from these rows; the fourth value
+        returned holds them.
         """
         n_rows, n_bins = v.shape
         filled = fill_rows(v, w, env, _FILL_ROWS, censor)
         filled = filled - filled.mean(axis=1, keepdims=True)
         plateau = env > 0.99
-        k = np.arange(1, n_bins // 2 + 1)
         coef = np.fft.rfft(filled, axis=1)[:, 1:]
-        power = np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)
-        lead = coef[:, int(np.argmax(power))] if k.size else np.ones(n_rows)
-        pair = filter_sequences(np.stack([lead.real, lead.imag]), taps, rate, env, ramp_hz)
+        if decided is not None:
+            h, scale, level = decided["lead"], decided["lead_scale"], decided["level"]
+        elif coef.shape[1]:
+            h = int(np.argmax(np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)))
+        else:
+            h = None
+        lead = coef[:, h] if h is not None else np.ones(n_rows)
+        seq = np.stack([lead.real, lead.imag])
+        if decided is None:
+            scale = plateau_level(seq, env)
+        pair = filter_sequences(seq, taps, rate, env, ramp_hz, scale=scale)
         mag = np.hypot(pair[0], pair[1])
-        level = np.median(mag[plateau]) if plateau.any() else max(float(mag.max()), 1e-300)
+        if decided is None:
+            level = float(np.median(mag[plateau])) if plateau.any() else max(float(mag.max()), 1e-300)
         g_row = np.where(env < _FOOT, env, mag / max(level, 1e-300))
         centres = np.arange(n_rows) + 0.5
         at_bins = np.arange(n_rows)[:, None] + (np.arange(n_bins)[None, :] + 0.5) / n_bins
         g_bin = np.interp(at_bins.ravel(), centres, g_row).reshape(n_rows, n_bins)
         ok = g_bin >= _FOOT
         vd = np.where(ok, v * g_row[:, None] / np.where(ok, g_bin, 1.0), 0.0)
-        return g_row, vd, w * ok
+        return g_row, vd, w * ok, dict(lead=h, lead_scale=scale, level=level)
 
     def context_seconds(self, freq_hz: float) -> float:
-        """Context (s) an output sample needs on each side: the row filters' reach, per pass."""
+        """Context (s) an output sample needs on each side.
+
+        Per pass: the row filters' reach, the lost phases' censoring and the
+        filling (:data:`_FILL_ROWS` rows each) and the row interpolation;
+        between passes, the outlier threshold's stretch (:data:`_OUTLIER_ROWS` rows).
+        """
         passes = 2 if self.robust else 1
-        return passes * (HALF_S + 2.0 / freq_hz) + self.margin_cycles / freq_hz
+        per_pass = HALF_S + (2 * _FILL_ROWS + 2) / freq_hz
+        return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

@@ -113,7 +113,8 @@ class CyclePCA(RowModelEstimator):
         if not self.keep_factor >= 0:
             raise ValueError(f"keep_factor must be >= 0, got {self.keep_factor!r}")
 
-    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None):
+    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None, decided=None):
+        # the mean cycle, the principal shapes and which are kept come from the rows of each range
         n_rows, n_bins = v.shape
         rows = fill_rows(v, w, env, censor=censor)
         rows = rows - rows.mean(axis=1, keepdims=True)

@@ -26,7 +26,10 @@ follows exceeds the extra noise it lets through (both measured: noise from
 consecutive-cycle differences, modulation from the difference between the
 two filtered sequences), and the harmonic is kept at all only when its
 fitted power stands well above the noise it would add. The number of
-harmonics therefore follows the data; ``n_harmonics`` caps it. Ramps are
+harmonics therefore follows the data; ``n_harmonics`` caps it. These
+choices, and the sequences' plateau levels, are made once per block on
+the middle of its plateau (up to 20 s), so a block cleaned in pieces gives
+the whole block's result. Ramps are
 followed exactly through the block envelope (see
 :func:`artifactclean.modulation.filter_sequences`).
 
@@ -48,7 +51,7 @@ from __future__ import annotations
 import numpy as np
 
 from .cycles import RowModelEstimator, fill_rows, noise_of_sequences
-from ..modulation import filter_sequences
+from ..modulation import filter_sequences, plateau_level
 
 __all__ = ["HarmonicRegression"]
 
@@ -103,25 +106,42 @@ class HarmonicRegression(RowModelEstimator):
         if not self.keep_factor > 0:
             raise ValueError(f"keep_factor must be positive, got {self.keep_factor!r}")
 
-    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None):
+    def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None, decided=None):
         n_rows, n_bins = v.shape
         rows = fill_rows(v, w, env, censor=censor)
         # a cycle's own mean is the slow LFP under it, not artifact
         coef = np.fft.rfft(rows - rows.mean(axis=1, keepdims=True), axis=1)[:, 1:]
         n_h = coef.shape[1] if self.n_harmonics is None else min(int(self.n_harmonics), coef.shape[1])
         coef = coef[:, :n_h]
+        seq = np.concatenate([coef.real.T, coef.imag.T])
+        # the plateau levels and the choices below are the block's (see RowModelEstimator._decide)
+        scale = plateau_level(seq, env) if decided is None else decided["scale"]
+        # env is the envelope of the rows as the data show it (see RowModelEstimator._demodulate)
+        fast = filter_sequences(seq, taps_fast, rate, env, scale=scale)
+        slow = filter_sequences(seq, taps_slow, rate, env, scale=scale)
+        fast = fast[:n_h] + 1j * fast[n_h:]
+        slow = slow[:n_h] + 1j * slow[n_h:]
+        if decided is None:
+            # the Nyquist harmonic of an even grid is real: its noise follows the real rule
+            real_last = n_bins % 2 == 0 and n_h == n_bins // 2
+            use_fast, keep = self._choose(coef, env, fast, slow, taps_fast, taps_slow, real_last)
+        else:
+            use_fast, keep = decided["use_fast"], decided["keep"]
+        est = np.where(use_fast[:, None], fast, slow)
+        full = np.zeros((n_rows, n_bins // 2 + 1), dtype=complex)
+        full[:, 1:n_h + 1] = (est * keep[:, None]).T
+        out = np.fft.irfft(full, n=n_bins, axis=1)
+        return out, dict(harmonics_kept=int(keep.sum()), harmonics_tracked=int((keep & use_fast).sum()),
+                         decided=dict(scale=scale, use_fast=use_fast, keep=keep))
+
+    def _choose(self, coef, env, fast, slow, taps_fast, taps_slow, real_last):
+        """Which harmonics are tracked fast, and which are kept at all (both bool, one per harmonic)."""
+        n_rows, n_h = coef.shape
         plateau = np.abs(env - 1.0) < 0.1
         rows_used = plateau if plateau.sum() > 8 else None
         sigma2 = noise_of_sequences(coef, rows_used)
-        if n_bins % 2 == 0 and n_h == n_bins // 2:
-            # the Nyquist harmonic of an even grid is real: its noise follows the real rule
+        if real_last:
             sigma2[-1] = noise_of_sequences(coef[:, -1:].real, rows_used)[0]
-        seq = np.concatenate([coef.real.T, coef.imag.T])
-        # env is the envelope of the rows as the data show it (see RowModelEstimator._demodulate)
-        fast = filter_sequences(seq, taps_fast, rate, env)
-        slow = filter_sequences(seq, taps_slow, rate, env)
-        fast = fast[:n_h] + 1j * fast[n_h:]
-        slow = slow[:n_h] + 1j * slow[n_h:]
         nu_f, nu_s = float(np.sum(taps_fast ** 2)), float(np.sum(taps_slow ** 2))
         nu_fs = float(np.sum((taps_fast - taps_slow) ** 2))
         # the fast filter follows modulation the slow one misses; worth it when that exceeds its noise
@@ -129,7 +149,4 @@ class HarmonicRegression(RowModelEstimator):
         est = np.where(use_fast[:, None], fast, slow)
         nu = np.where(use_fast, nu_f, nu_s) + 1.0 / max(plateau.sum(), 1)
         keep = np.sum(np.abs(est) ** 2, axis=1) > self.keep_factor * n_rows * sigma2 * nu
-        full = np.zeros((n_rows, n_bins // 2 + 1), dtype=complex)
-        full[:, 1:n_h + 1] = (est * keep[:, None]).T
-        out = np.fft.irfft(full, n=n_bins, axis=1)
-        return out, dict(harmonics_kept=int(keep.sum()), harmonics_tracked=int((keep & use_fast).sum()))
+        return use_fast, keep

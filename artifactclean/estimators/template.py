@@ -256,7 +256,7 @@ class TemplateSubtraction(CycleEstimator):
         n_ch, n = xb.shape
         f = blk.freq_hz
         k_half = self._window(f)
-        ref, grid, unlocked, response = self._block_plan(xb, blk, fs, offset)
+        ref, grid, unlocked, response, _ = self._block_plan(xb, blk, fs, offset)
         if grid is not None:
             n_bins = grid.ticks_per_cycle
             key = grid.tick_index(u)

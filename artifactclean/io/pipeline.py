@@ -331,7 +331,8 @@ def clean_recording(
 
             if hasattr(est, "prepare"):
                 # block-level decisions from the same stretch an array run would use, on all channels
-                est.prepare(lambda a, b: read_all(a, b, channels), model, fs)
+                est.prepare(lambda a, b, rows=None: read_all(a, b, channels if rows is None else [channels[i] for i in rows]),
+                            model, fs)
 
             def items():
                 pos = 0
