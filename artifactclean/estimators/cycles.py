@@ -217,7 +217,9 @@ class CycleEstimator(ArtifactEstimator):
         block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
         whole array is cleaned at once.
         """
-        self._plans = {block_key(b): self._plan(read, b, fs) for b in model.blocks}
+        ranges = {block_key(b): (s, e) for s, e, b in self.work_ranges(model, fs)}
+        self._plans = {block_key(b): self._plan(read, b, fs, ranges.get(block_key(b), (b.start, b.stop)))
+                       for b in model.blocks}
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
@@ -240,17 +242,18 @@ class CycleEstimator(ArtifactEstimator):
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
         return est, fit
 
-    def _plan(self, read, blk, fs):
+    def _plan(self, read, blk, fs, bounds):
         """The block's :class:`BlockPlan`.
 
         ``read(a, b, rows=None)`` gives samples ``a..b`` of the channels
-        ``rows`` (all by default). ``decided`` holds per-channel choices of
-        the estimator made on the plateau's middle (:meth:`_decide`), or None.
+        ``rows`` (all by default); ``bounds`` is the block's work range (see
+        :meth:`work_ranges`). ``decided`` holds per-channel choices of the
+        estimator (:meth:`_decide`), or None.
         """
         ref, grid, unlocked, response = self._stretch_plan(read, blk, fs)
-        return BlockPlan(ref, grid, unlocked, response, self._decide(read, blk, fs, grid, response))
+        return BlockPlan(ref, grid, unlocked, response, self._decide(read, blk, fs, grid, response, bounds))
 
-    def _decide(self, read, blk, fs, grid, response):
+    def _decide(self, read, blk, fs, grid, response, bounds):
         """Per-channel choices made once per block (None: the estimator makes none)."""
         return None
 
@@ -295,7 +298,7 @@ class CycleEstimator(ArtifactEstimator):
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
-            plan = self._plan(array_reader(xb, offset), blk, fs)
+            plan = self._plan(array_reader(xb, offset), blk, fs, (offset, offset + xb.shape[1]))
         ref, grid, unlocked, response, decided = plan
         if unlocked > _UNLOCKED_STEPS:
             warnings.warn(
@@ -466,40 +469,42 @@ class RowModelEstimator(CycleEstimator):
     #: channels whose plateau stretch is read at once for :meth:`_decide` (memory)
     _DECIDE_CHANNELS = 8
 
-    def _decide(self, read, blk, fs, grid, response):
-        """Choices every range of the block shares, per channel, from the middle of its plateau.
+    def _decide(self, read, blk, fs, grid, response, bounds):
+        """Choices every range of the block shares, per channel.
 
         The lead harmonic and its level (:meth:`_demodulate`) and what
-        ``_fit_rows`` chooses (which harmonics are kept and tracked fast, the
-        sequences' plateau levels) are made here once, on up to ``_PLAN_S``
-        seconds read :attr:`_DECIDE_CHANNELS` channels at a time, so that a
-        block cleaned in pieces makes the choices of the whole block.
+        ``_fit_rows`` chooses (regression: which harmonics are kept and
+        tracked fast, the sequences' plateau levels; PCA: the mean cycle and
+        the shapes) are made here once, on the block's whole work range
+        ``bounds`` (margins included) when the block is at most
+        :meth:`_decide_span` seconds long, else on that much of the middle of
+        its plateau (whose ramps are then not seen), read
+        :attr:`_DECIDE_CHANNELS` channels at a time, so that a block cleaned
+        in pieces makes the choices of the whole block.
         """
         f = blk.freq_hz
-        a, b = plan_stretch(blk, fs, _PLAN_S)
+        span = self._decide_span(f)
+        # a block that fits is read whole, ramps and margins included, as a range of it would be
+        a, b = bounds if blk.stop - blk.start <= span * fs else plan_stretch(blk, fs, span)
         if (b - a) * f / fs < 8:
             return None  # too few cycles to choose from: each range chooses for itself
         n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+        # channels read at once: _DECIDE_CHANNELS at _PLAN_S seconds, fewer for longer stretches
+        per_read = max(1, int(self._DECIDE_CHANNELS * _PLAN_S / span))
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        cgrid = CycleGrid(cycles, fs, f, grid)
-        env = trapezoid(b - a, blk, a)[cgrid.row_centres]
-        slow = lowpass_taps(KEEP_HZ, f)
-        ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
         decided = []
-        for c0 in range(0, n_ch, self._DECIDE_CHANNELS):
-            rows = list(range(c0, min(n_ch, c0 + self._DECIDE_CHANNELS)))
+        for c0 in range(0, n_ch, per_read):
+            rows = list(range(c0, min(n_ch, c0 + per_read)))
             x = np.asarray(read(a, b, rows), dtype=np.float64)
-            wb = (~find_clipped(x)).astype(np.float64)
-            v, w = cgrid.gather(x, wb)
-            censor = self._censor(cgrid, w, wb)
-            for j, ch in enumerate(rows):
-                fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
-                cen = None if censor is None else censor[j]
-                g_row, vd, wd, made = self._demodulate(v[j], w[j], env, fast, f, cen, ramp_hz)
-                _, info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen)
-                made.update(info.pop("decided", {}))
-                decided.append(made)
+            sub = None if response is None else GainResponse(response.freqs, response.response[rows], response.rate)
+            # the same passes as a range (outliers left out before the choices that count)
+            *_, chosen = self._passes(x, (~find_clipped(x)).astype(np.float64), cycles, fs, blk, a, grid, sub, None)
+            decided.extend(info["decided"] for info in chosen)
         return decided
+
+    def _decide_span(self, freq_hz: float) -> float:
+        """Seconds of the plateau's middle :meth:`_decide` reads."""
+        return _PLAN_S
 
     @staticmethod
     def _censor(grid, w, wb):
@@ -514,8 +519,13 @@ class RowModelEstimator(CycleEstimator):
         lost_bins = (w == 0) & grid.occupied()[None]
         return ndimage.maximum_filter1d(lost_bins, 2 * _FILL_ROWS + 1, axis=1, mode="nearest")
 
-    def _block(self, xb, wb, u, fs, blk, offset):
-        ref, dac, unlocked, response, decided = self._block_plan(xb, blk, fs, offset)
+    def _passes(self, xb, wb, u, fs, blk, offset, dac, response, decided):
+        """Model the rows of one range (with ``robust``, twice: outliers left out the second time).
+
+        Returns the artifact, the grid, the censored bins (or None), the
+        outliers left out and per channel a dict of what was chosen, whose
+        ``"decided"`` entry holds the choices :meth:`_decide` keeps.
+        """
         f = blk.freq_hz
         grid = CycleGrid(u, fs, f, dac)
         env = trapezoid(xb.shape[1], blk, offset)[grid.row_centres]
@@ -533,15 +543,22 @@ class RowModelEstimator(CycleEstimator):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
                 dec = None if decided is None else decided[ch]
-                g_row, vd, wd, _ = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz, dec)
+                g_row, vd, wd, made = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz, dec)
                 rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen, decided=dec)
-                info.pop("decided", None)
+                info["decided"] = {**made, **info.get("decided", {})}
                 chosen.append(info)
             art = grid.scatter(rows, xb)
             if it < passes - 1:
                 w_out, n_out = spike_outliers(xb, art, wb, fs, u, _OUTLIER_ROWS, self.outlier_z)
                 v, w = grid.gather(xb, w_out)
-        report = dict(freq_hz=f, bins_per_cycle=grid.n_bins,
+        return art, grid, censor, n_out, chosen
+
+    def _block(self, xb, wb, u, fs, blk, offset):
+        ref, dac, unlocked, response, decided = self._block_plan(xb, blk, fs, offset)
+        art, grid, censor, n_out, chosen = self._passes(xb, wb, u, fs, blk, offset, dac, response, decided)
+        for info in chosen:
+            del info["decided"]  # arrays: the report says what was chosen in words and counts
+        report = dict(freq_hz=blk.freq_hz, bins_per_cycle=grid.n_bins,
                       dac_ticks_per_cycle=None if dac is None else dac.ticks_per_cycle,
                       modulation_lines_hz=[] if response is None else response.passed_lines(ref),
                       outliers_left_out=int(n_out), unlocked_dac_steps_per_s=float(unlocked),

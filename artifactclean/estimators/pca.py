@@ -20,7 +20,10 @@ kept, up to ``n_components``; set ``n_components`` and ``keep_factor=0`` to
 keep a fixed number. The mean cycle keeps only the harmonics that stand out
 of its noise. The principal shapes are those of
 ``sklearn.decomposition.PCA`` (tested), computed from the smaller Gram
-matrix.
+matrix. The mean cycle, the shapes and which are kept are learned once per
+block, on the middle of its plateau (20 s, or 400 cycles where that is
+longer), so a block cleaned in pieces gives the whole block's result; only
+the scores are followed cycle by cycle.
 
 What it removes and what it cannot
 ----------------------------------
@@ -113,33 +116,45 @@ class CyclePCA(RowModelEstimator):
         if not self.keep_factor >= 0:
             raise ValueError(f"keep_factor must be >= 0, got {self.keep_factor!r}")
 
+    def _decide_span(self, freq_hz: float) -> float:
+        # the mean cycle is learned here: 400 cycles keep its noise at 0.05 of the data's
+        return max(super()._decide_span(freq_hz), 400.0 / freq_hz)
+
     def _fit_rows(self, v, w, env, taps_fast, taps_slow, rate, censor=None, decided=None):
-        # the mean cycle, the principal shapes and which are kept come from the rows of each range
-        n_rows, n_bins = v.shape
         rows = fill_rows(v, w, env, censor=censor)
         rows = rows - rows.mean(axis=1, keepdims=True)
+        # the shapes are the block's (see RowModelEstimator._decide), or learned from these rows
+        shapes = self._learn(rows, env, taps_fast, rate) if decided is None else decided
+        out = env[:, None] * shapes["mean_cycle"] + shapes["mean_dev"][None, :]
+        comps = shapes["components"]
+        if comps.shape[0]:
+            scores = (rows - env[:, None] * shapes["mean_cycle_raw"] - shapes["mean_dev"]) @ comps.T
+            out += filter_sequences(scores.T, taps_fast, rate).T @ comps
+        keep = ("mean_cycle_raw", "mean_cycle", "mean_dev", "components", "harmonics")
+        return out, dict(components_kept=int(comps.shape[0]), mean_cycle_harmonics=int(shapes["harmonics"]),
+                         decided={k: shapes[k] for k in keep})
+
+    def _learn(self, rows, env, taps_fast, rate):
+        """Mean cycle (raw, and its harmonics that stand out of the noise), mean deviation, kept shapes."""
+        n_rows, n_bins = rows.shape
         plateau = np.abs(env - 1.0) < 0.1
         use = plateau if plateau.sum() > 8 else np.ones(n_rows, dtype=bool)
-        mean_cycle = (env[:, None] * rows).sum(axis=0) / max(float(np.sum(env ** 2)), 1e-300)
-        dev = rows - env[:, None] * mean_cycle
+        mean_raw = (env[:, None] * rows).sum(axis=0) / max(float(np.sum(env ** 2)), 1e-300)
+        dev = rows - env[:, None] * mean_raw
         mean_dev, comps, _ = principal_shapes(dev[use], int(self.n_components))
         # the mean cycle and mean deviation keep the harmonics that stand out of their noise
         sigma2 = noise_of_sequences(np.fft.rfft(rows, axis=1), use)
         n_eff = float(np.sum(env[use] ** 2))
-        spec = np.fft.rfft(mean_cycle)
+        spec = np.fft.rfft(mean_raw)
         keep_h = np.abs(spec) ** 2 > self.keep_factor * sigma2 / max(n_eff, 1.0)
         keep_h[0] = False
         mean_cycle = np.fft.irfft(spec * keep_h, n=n_bins)
         mean_dev = np.fft.irfft(np.fft.rfft(mean_dev) * keep_h, n=n_bins)
-        out = env[:, None] * mean_cycle + mean_dev[None, :]
-        n_kept = 0
         if comps.shape[0]:
             scores = (dev - mean_dev) @ comps.T
             s2 = noise_of_sequences(scores, use)
             tracked = filter_sequences(scores.T, taps_fast, rate)
             nu = float(np.sum(taps_fast ** 2))
-            keep = np.sum(tracked ** 2, axis=1) > self.keep_factor * n_rows * s2 * nu
-            n_kept = int(keep.sum())
-            if n_kept:
-                out += tracked[keep].T @ comps[keep]
-        return out, dict(components_kept=n_kept, mean_cycle_harmonics=int(keep_h.sum()))
+            comps = comps[np.sum(tracked ** 2, axis=1) > self.keep_factor * n_rows * s2 * nu]
+        return dict(mean_cycle_raw=mean_raw, mean_cycle=mean_cycle, mean_dev=mean_dev, components=comps,
+                    harmonics=int(keep_h.sum()))
