@@ -498,7 +498,8 @@ class RowModelEstimator(CycleEstimator):
             x = np.asarray(read(a, b, rows), dtype=np.float64)
             sub = None if response is None else GainResponse(response.freqs, response.response[rows], response.rate)
             # the same passes as a range (outliers left out before the choices that count)
-            *_, chosen = self._passes(x, (~find_clipped(x)).astype(np.float64), cycles, fs, blk, a, grid, sub, None)
+            *_, chosen = self._passes(x, (~find_clipped(x)).astype(np.float64), cycles, fs, blk, a, grid, sub, None,
+                                      artifact=False)
             decided.extend(info["decided"] for info in chosen)
         return decided
 
@@ -519,11 +520,12 @@ class RowModelEstimator(CycleEstimator):
         lost_bins = (w == 0) & grid.occupied()[None]
         return ndimage.maximum_filter1d(lost_bins, 2 * _FILL_ROWS + 1, axis=1, mode="nearest")
 
-    def _passes(self, xb, wb, u, fs, blk, offset, dac, response, decided):
+    def _passes(self, xb, wb, u, fs, blk, offset, dac, response, decided, artifact=True):
         """Model the rows of one range (with ``robust``, twice: outliers left out the second time).
 
-        Returns the artifact, the grid, the censored bins (or None), the
-        outliers left out and per channel a dict of what was chosen, whose
+        Returns the artifact (None without ``artifact``: only the choices
+        are wanted), the grid, the censored bins (or None), the outliers
+        left out and per channel a dict of what was chosen, whose
         ``"decided"`` entry holds the choices :meth:`_decide` keeps.
         """
         f = blk.freq_hz
@@ -547,6 +549,8 @@ class RowModelEstimator(CycleEstimator):
                 rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen, decided=dec)
                 info["decided"] = {**made, **info.get("decided", {})}
                 chosen.append(info)
+            if it == passes - 1 and not artifact:
+                return None, grid, censor, n_out, chosen
             art = grid.scatter(rows, xb)
             if it < passes - 1:
                 w_out, n_out = spike_outliers(xb, art, wb, fs, u, _OUTLIER_ROWS, self.outlier_z)
