@@ -96,11 +96,11 @@ def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_
         hint = f" near {stim_freq} Hz" if stim_freq else ""
         warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
                       "frequency hint may be wrong, run `artifactclean survey` without it", stacklevel=3)
-    if hasattr(est, "prepare"):
-        est.prepare(array_reader(x_model), model, fs)
     groups = channel_groups(x.shape[0], workers)
     jobs = []
     with ThreadPoolExecutor(max_workers=len(groups)) as pool:
+        if hasattr(est, "prepare"):
+            est.prepare(array_reader(x_model), model, fs, mapper=pool.map)  # blocks planned side by side
         for g in groups:
             sub, fit = est.for_channels(g)
             kwargs = dict(fs=fs, stim_model=model, clip_level=subset_clip(clip_level, fit),

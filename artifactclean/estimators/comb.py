@@ -65,7 +65,7 @@ class NotchComb(ArtifactEstimator):
 
     _prepared_attrs = ("_freq",)
 
-    def prepare(self, read, model, fs: float) -> None:
+    def prepare(self, read, model, fs: float, mapper=map) -> None:
         """Take the notch frequency from the whole recording's main block (file pieces call this),
         so pieces without a block of their own are filtered like the rest."""
         main = model.main_block

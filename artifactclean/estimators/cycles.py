@@ -207,7 +207,7 @@ class CycleEstimator(ArtifactEstimator):
             report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))
         return art, report, extra
 
-    def prepare(self, read, model, fs: float) -> None:
+    def prepare(self, read, model, fs: float, mapper=map) -> None:
         """Decide, once per block, what must not depend on how a recording is cut.
 
         File pieces call this before cleaning a block piece by piece:
@@ -215,11 +215,13 @@ class CycleEstimator(ArtifactEstimator):
         ``rows`` (indices; all channels by default). The DAC grid
         (and the channel it is read from) comes from the middle of the
         block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
-        whole array is cleaned at once.
+        whole array is cleaned at once. ``mapper`` spreads the blocks over
+        workers (``ThreadPoolExecutor.map``; ``read`` must then be safe to
+        call from several threads).
         """
         ranges = {block_key(b): (s, e) for s, e, b in self.work_ranges(model, fs)}
-        self._plans = {block_key(b): self._plan(read, b, fs, ranges.get(block_key(b), (b.start, b.stop)))
-                       for b in model.blocks}
+        plans = mapper(lambda b: self._plan(read, b, fs, ranges.get(block_key(b), (b.start, b.stop))), model.blocks)
+        self._plans = {block_key(b): plan for b, plan in zip(model.blocks, plans)}
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False

@@ -331,8 +331,9 @@ def clean_recording(
 
             if hasattr(est, "prepare"):
                 # block-level decisions from the same stretch an array run would use, on all channels
+                # blocks planned on the worker threads (the reader is locked)
                 est.prepare(lambda a, b, rows=None: read_all(a, b, channels if rows is None else [channels[i] for i in rows]),
-                            model, fs)
+                            model, fs, mapper=map if pool is None else pool.map)
 
             def items():
                 pos = 0
