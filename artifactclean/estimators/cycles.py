@@ -220,8 +220,23 @@ class CycleEstimator(ArtifactEstimator):
         call from several threads).
         """
         ranges = {block_key(b): (s, e) for s, e, b in self.work_ranges(model, fs)}
-        plans = mapper(lambda b: self._plan(read, b, fs, ranges.get(block_key(b), (b.start, b.stop))), model.blocks)
-        self._plans = {block_key(b): plan for b, plan in zip(model.blocks, plans)}
+        blocks = list(model.blocks)
+        bounds = [ranges.get(block_key(b), (b.start, b.stop)) for b in blocks]
+        stretch = list(mapper(lambda b: self._stretch_plan(read, b, fs), blocks))
+        n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0] if blocks else 0
+        # the estimator's own choices, per block and group of channels, side by side
+        jobs = [(i, rows) for i, b in enumerate(blocks) for rows in self._decide_groups(b, fs, n_ch, bounds[i])]
+
+        def decide(job):
+            i, rows = job
+            _, grid, _, response = stretch[i]
+            return self._decide(read, blocks[i], fs, grid, response, bounds[i], rows)
+
+        parts = mapper(decide, jobs)
+        decided: dict[int, list] = {}
+        for (i, _), part in zip(jobs, parts):
+            decided.setdefault(i, []).extend(part)
+        self._plans = {block_key(b): BlockPlan(*stretch[i], decided.get(i)) for i, b in enumerate(blocks)}
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
@@ -253,11 +268,18 @@ class CycleEstimator(ArtifactEstimator):
         estimator (:meth:`_decide`), or None.
         """
         ref, grid, unlocked, response = self._stretch_plan(read, blk, fs)
-        return BlockPlan(ref, grid, unlocked, response, self._decide(read, blk, fs, grid, response, bounds))
+        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+        groups = self._decide_groups(blk, fs, n_ch, bounds)
+        decided = [d for rows in groups for d in self._decide(read, blk, fs, grid, response, bounds, rows)]
+        return BlockPlan(ref, grid, unlocked, response, decided if groups else None)
 
-    def _decide(self, read, blk, fs, grid, response, bounds):
-        """Per-channel choices made once per block (None: the estimator makes none)."""
-        return None
+    def _decide_groups(self, blk, fs, n_ch, bounds) -> list:
+        """Groups of channels (lists of indices) :meth:`_decide` is called on; none by default."""
+        return []
+
+    def _decide(self, read, blk, fs, grid, response, bounds, rows) -> list:
+        """Per-channel choices made once per block, for the channels ``rows`` (one dict each)."""
+        raise NotImplementedError
 
     def _stretch_plan(self, read, blk, fs):
         f = blk.freq_hz
@@ -471,39 +493,44 @@ class RowModelEstimator(CycleEstimator):
     #: channels whose plateau stretch is read at once for :meth:`_decide` (memory)
     _DECIDE_CHANNELS = 8
 
-    def _decide(self, read, blk, fs, grid, response, bounds):
-        """Choices every range of the block shares, per channel.
+    def _decide_stretch(self, blk, fs, bounds):
+        """Samples ``a, b`` :meth:`_decide` reads, or None when they hold too few cycles to choose from.
+
+        The block's whole work range ``bounds`` (margins and ramps included,
+        as a range of it sees them) when the block is at most
+        :meth:`_decide_span` seconds long, else that much of the middle of
+        its plateau (whose ramps are then not seen).
+        """
+        f = blk.freq_hz
+        span = self._decide_span(f)
+        a, b = bounds if blk.stop - blk.start <= span * fs else plan_stretch(blk, fs, span)
+        return None if (b - a) * f / fs < 8 else (a, b)
+
+    def _decide_groups(self, blk, fs, n_ch, bounds) -> list:
+        if self._decide_stretch(blk, fs, bounds) is None:
+            return []  # each range chooses for itself
+        # channels read at once: _DECIDE_CHANNELS at _PLAN_S seconds, fewer for longer stretches
+        per_read = max(1, int(self._DECIDE_CHANNELS * _PLAN_S / self._decide_span(blk.freq_hz)))
+        return [list(range(c0, min(n_ch, c0 + per_read))) for c0 in range(0, n_ch, per_read)]
+
+    def _decide(self, read, blk, fs, grid, response, bounds, rows) -> list:
+        """Choices every range of the block shares, for the channels ``rows``.
 
         The lead harmonic and its level (:meth:`_demodulate`) and what
         ``_fit_rows`` chooses (regression: which harmonics are kept and
         tracked fast, the sequences' plateau levels; PCA: the mean cycle and
-        the shapes) are made here once, on the block's whole work range
-        ``bounds`` (margins included) when the block is at most
-        :meth:`_decide_span` seconds long, else on that much of the middle of
-        its plateau (whose ramps are then not seen), read
-        :attr:`_DECIDE_CHANNELS` channels at a time, so that a block cleaned
-        in pieces makes the choices of the whole block.
+        the shapes) are made once per block on :meth:`_decide_stretch`, so
+        that a block cleaned in pieces makes the choices of the whole block.
         """
         f = blk.freq_hz
-        span = self._decide_span(f)
-        # a block that fits is read whole, ramps and margins included, as a range of it would be
-        a, b = bounds if blk.stop - blk.start <= span * fs else plan_stretch(blk, fs, span)
-        if (b - a) * f / fs < 8:
-            return None  # too few cycles to choose from: each range chooses for itself
-        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
-        # channels read at once: _DECIDE_CHANNELS at _PLAN_S seconds, fewer for longer stretches
-        per_read = max(1, int(self._DECIDE_CHANNELS * _PLAN_S / span))
+        a, b = self._decide_stretch(blk, fs, bounds)
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        decided = []
-        for c0 in range(0, n_ch, per_read):
-            rows = list(range(c0, min(n_ch, c0 + per_read)))
-            x = np.asarray(read(a, b, rows), dtype=np.float64)
-            sub = None if response is None else GainResponse(response.freqs, response.response[rows], response.rate)
-            # the same passes as a range (outliers left out before the choices that count)
-            *_, chosen = self._passes(x, (~find_clipped(x)).astype(np.float64), cycles, fs, blk, a, grid, sub, None,
-                                      artifact=False)
-            decided.extend(info["decided"] for info in chosen)
-        return decided
+        x = np.asarray(read(a, b, rows), dtype=np.float64)
+        sub = None if response is None else GainResponse(response.freqs, response.response[rows], response.rate)
+        # the same passes as a range (outliers left out before the choices that count)
+        *_, chosen = self._passes(x, (~find_clipped(x)).astype(np.float64), cycles, fs, blk, a, grid, sub, None,
+                                  artifact=False)
+        return [info["decided"] for info in chosen]
 
     def _decide_span(self, freq_hz: float) -> float:
         """Seconds of the plateau's middle :meth:`_decide` reads."""
