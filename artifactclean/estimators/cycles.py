@@ -22,12 +22,12 @@ from scipy import ndimage, signal
 from ..clipping import find_clipped
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, \
     plateau_level, ramp_cutoff, segment_gain, segments_per_cycle
-from ..staircase import find_dac_grid, step_rate
+from ..staircase import DacGrid, find_dac_grid, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
 
-__all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows", "noise_of_sequences",
-           "settle_edges", "spike_outliers", "trapezoid"]
+__all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
+           "noise_of_sequences", "plan_stretch", "settle_edges", "spike_outliers", "trapezoid"]
 
 #: seconds of plateau the DAC grid is searched in
 _PLAN_S = 20.0
@@ -60,7 +60,7 @@ class BlockPlan(NamedTuple):
     """
 
     ref: int
-    grid: object
+    grid: DacGrid | None
     unlocked: float
     response: GainResponse | None
     decided: list | None
@@ -222,8 +222,15 @@ class CycleEstimator(ArtifactEstimator):
         ranges = {block_key(b): (s, e) for s, e, b in self.work_ranges(model, fs)}
         blocks = list(model.blocks)
         bounds = [ranges.get(block_key(b), (b.start, b.stop)) for b in blocks]
+        plans = self._make_plans(read, blocks, bounds, fs, mapper)
+        self._plans = {block_key(b): plan for b, plan in zip(blocks, plans)}
+
+    def _make_plans(self, read, blocks, bounds, fs, mapper=map) -> list:
+        """:class:`BlockPlan` of each block (``bounds``: its work range), the work spread by ``mapper``."""
+        if not blocks:
+            return []
         stretch = list(mapper(lambda b: self._stretch_plan(read, b, fs), blocks))
-        n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0] if blocks else 0
+        n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0]
         # the estimator's own choices, per block and group of channels, side by side
         jobs = [(i, rows) for i, b in enumerate(blocks) for rows in self._decide_groups(b, fs, n_ch, bounds[i])]
 
@@ -232,11 +239,10 @@ class CycleEstimator(ArtifactEstimator):
             _, grid, _, response = stretch[i]
             return self._decide(read, blocks[i], fs, grid, response, bounds[i], rows)
 
-        parts = mapper(decide, jobs)
         decided: dict[int, list] = {}
-        for (i, _), part in zip(jobs, parts):
+        for (i, _), part in zip(jobs, mapper(decide, jobs)):
             decided.setdefault(i, []).extend(part)
-        self._plans = {block_key(b): BlockPlan(*stretch[i], decided.get(i)) for i, b in enumerate(blocks)}
+        return [BlockPlan(*stretch[i], decided.get(i)) for i in range(len(blocks))]
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
@@ -259,20 +265,6 @@ class CycleEstimator(ArtifactEstimator):
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
         return est, fit
 
-    def _plan(self, read, blk, fs, bounds):
-        """The block's :class:`BlockPlan`.
-
-        ``read(a, b, rows=None)`` gives samples ``a..b`` of the channels
-        ``rows`` (all by default); ``bounds`` is the block's work range (see
-        :meth:`work_ranges`). ``decided`` holds per-channel choices of the
-        estimator (:meth:`_decide`), or None.
-        """
-        ref, grid, unlocked, response = self._stretch_plan(read, blk, fs)
-        n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
-        groups = self._decide_groups(blk, fs, n_ch, bounds)
-        decided = [d for rows in groups for d in self._decide(read, blk, fs, grid, response, bounds, rows)]
-        return BlockPlan(ref, grid, unlocked, response, decided if groups else None)
-
     def _decide_groups(self, blk, fs, n_ch, bounds) -> list:
         """Groups of channels (lists of indices) :meth:`_decide` is called on; none by default."""
         return []
@@ -282,6 +274,7 @@ class CycleEstimator(ArtifactEstimator):
         raise NotImplementedError
 
     def _stretch_plan(self, read, blk, fs):
+        """Reference channel, DAC grid, unlocked step rate and gain response, from the plateau's middle."""
         f = blk.freq_hz
         n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
         # at most _PLAN_S s, less for many channels (memory), never under a second
@@ -322,7 +315,7 @@ class CycleEstimator(ArtifactEstimator):
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
-            plan = self._plan(array_reader(xb, offset), blk, fs, (offset, offset + xb.shape[1]))
+            plan, = self._make_plans(array_reader(xb, offset), [blk], [(offset, offset + xb.shape[1])], fs)
         ref, grid, unlocked, response, decided = plan
         if unlocked > _UNLOCKED_STEPS:
             warnings.warn(
@@ -617,9 +610,8 @@ class RowModelEstimator(CycleEstimator):
         are left out.
 
         Which harmonic leads, the plateau level of its sequences and of its
-        amplitude come from ``decided`` (made by :meth:`_decide` on the
-        block's plateau) when given, else from these rows; the fourth value
-        returned holds them.
+        amplitude come from ``decided`` (the block's, made by :meth:`_decide`)
+        when given, else from these rows; the fourth value returned holds them.
         """
         n_rows, n_bins = v.shape
         filled = fill_rows(v, w, env, _FILL_ROWS, censor)

@@ -21,9 +21,10 @@ keep a fixed number. The mean cycle keeps only the harmonics that stand out
 of its noise. The principal shapes are those of
 ``sklearn.decomposition.PCA`` (tested), computed from the smaller Gram
 matrix. The mean cycle, the shapes and which are kept are learned once per
-block, on the middle of its plateau (20 s, or 400 cycles where that is
-longer), so a block cleaned in pieces gives the whole block's result; only
-the scores are followed cycle by cycle.
+block: on the whole block up to 20 s (or 400 cycles, where that is longer),
+else on that much of the middle of its plateau, so a block cleaned in
+pieces gives the whole block's result; only the scores are followed cycle
+by cycle.
 
 What it removes and what it cannot
 ----------------------------------

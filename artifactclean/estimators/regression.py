@@ -27,9 +27,9 @@ consecutive-cycle differences, modulation from the difference between the
 two filtered sequences), and the harmonic is kept at all only when its
 fitted power stands well above the noise it would add. The number of
 harmonics therefore follows the data; ``n_harmonics`` caps it. These
-choices, and the sequences' plateau levels, are made once per block on
-the middle of its plateau (up to 20 s), so a block cleaned in pieces gives
-the whole block's result. Ramps are
+choices, and the sequences' plateau levels, are made once per block, on
+the whole block up to 20 s long and on the middle 20 s of a longer one's
+plateau, so a block cleaned in pieces gives the whole block's result. Ramps are
 followed exactly through the block envelope (see
 :func:`artifactclean.modulation.filter_sequences`).
 
