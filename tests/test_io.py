@@ -270,3 +270,20 @@ def test_monitor_channel_in_its_own_stream(tmp_path):
     assert side["channel_names"] == ["CH1", "CH2", "CH3", "CH4"]
     r = cli("survey", root, "--stim-channel", "ADC9", check=False)
     assert r.returncode == 2 and "ADC9" in r.stderr
+
+
+def test_block_planning_reports_progress_before_cleaning(tmp_path):
+    """A row estimator's per-block choices run its passes on up to 20 s of every channel before any
+    piece is cleaned: the pipeline says so ("planning"), then cleans."""
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import clean_recording
+
+    rec = simulate_recording(6.0, artifact=ArtifactSpec(freq_hz=20.0), seed=4)
+    calls = []
+    clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "y.dat", method="regression", workers=2,
+                    progress=lambda done, total, stage: calls.append((stage, done, total)))
+    stages = [c[0] for c in calls]
+    assert "planning" in stages and "cleaning" in stages
+    assert stages.index("planning") < stages.index("cleaning")
+    done = [(d, t) for s, d, t in calls if s == "planning"]
+    assert any(d == t for d, t in done)  # every planning job finished

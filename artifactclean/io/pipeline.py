@@ -330,10 +330,22 @@ def clean_recording(
                     emit(x, lost, a)
 
             if hasattr(est, "prepare"):
-                # block-level decisions from the same stretch an array run would use, on all channels
-                # blocks planned on the worker threads (the reader is locked)
+                # block-level decisions from the same stretch an array run would use, on all channels,
+                # planned on the worker threads (the reader is locked); a row estimator's choices run
+                # its passes over up to 20 s of every channel, so they report progress too
+                base_map = map if pool is None else pool.map
+
+                def planning_map(fn, items):
+                    items = list(items)
+                    out = []
+                    for i, res in enumerate(base_map(fn, items)):
+                        out.append(res)
+                        if progress:
+                            progress(i + 1, len(items), "planning")
+                    return out
+
                 est.prepare(lambda a, b, rows=None: read_all(a, b, channels if rows is None else [channels[i] for i in rows]),
-                            model, fs, mapper=map if pool is None else pool.map)
+                            model, fs, mapper=planning_map)
 
             def items():
                 pos = 0
