@@ -9,6 +9,7 @@ pass reads the recording once instead of once per numpy operation.
 from __future__ import annotations
 
 import numpy as np
+from scipy import ndimage, signal
 
 try:  # numba installs from wheels on the common platforms; the library runs without it
     import numba
@@ -105,16 +106,12 @@ def segment_stats_np(x, w, t, seg_starts):
 
 def highpass_residual_np(sos, x, t, gain, w):
     """``|sosfilt(sos, (x - gain t) * (w > 0))|`` along the last axis (``gain`` None means 1)."""
-    from scipy import signal
-
     r = x - (t if gain is None else gain * t)
     return np.abs(signal.sosfilt(sos, r * (w > 0), axis=-1))
 
 
 def widen_flags_np(bad, half):
     """Flags widened by ``half`` samples on either side, along the last axis."""
-    from scipy import ndimage
-
     return ndimage.maximum_filter1d(bad, 2 * half + 1, axis=-1, mode="constant", cval=False)
 
 
