@@ -26,11 +26,22 @@ from scipy import ndimage, signal
 
 from .estimators._kernels import gain_sums
 
-__all__ = ["GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "plateau_level", "ramp_cutoff",
-           "segment_gain", "segments_per_cycle", "smooth_gain"]
+__all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "plateau_level", "ramp_cutoff",
+           "segment_gain", "segments_per_cycle", "smooth_gain", "to_middles"]
 
-#: below this (Hz) the gain always passes: respiration (~0.2-0.5 Hz) and the filter's transition
+#: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
+#: filter's transition
 KEEP_HZ = 1.0
+#: below this (Hz) the gain filter always passes: respiration and the heartbeat's fundamental and
+#: first harmonics in people (a resting heart beats at about 1-1.7 Hz, common practice). There the
+#: lines crowd the median that judges them (respiration, heartbeat and its harmonics fill most of
+#: a 2 Hz window): a 1.2 Hz heartbeat's line passed at 0.65 and left sidebands at 8 times the
+#: neural power within 3 Hz of a 20 Hz fundamental. The neural signal the gain follows here lies
+#: within 2.75 Hz of each harmonic, plus the filter's transition (about 0.5 Hz, :data:`HALF_S`):
+#: inside the +-3 Hz bands. At 3 Hz, the transition leaked the neural signal on one side of a
+#: harmonic into the other side (10 Hz: 6.75 Hz into 13.25 Hz, LFP error away from the bands
+#: 0.02 -> 0.11)
+FOLLOW_HZ = 2.75
 #: half-length (s) of the gain filter; its resolution is about 1 / this
 HALF_S = 2.0
 #: the most the gain filter restores of what segment means and interpolation take off
@@ -87,9 +98,9 @@ class GainResponse:
         return taps / taps.sum()
 
     def passed_lines(self, ch: int = 0) -> list[float]:
-        """Frequencies (Hz) above :data:`KEEP_HZ` where the response passes more than half."""
+        """Frequencies (Hz) above :data:`FOLLOW_HZ` where the response passes more than half."""
         f, r = self.freqs, self.response[ch]
-        on = (r > 0.5) & (f > KEEP_HZ)
+        on = (r > 0.5) & (f > FOLLOW_HZ)
         starts = np.flatnonzero(on & ~np.concatenate(([False], on[:-1])))
         return [float(f[i]) for i in starts]
 
@@ -130,7 +141,8 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
     """
     n_bins = max(8, int(round(fs / f)))
     b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
-    seg = np.floor(u * per_cycle).astype(np.int64)
+    useg = u * per_cycle
+    seg = np.floor(useg).astype(np.int64)
     seg -= seg[0]
     n_seg = int(seg[-1]) + 1
     g = np.ones((x.shape[0], n_seg))
@@ -138,16 +150,45 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
     w = np.ascontiguousarray(w, dtype=np.float64)
     # with an offset per segment: the slow LFP is an offset over part of a cycle, and
     # the part of a cycle a segment covers has a non-zero mean
-    sw, sx, st, sxt, stt = gain_sums(x, w, b, seg, n_bins, n_seg, compiled=compiled)
+    pos = useg - np.floor(useg[0])  # in segments from the first segment's start
+    sw, sx, st, sxt, stt, spt, sptt = gain_sums(x, w, b, seg, n_bins, n_seg, pos, compiled=compiled)
     sw = np.maximum(sw, 1e-12)
     mx, mt = sx / sw, st / sw
     num = sxt - sw * mx * mt
     den = stt - sw * mt * mt
+    with np.errstate(invalid="ignore", divide="ignore"):
+        # where each segment's gain stands (see segment_stats), in segments from its middle
+        shift = (sptt - mt * spt) / den - 0.5 - np.arange(n_seg)
     for ch in range(x.shape[0]):
         ok = den[ch] > 0.1 * np.median(den[ch])
         if ok.sum() >= 2:
             g[ch] = np.interp(np.arange(n_seg), np.flatnonzero(ok), num[ch, ok] / den[ch, ok])
-    return g, f * per_cycle
+    return to_middles(g, np.where(den > 0.1 * np.median(den, axis=1, keepdims=True), shift, 0.0), per_cycle), f * per_cycle
+
+
+def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int) -> np.ndarray:
+    """Gains fitted per segment, moved from where they stand to the segments' middles.
+
+    A gain fitted over part of a cycle stands for the template-weighted
+    centre of that part (see :func:`artifactclean.estimators._kernels.segment_stats`),
+    ``shift`` segments from its middle; the shifts repeat every cycle, so
+    gains left at the middles carry that pattern times the gain's slope
+    (lines at the heart rate +- multiples of ``f``, which the response would
+    pass and the fundamental brings back down to the heart rate). Each gain
+    is corrected to first order by the slope of the gains' mean over a
+    cycle (which has no such pattern); shifts are bounded to 3 segments.
+
+    Parameters
+    ----------
+    g : ndarray, shape (n_channels, n_segments)
+    shift : ndarray, same shape
+        Where each gain stands, in segments from its segment's middle (0 where unknown).
+    per_cycle : int
+        Segments per cycle.
+    """
+    smooth = ndimage.uniform_filter1d(g, per_cycle, axis=-1, mode="nearest") if per_cycle > 1 else g
+    slope = np.gradient(smooth, axis=-1) if g.shape[-1] > 1 else np.zeros_like(g)
+    return g - slope * np.clip(np.nan_to_num(shift), -3.0, 3.0)
 
 
 def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_hz: float = 2.0,
@@ -160,7 +201,7 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     spectral-subtraction gain ``1 - a floor / P`` clipped to [0, 1], with an
     over-subtraction factor ``a`` (Berouti, Schwartz & Makhoul 1979, ICASSP,
     from memory) so that the floor's own fluctuations do not pass; 1 below
-    :data:`KEEP_HZ` and 0 above ``max_hz``.
+    :data:`FOLLOW_HZ` (or ``max_hz`` if lower) and 0 above ``max_hz``.
 
     Parameters
     ----------
@@ -190,7 +231,7 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     # a line wanders (heart rate is not constant) and the FIR smooths the response over about
     # 1 / HALF_S Hz: widen each passed line by a bin on either side so its centre passes whole
     resp = ndimage.maximum_filter1d(resp, 3, axis=-1)
-    resp[:, freqs <= KEEP_HZ] = 1.0
+    resp[:, freqs <= min(FOLLOW_HZ, max_hz)] = 1.0
     resp[:, freqs > max_hz] = 0.0
     return GainResponse(freqs, resp, rate)
 

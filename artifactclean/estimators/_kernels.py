@@ -89,10 +89,16 @@ def group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
 
 
 def segment_stats_np(x, w, t, seg_starts):
-    """Per gain segment, about each segment's own (weighted) means: sum w x t, sum w t^2, sum t^2.
+    """Per gain segment, about each segment's own (weighted) means: sum w x t, sum w t^2, sum t^2, and where.
 
     Centring makes the fitted gain blind to an offset over the segment (the
     slow LFP over part of a cycle, where the template's mean is not zero).
+    The fourth output is the sample (from the segment's start) a gain
+    fitted this way stands for: a gain ``g(i)`` linear over the segment
+    gives ``num / den = g(centre)`` with ``centre = sum w i t (t - mean t) /
+    den``, the template-weighted centre, which is not the segment's middle
+    and can lie outside the segment where the weights change sign (0 where
+    ``den`` is 0).
     """
     red = lambda v: np.add.reduceat(v, seg_starts, axis=-1)  # noqa: E731
     sw = np.maximum(red(w), 1e-300)
@@ -101,7 +107,10 @@ def segment_stats_np(x, w, t, seg_starts):
     den = red(w * t * t) - st * st / sw
     n = np.diff(np.append(seg_starts, x.shape[-1]))
     full = red(t * t) - red(t) ** 2 / n
-    return num, den, full
+    pos = np.arange(x.shape[-1]) - np.repeat(seg_starts, n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = np.where(den > 0, (red(w * pos * t * t) - st / sw * red(w * pos * t)) / np.where(den > 0, den, 1.0), 0.0)
+    return num, den, full, centre
 
 
 def highpass_residual_np(sos, x, t, gain, w):
@@ -184,7 +193,7 @@ def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
             out[ch, i] = (1 - beta[i]) * lo + beta[i] * hi
 
 
-def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
+def _segment_stats_loop(x, w, t, seg_starts, num, den, full, centre):
     n_ch, n = x.shape
     n_seg = seg_starts.size
     for ch in range(n_ch):
@@ -198,6 +207,8 @@ def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
             stt = 0.0
             su = 0.0
             sf = 0.0
+            spt = 0.0
+            sptt = 0.0
             for i in range(a, b):
                 tt = t[ch, i]
                 wi = w[ch, i]
@@ -208,10 +219,14 @@ def _segment_stats_loop(x, w, t, seg_starts, num, den, full):
                 stt += wi * tt * tt
                 su += tt
                 sf += tt * tt
+                spt += wi * (i - a) * tt
+                sptt += wi * (i - a) * tt * tt
             sw = max(sw, 1e-300)
             num[ch, k] = sxt - sx * st / sw
-            den[ch, k] = stt - st * st / sw
+            d = stt - st * st / sw
+            den[ch, k] = d
             full[ch, k] = sf - su * su / (b - a)
+            centre[ch, k] = (sptt - st / sw * spt) / d if d > 0 else 0.0
 
 
 def _gain_bin_sums_loop(x, w, b, cnt, sbx):
@@ -222,7 +237,7 @@ def _gain_bin_sums_loop(x, w, b, cnt, sbx):
             sbx[ch, b[i]] += w[ch, i] * x[ch, i]
 
 
-def _gain_seg_sums_loop(x, w, b, seg, tmpl, sw, sx, st, sxt, stt):
+def _gain_seg_sums_loop(x, w, b, seg, tmpl, pos, sw, sx, st, sxt, stt, spt, sptt):
     for ch in range(x.shape[0]):
         for i in range(x.shape[1]):
             k = seg[i]
@@ -233,6 +248,8 @@ def _gain_seg_sums_loop(x, w, b, seg, tmpl, sw, sx, st, sxt, stt):
             st[ch, k] += wi * t
             sxt[ch, k] += wi * x[ch, i] * t
             stt[ch, k] += wi * t * t
+            spt[ch, k] += wi * pos[i] * t
+            sptt[ch, k] += wi * pos[i] * t * t
 
 
 def _highpass_residual_loop(sos, x, t, gain, use_gain, w, out):
@@ -284,14 +301,15 @@ _gain_bin_sums_c = _jit(_gain_bin_sums_loop)
 _gain_seg_sums_c = _jit(_gain_seg_sums_loop)
 
 
-def gain_sums(x, w, b, seg, n_bins, n_seg, *, compiled: bool = True):
+def gain_sums(x, w, b, seg, n_bins, n_seg, pos, *, compiled: bool = True):
     """Sums behind :func:`artifactclean.modulation.segment_gain`, for all channels.
 
-    Returns ``sw, sx, st, sxt, stt`` (n_ch, n_seg): per segment the sums of
-    ``w``, ``w x``, ``w t``, ``w x t`` and ``w t t``, with ``t`` the weighted
-    mean cycle of each channel (``n_bins`` phase bins ``b``) less its mean.
-    The numpy twin is ``numpy.bincount``, which the compiled loops follow
-    addition by addition.
+    Returns ``sw, sx, st, sxt, stt, spt, sptt`` (n_ch, n_seg): per segment the
+    sums of ``w``, ``w x``, ``w t``, ``w x t``, ``w t t``, ``w pos t`` and
+    ``w pos t t``, with ``t`` the weighted mean cycle of each channel
+    (``n_bins`` phase bins ``b``) less its mean and ``pos`` each sample's
+    position. The numpy twin is ``numpy.bincount``, which the compiled loops
+    follow addition by addition.
     """
     n_ch = x.shape[0]
     if compiled and HAVE_NUMBA:
@@ -303,10 +321,10 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, *, compiled: bool = True):
     tmpl = sbx / np.maximum(cnt, 1e-12)
     tmpl -= tmpl.mean(axis=1, keepdims=True)
     if compiled and HAVE_NUMBA:
-        out = [np.zeros((n_ch, n_seg)) for _ in range(5)]
-        _gain_seg_sums_c(x, w, b, seg, tmpl, *out)
+        out = [np.zeros((n_ch, n_seg)) for _ in range(7)]
+        _gain_seg_sums_c(x, w, b, seg, tmpl, np.asarray(pos, dtype=np.float64), *out)
         return tuple(out)
-    out = [np.empty((n_ch, n_seg)) for _ in range(5)]
+    out = [np.empty((n_ch, n_seg)) for _ in range(7)]
     for ch in range(n_ch):
         t = tmpl[ch][b]
         out[0][ch] = np.bincount(seg, w[ch], n_seg)
@@ -314,6 +332,8 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, *, compiled: bool = True):
         out[2][ch] = np.bincount(seg, w[ch] * t, n_seg)
         out[3][ch] = np.bincount(seg, w[ch] * x[ch] * t, n_seg)
         out[4][ch] = np.bincount(seg, w[ch] * t * t, n_seg)
+        out[5][ch] = np.bincount(seg, w[ch] * pos * t, n_seg)
+        out[6][ch] = np.bincount(seg, w[ch] * pos * t * t, n_seg)
     return tuple(out)
 
 
@@ -361,9 +381,9 @@ def segment_stats(x, w, t, seg_starts, *, compiled: bool = True):
     if not (compiled and HAVE_NUMBA):
         return segment_stats_np(x, w, t, seg_starts)
     shape = (x.shape[0], seg_starts.size)
-    num, den, full = np.empty(shape), np.empty(shape), np.empty(shape)
-    _segment_stats_c(x, w, t, seg_starts, num, den, full)
-    return num, den, full
+    num, den, full, centre = np.empty(shape), np.empty(shape), np.empty(shape), np.empty(shape)
+    _segment_stats_c(x, w, t, seg_starts, num, den, full, centre)
+    return num, den, full, centre
 
 
 def highpass_residual(sos, x, t, gain=None, w=None, *, compiled: bool = True) -> np.ndarray:

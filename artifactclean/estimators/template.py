@@ -51,7 +51,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import ramp_cutoff, segments_per_cycle, smooth_gain
+from ..modulation import ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
 from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
@@ -302,6 +302,8 @@ class TemplateSubtraction(CycleEstimator):
         seg = np.floor(u * per_cycle).astype(np.int64)
         seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
         seg_u = (seg[seg_starts] + 0.5) / per_cycle
+        # each segment's first phase, and the phase step per sample (phase is linear in samples)
+        seg_first = (u[seg_starts], (u[-1] - u[0]) / max(n - 1, 1), per_cycle)
         # every pass reads the gain at the same phases: place them between segment centres once
         seg_pos = lerp_positions(seg_u, u)
 
@@ -338,7 +340,7 @@ class TemplateSubtraction(CycleEstimator):
             if self.track_amplitude:
                 # the new gain depends only on the template: it overwrites the old one
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response, seg_env,
-                                  ramp_hz, out=gain)
+                                  ramp_hz, seg_first, out=gain)
             if self.robust and it == passes - 2:
                 w, n_out = spike_outliers(xb, t_n, wb, fs, u, max(4, k_half // 2), self.outlier_z, gain=gain,
                                           compiled=self.compiled)
@@ -400,8 +402,11 @@ class TemplateSubtraction(CycleEstimator):
         s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
         return _shape(s, g, n_bins, k_groups, denoise, stride)
 
-    def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, seg_env, ramp_hz, out):
-        num, den, full = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
+    def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, seg_env, ramp_hz, seg_first, out):
+        num, den, full, centre = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
+        # a segment's gain stands for its template-weighted centre, not its middle (to_middles)
+        u_first, u_step, per_cycle = seg_first
+        shift = (u_first + u_step * centre - seg_u) * per_cycle
         g = np.zeros_like(num)
         for ch in range(g.shape[0]):
             # a segment with too little usable template energy (outliers, clipping) takes its
@@ -409,12 +414,14 @@ class TemplateSubtraction(CycleEstimator):
             # energy is judged against the typical segment, not against the segment's own total
             local = ndimage.median_filter(full[ch], size=41, mode="nearest")  # ~20 segments each side
             ok = den[ch] > 0.1 * np.maximum(local, 1e-300)
+            shift[ch, ~ok] = 0.0
             if ok.sum() >= 2:
                 g[ch] = np.interp(seg_u, seg_u[ok], num[ch, ok] / den[ch, ok])
             elif ok.any():
                 g[ch] = (num[ch, ok] / den[ch, ok]).mean()
             else:
                 g[ch] = 1.0
+        g = to_middles(g, shift, per_cycle)
         if response is not None:
             # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
             # level keeps the ramps' filtering local, so pieces of a block match the whole block
