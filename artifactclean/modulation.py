@@ -26,7 +26,7 @@ from scipy import ndimage, signal
 
 from .estimators._kernels import gain_sums
 
-__all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "lowpass_taps", "plateau_level", "ramp_cutoff",
+__all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
            "segment_gain", "segments_per_cycle", "smooth_gain", "to_middles"]
 
 #: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
@@ -192,7 +192,7 @@ def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int) -> np.ndarray:
 
 
 def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_hz: float = 2.0,
-                         over_subtraction: float = 2.0) -> GainResponse:
+                         over_subtraction: float = 2.0, follow_hz: float = FOLLOW_HZ) -> GainResponse:
     """Response that passes the modulation lines of ``gain`` and stops its floor.
 
     The periodogram of each channel's gain (``scipy.signal.welch``, 4 s
@@ -211,6 +211,8 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     max_hz : float
         Highest modulation frequency that may pass.
     floor_hz, over_subtraction : float
+    follow_hz : float
+        Below this everything passes (see :data:`FOLLOW_HZ` and :func:`follow_below`).
 
     Returns
     -------
@@ -231,9 +233,21 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     # a line wanders (heart rate is not constant) and the FIR smooths the response over about
     # 1 / HALF_S Hz: widen each passed line by a bin on either side so its centre passes whole
     resp = ndimage.maximum_filter1d(resp, 3, axis=-1)
-    resp[:, freqs <= min(FOLLOW_HZ, max_hz)] = 1.0
+    resp[:, freqs <= min(follow_hz, max_hz)] = 1.0
     resp[:, freqs > max_hz] = 0.0
     return GainResponse(freqs, resp, rate)
+
+
+def follow_below(f: float) -> float:
+    """Modulation frequency (Hz) below which the gain of an ``f`` Hz artifact always passes.
+
+    :data:`FOLLOW_HZ`, and at most ``f / 2``: beyond half the stimulation
+    frequency a sideband is nearer the next harmonic, and below a few hertz
+    the neural floor the gain takes up is the strongest LFP (1 Hz
+    stimulation with a 1.3 Hz heartbeat: residual within the +-3 Hz bands
+    15.6x the neural power passing up to 2.75 Hz, 4.3x up to 0.5 Hz).
+    """
+    return float(min(FOLLOW_HZ, f / 2.0))
 
 
 def ramp_cutoff(blk, fs: float, max_hz: float) -> float:

@@ -347,7 +347,9 @@ def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float, smear: float = 
             foot, top = -icpt / slope, (level - icpt) / slope
             a, b = min(foot, top) + smear, max(foot, top) - smear
             straight = (idx > a) & (idx < b) & (vals > 0.05 * level)
-            if straight.sum() >= 3:
+            # at least a cycle (smear / 2) of it: a few points give any slope (a 0.3 s ramp at 5 Hz,
+            # refitted on 5 points, came out nearly flat and the block read as a sham from 1.4 s to 17.6 s)
+            if straight.sum() >= max(3, smear / 2):
                 slope, icpt = np.polyfit(idx[straight], vals[straight], 1)
         return None if abs(slope) < 1e-12 else (slope, icpt)
 
@@ -404,8 +406,60 @@ def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, m
             continue
         level = float(np.max(signal.medfilt(env[a:b], 2 * (int(fs_ds / f) // 2) + 1))) if b - a > 3 else float(env[a:b].max())
         s, p0, p1, e = _ramp_edges(env, a, b, level, smear=_ENV_CYCLES / 2 * fs_ds / f)
+        cycle = fs_ds / f
+        if min(p0 - s, e - p1) < 1.25 * _ENV_CYCLES * cycle:
+            s, p0, p1, e = _sharpen_edges(x_ds, fs_ds, f, (s, p0, p1, e), a, b, level)
         segs.append(_Segment(s, p0, p1, e, level))
     return segs
+
+
+def _sharpen_edges(x_ds, fs_ds, f, edges, a, b, level):
+    """Ramps shorter than the envelope's moving mean, found again on a one-cycle envelope.
+
+    The moving mean over :data:`_ENV_CYCLES` cycles turns a step (a block
+    switched on without a ramp) into a ramp of that length, which the block
+    model would then follow as a ramp for 4 cycles: up to the whole artifact
+    left at the block's edges. A ramp that the coarse envelope cannot
+    resolve is fitted again on a one-cycle mean (which nulls the harmonics
+    as well); one still no longer than that mean's own smear is a step, put
+    where that envelope crosses half the plateau level.
+    """
+    cycle = fs_ds / f
+    unresolved = 1.25 * _ENV_CYCLES * cycle
+    fine = _envelope(x_ds, fs_ds, f, n_cycles=1)
+    s2, q0, q1, e2 = _ramp_edges(fine, a, b, level, smear=0.5 * cycle)
+    s, p0, p1, e = edges
+    n = x_ds.size
+    if p0 - s < unresolved:
+        s, p0 = s2, q0
+        if a == 0:
+            s = p0 = 0.0  # the recording starts inside the block: no ramp to see
+        elif _rise(fine, a, level, True) < 1.2 * cycle:
+            s = p0 = _crossing(fine, a, 0.5 * level, rising=True)
+    if e - p1 < unresolved:
+        p1, e = q1, e2
+        if b >= n:
+            p1 = e = float(n)  # the recording stops inside the block
+        elif _rise(fine, b, level, False) < 1.2 * cycle:
+            p1 = e = _crossing(fine, b, 0.5 * level, rising=False)
+    return s, min(p0, p1), max(p0, p1), e
+
+
+def _rise(env: np.ndarray, near: int, level: float, rising: bool) -> float:
+    """Samples between the 10% and 90% crossings of ``level`` nearest ``near`` (a one-cycle mean of
+    a step rises over about 0.85 cycle, a ramp of L cycles over about 0.8 L)."""
+    return abs(_crossing(env, near, 0.9 * level, rising) - _crossing(env, near, 0.1 * level, rising))
+
+
+def _crossing(env: np.ndarray, near: int, value: float, rising: bool) -> float:
+    """Where ``env`` crosses ``value`` (upwards if ``rising``) nearest sample ``near``, to a fraction of a sample."""
+    above = env >= value
+    cross = np.flatnonzero(above[1:] != above[:-1])
+    cross = cross[(above[cross + 1] if rising else above[cross])]
+    if cross.size == 0:
+        return float(near)
+    i = int(cross[np.argmin(np.abs(cross - near))])
+    return i + (value - env[i]) / (env[i + 1] - env[i])
 
 
 def fit_stimulation(
@@ -467,9 +521,10 @@ def fit_stimulation(
         ref = np.asarray(data[ch], dtype=np.float64)
         source = f"data channel {ch}"
 
-    x_ds, fs_ds = _decimate(ref - np.mean(ref), fs, decimated_rate(stim_freq, fmax))
+    centred = ref - np.mean(ref)
+    x_ds, fs_ds = _decimate(centred, fs, decimated_rate(stim_freq, fmax))
     return fit_decimated(x_ds, fs_ds, fs, n, stim_freq=stim_freq, source=source,
-                         threshold=threshold, min_cycles=min_cycles, fmax=fmax)
+                         threshold=threshold, min_cycles=min_cycles, fmax=fmax, read=lambda a, b: centred[a:b])
 
 
 def decimated_rate(stim_freq: float | None, fmax: float = 200.0) -> float:
@@ -489,12 +544,16 @@ def fit_decimated(
     threshold: float = 10.0,
     min_cycles: float = 8.0,
     fmax: float = 200.0,
+    read=None,
 ) -> StimulationModel:
     """:func:`fit_stimulation` on a reference already decimated to ``fs_ds``.
 
     File readers stream the reference through the same decimation chunk by
     chunk and call this, so a file gives the same model as its array.
-    ``n`` and ``fs`` are the full-rate length and sampling rate.
+    ``n`` and ``fs`` are the full-rate length and sampling rate. With
+    ``read(a, b)``, the full-rate reference (less its mean), a block edge
+    without a ramp (a step) is placed to the sample (:func:`_step_sample`);
+    the decimated envelope places it within a few milliseconds only.
     """
     if stim_freq is None:
         if x_ds.size / fs_ds * 0.5 < 1:
@@ -515,6 +574,10 @@ def fit_decimated(
         phase_ref = ph_c + 2 * np.pi * f_b * (ref_sample / fs - centre_ds / fs_ds)
         start = int(np.clip(np.floor(sg.start * scale), 0, n))
         stop = int(np.clip(np.ceil((sg.stop + 1) * scale), 0, n))
+        if sg.p0 == sg.start:  # a step: no ramp
+            start = int(np.clip(round(sg.start * scale), 0, n))
+        if sg.p1 == sg.stop:
+            stop = int(np.clip(round(sg.stop * scale), start, n))
         up = int(np.clip(round(sg.p0 * scale), start, stop))
         down = int(np.clip(round(sg.p1 * scale), up, stop))
         ramps = (up - start) + (stop - down)
@@ -522,7 +585,55 @@ def fit_decimated(
         drift = None if stim_freq is None else (f_b - stim_freq) / stim_freq * 1e6
         model.blocks.append(StimBlock(kind, start, stop, up, down, f_b, float(np.mod(phase_ref, 2 * np.pi)),
                                       ref_sample, amp, drift))
+    if read is not None:
+        for blk in model.blocks:
+            if blk.kind != "active":
+                continue
+            if blk.ramp_up_stop - blk.start <= 1 and blk.start > 0:
+                blk.start = blk.ramp_up_stop = _step_sample(read, model, blk, blk.start, fs_ds, rising=True)
+            if blk.stop - blk.ramp_down_start <= 1 and blk.stop < n:
+                blk.stop = blk.ramp_down_start = _step_sample(read, model, blk, blk.stop, fs_ds, rising=False)
     return model
+
+
+def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds: float, rising: bool) -> int:
+    """The sample where a block switched on (or off) without a ramp, near ``edge``.
+
+    The mean cycle of the 8 cycles inside the block next to the edge, on the
+    block's phase, is the artifact ``T``; the edge ``k`` minimising the
+    squared error of ``0`` before it and ``T`` after it (the reverse for an
+    end) is a least-squares change point: ``sum (T^2 - 2 x T)`` over the
+    samples the artifact covers, a running sum over a window of a quarter
+    cycle (or 3 decimated samples) either side of the coarse edge.
+    """
+    fs, n = model.fs, model.n_samples
+    cyc = fs / blk.freq_hz
+    half = int(np.ceil(max(0.25 * cyc, 3 * fs / fs_ds)))
+    span = int(8 * cyc)
+    a, b = (edge + half, edge + half + span) if rising else (edge - half - span, edge - half)
+    a, b = max(a, blk.start, 0), min(b, blk.stop, n)
+    lo, hi = max(edge - half, 0), min(edge + half, n)
+    if b - a < 2 * cyc or hi - lo < 3:
+        return int(edge)
+    x = np.asarray(read(a, b), dtype=np.float64)
+    n_bins = int(max(8, min(256, cyc)))
+    ph = np.mod(model.cycles(blk, a, b), 1.0)
+    k = np.minimum((ph * n_bins).astype(np.int64), n_bins - 1)
+    cnt = np.bincount(k, minlength=n_bins)
+    if np.any(cnt == 0):
+        return int(edge)
+    tmpl = np.bincount(k, x, n_bins) / cnt
+    offset = float(np.mean(x) - np.mean(tmpl))  # slow LFP near the edge
+    tmpl -= tmpl.mean()
+    w = np.asarray(read(lo, hi), dtype=np.float64) - offset
+    centres = (np.arange(n_bins) + 0.5) / n_bins
+    t = np.interp(np.mod(model.cycles(blk, lo, hi), 1.0), centres, tmpl, period=1.0)
+    e = t * t - 2.0 * w * t
+    if rising:  # cost of the artifact starting at lo + j: sum of e from j on
+        cost = np.concatenate((np.cumsum(e[::-1])[::-1], [0.0]))
+    else:  # cost of the artifact ending at lo + j: sum of e before j
+        cost = np.concatenate(([0.0], np.cumsum(e)))
+    return int(lo + np.argmin(cost))
 
 
 def _from_events(times: np.ndarray, fs: float, n: int, stim_freq: float | None) -> StimulationModel:

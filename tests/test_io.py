@@ -287,3 +287,18 @@ def test_block_planning_reports_progress_before_cleaning(tmp_path):
     assert stages.index("planning") < stages.index("cleaning")
     done = [(d, t) for s, d, t in calls if s == "planning"]
     assert any(d == t for d, t in done)  # every planning job finished
+
+
+def test_a_file_places_a_step_where_its_array_does(tmp_path):
+    """A block without ramps is placed at full rate from the reference the file streams."""
+    from artifactclean.io.pipeline import fit_recording_stimulation, scan_recording
+
+    rec = simulate_recording(10.0, artifact=ArtifactSpec(freq_hz=20.0), neural=NeuralSpec(units=units4()),
+                             blocks=[BlockSpec(2.0, 6.0, ramp_s=0.0)], seed=43)
+    root = write_openephys_binary(tmp_path / "session", rec.data, rec.fs)
+    r = open_recording(root)
+    chans = list(range(r.n_channels))
+    model = fit_recording_stimulation(r, chans, scan_recording(r, chans), stim_freq=20.0)
+    array_model = ac.fit_stimulation(r.read(), r.fs, stim_freq=20.0)
+    (blk,), (ablk,) = model.blocks, array_model.blocks
+    assert (blk.start, blk.stop) == (ablk.start, ablk.stop) == (int(2.0 * rec.fs), int(8.0 * rec.fs))

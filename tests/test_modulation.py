@@ -174,3 +174,18 @@ def test_a_segment_gain_stands_at_its_weighted_centre(rng, compiled):
         assert ls_gain == pytest.approx(1.0 + 2e-4 * (a + centre[0, k]), rel=1e-9)
     # the centres are not the middles: that is what a gain placed at the middles got wrong
     assert np.max(np.abs(centre[0] - 74.5)) > 10
+
+
+def test_everything_below_the_follow_band_passes(rng):
+    """Below follow_below(f) the response is 1 whatever the spectrum: 2.75 Hz, at most f / 2."""
+    from artifactclean.modulation import follow_below
+
+    assert follow_below(20.0) == FOLLOW_HZ == 2.75
+    assert follow_below(1.0) == 0.5
+    rate = 25.0  # 1 Hz stimulation, 25 gain segments per cycle
+    _, _, noisy = _gain_series(rng, rate, lines=((4.0, 0.02),))
+    for follow in (follow_below(1.0), follow_below(20.0)):
+        resp = design_gain_response(noisy[None], rate, max_hz=10.0, follow_hz=follow)
+        f, r = resp.freqs, resp.response[0]
+        assert np.all(r[f <= follow] == 1.0)
+        assert r[np.argmin(np.abs(f - 2.0))] == (1.0 if follow > 2.0 else 0.0)

@@ -109,3 +109,42 @@ def test_stimulation_free_recording_has_no_blocks():
     m = fit_stimulation(rec.data, rec.fs, stim_freq=20.0)
     assert m.blocks == []
     assert np.isnan(m.phase()).all()
+
+
+@pytest.mark.parametrize("freq", [5.0, 20.0])
+def test_a_block_switched_on_without_ramps_is_placed_to_the_sample(freq):
+    """A moving mean over 4 cycles turns a step into a 4-cycle ramp; the block model then ramped the
+    artifact in over 0.2 s (20 Hz) to 0.8 s (5 Hz) and left 2.2 mV of it at the edges. The
+    one-cycle envelope tells the step, and a least-squares change point at the full rate places it."""
+    from artifactclean import clean
+
+    rec = simulate_recording(12.0, artifact=ArtifactSpec(freq_hz=freq, drift_ppm=40.0),
+                             blocks=[BlockSpec(start_s=2.0, duration_s=8.0, ramp_s=0.0)], seed=4)
+    model = fit_stimulation(rec.data, rec.fs, stim_freq=freq)
+    (blk,) = model.blocks
+    assert blk.kind == "active"
+    assert (blk.start, blk.ramp_up_stop) == (int(2.0 * rec.fs),) * 2
+    assert (blk.ramp_down_start, blk.stop) == (int(10.0 * rec.fs),) * 2
+    resid = clean(rec.data, rec.fs, stim_freq=freq) - rec.neural
+    edges = np.r_[int(1.8 * rec.fs):int(2.5 * rec.fs), int(9.5 * rec.fs):int(10.2 * rec.fs)]
+    # 0.8-1.8% of the artifact's peak (it was 48%: 2.2 mV of 4.6)
+    assert np.max(np.abs(resid[:, edges])) < 0.03 * np.max(np.abs(rec.artifact))
+
+
+def test_short_ramps_at_5hz_are_not_a_sham_block():
+    """0.3 s ramps at 5 Hz are shorter than the envelope's 0.8 s moving mean: the ramp's line was
+    refitted on 5 points, came out nearly flat, and a 10 s active block read as a sham block."""
+    rec = simulate_recording(14.0, artifact=ArtifactSpec(freq_hz=5.0),
+                             blocks=[BlockSpec(start_s=2.0, duration_s=10.0, ramp_s=0.3)], seed=5)
+    (blk,) = fit_stimulation(rec.data, rec.fs, stim_freq=5.0).blocks
+    assert blk.kind == "active"
+    assert abs(blk.start / rec.fs - 2.0) < 0.15 and abs(blk.stop / rec.fs - 12.0) < 0.15
+    assert (blk.ramp_down_start - blk.ramp_up_stop) / rec.fs > 9.0
+
+
+def test_a_recording_that_starts_and_stops_inside_a_block():
+    """No ramp is seen at the recording's own ends: the block runs from its first to its last sample."""
+    rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=20.0),
+                             blocks=[BlockSpec(start_s=0.0, duration_s=8.0, ramp_s=0.0)], seed=6)
+    (blk,) = fit_stimulation(rec.data, rec.fs, stim_freq=20.0).blocks
+    assert (blk.start, blk.ramp_up_stop, blk.ramp_down_start, blk.stop) == (0, 0, rec.n_samples, rec.n_samples)

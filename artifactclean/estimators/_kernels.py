@@ -88,7 +88,7 @@ def group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
     return i0, i1, beta
 
 
-def segment_stats_np(x, w, t, seg_starts):
+def segment_stats_np(x, w, t, seg_starts, env=None):
     """Per gain segment, about each segment's own (weighted) means: sum w x t, sum w t^2, sum t^2, and where.
 
     Centring makes the fitted gain blind to an offset over the segment (the
@@ -98,8 +98,10 @@ def segment_stats_np(x, w, t, seg_starts):
     gives ``num / den = g(centre)`` with ``centre = sum w i t (t - mean t) /
     den``, the template-weighted centre, which is not the segment's middle
     and can lie outside the segment where the weights change sign (0 where
-    ``den`` is 0).
+    ``den`` is 0). With ``env`` (n,), the template is ``t * env``.
     """
+    if env is not None:
+        t = t * env
     red = lambda v: np.add.reduceat(v, seg_starts, axis=-1)  # noqa: E731
     sw = np.maximum(red(w), 1e-300)
     sx, st = red(w * x), red(w * t)
@@ -193,7 +195,7 @@ def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
             out[ch, i] = (1 - beta[i]) * lo + beta[i] * hi
 
 
-def _segment_stats_loop(x, w, t, seg_starts, num, den, full, centre):
+def _segment_stats_loop(x, w, t, env, use_env, seg_starts, num, den, full, centre):
     n_ch, n = x.shape
     n_seg = seg_starts.size
     for ch in range(n_ch):
@@ -210,7 +212,7 @@ def _segment_stats_loop(x, w, t, seg_starts, num, den, full, centre):
             spt = 0.0
             sptt = 0.0
             for i in range(a, b):
-                tt = t[ch, i]
+                tt = t[ch, i] * env[i] if use_env else t[ch, i]
                 wi = w[ch, i]
                 sw += wi
                 sx += wi * x[ch, i]
@@ -377,12 +379,14 @@ def tick_sums(x, w, gain, key, n_bins, stride, n_groups, *, compiled: bool = Tru
     return s.reshape(-1, n_groups, n_bins), g.reshape(-1, n_groups, n_bins)
 
 
-def segment_stats(x, w, t, seg_starts, *, compiled: bool = True):
+def segment_stats(x, w, t, seg_starts, env=None, *, compiled: bool = True):
     if not (compiled and HAVE_NUMBA):
-        return segment_stats_np(x, w, t, seg_starts)
+        return segment_stats_np(x, w, t, seg_starts, env)
     shape = (x.shape[0], seg_starts.size)
     num, den, full, centre = np.empty(shape), np.empty(shape), np.empty(shape), np.empty(shape)
-    _segment_stats_c(x, w, t, seg_starts, num, den, full, centre)
+    use_env = env is not None
+    _segment_stats_c(x, w, t, np.asarray(env, dtype=np.float64) if use_env else np.ones(1), use_env, seg_starts,
+                     num, den, full, centre)
     return num, den, full, centre
 
 

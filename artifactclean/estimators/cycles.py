@@ -20,8 +20,8 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
-from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, lowpass_taps, \
-    plateau_level, ramp_cutoff, segment_gain, segments_per_cycle
+from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
+    lowpass_taps, plateau_level, ramp_cutoff, segment_gain, segments_per_cycle
 from ..staircase import DacGrid, find_dac_grid, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
@@ -291,7 +291,7 @@ class CycleEstimator(ArtifactEstimator):
         if self.track_amplitude:
             per_cycle = segments_per_cycle(self.tracking_hz, f)
             raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
-            response = design_gain_response(raw, rate, max_hz=self.tracking_hz)
+            response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
         if self.dac != "auto":
             return ref, None, 0.0, response
         grid = find_dac_grid(x[ref], cycles, fs, f)

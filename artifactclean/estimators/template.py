@@ -51,7 +51,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
+from ..modulation import _FOOT, ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
 from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
@@ -316,6 +316,8 @@ class TemplateSubtraction(CycleEstimator):
         trap = trapezoid(n, blk, offset)
         gain = np.repeat(trap[None, :], n_ch, axis=0)
         seg_env = trap[(seg_starts + np.append(seg_starts[1:], n)) // 2]
+        b_start, b_up, b_down, b_stop = blk.geometry()
+        stepped = b_up == b_start or b_down == b_stop
         ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
         # phases clipped anywhere in the window are left out of every fit, not only the
         # clipped samples: the cycles that escaped the rail there are a biased selection
@@ -339,8 +341,8 @@ class TemplateSubtraction(CycleEstimator):
                 t_n = grouped_eval(tmpl, n_bins, *reader, out=None if it == 0 else t_n, compiled=self.compiled)
             if self.track_amplitude:
                 # the new gain depends only on the template: it overwrites the old one
-                gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response, seg_env,
-                                  ramp_hz, seg_first, out=gain)
+                gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
+                                  trap if stepped else None, seg_env, ramp_hz, seg_first, out=gain)
             if self.robust and it == passes - 2:
                 w, n_out = spike_outliers(xb, t_n, wb, fs, u, max(4, k_half // 2), self.outlier_z, gain=gain,
                                           compiled=self.compiled)
@@ -402,8 +404,14 @@ class TemplateSubtraction(CycleEstimator):
         s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
         return _shape(s, g, n_bins, k_groups, denoise, stride)
 
-    def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, seg_env, ramp_hz, seg_first, out):
-        num, den, full, centre = segment_stats(xb, w, t_n, seg_starts, compiled=self.compiled)
+    def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, trap, seg_env, ramp_hz, seg_first,
+              out):
+        # with a step (a block edge without a ramp, ``trap`` given) the gain is fitted relative to
+        # the block's envelope and multiplied by it sample by sample: read from segment values, the
+        # envelope would turn the step into a ramp one segment long (up to the whole artifact left
+        # there). Ramps keep the gain read from segment values: linear interpolation follows them
+        # exactly, also where the block model starts a ramp a little late
+        num, den, full, centre = segment_stats(xb, w, t_n, seg_starts, trap, compiled=self.compiled)
         # a segment's gain stands for its template-weighted centre, not its middle (to_middles)
         u_first, u_step, per_cycle = seg_first
         shift = (u_first + u_step * centre - seg_u) * per_cycle
@@ -414,6 +422,8 @@ class TemplateSubtraction(CycleEstimator):
             # energy is judged against the typical segment, not against the segment's own total
             local = ndimage.median_filter(full[ch], size=41, mode="nearest")  # ~20 segments each side
             ok = den[ch] > 0.1 * np.maximum(local, 1e-300)
+            if trap is not None:
+                ok &= seg_env > _FOOT  # a gain relative to an envelope of nothing is noise over nothing
             shift[ch, ~ok] = 0.0
             if ok.sum() >= 2:
                 g[ch] = np.interp(seg_u, seg_u[ok], num[ch, ok] / den[ch, ok])
@@ -422,8 +432,16 @@ class TemplateSubtraction(CycleEstimator):
             else:
                 g[ch] = 1.0
         g = to_middles(g, shift, per_cycle)
+        if trap is not None:
+            g = g * seg_env
         if response is not None:
             # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
             # level keeps the ramps' filtering local, so pieces of a block match the whole block
             g = smooth_gain(g, response, seg_rate, seg_env, ramp_hz, scale=1.0)
-        return lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
+        if trap is None:
+            return lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            g = np.where(seg_env > _FOOT, g / seg_env, 1.0)
+        out = lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
+        out *= trap
+        return out

@@ -132,7 +132,8 @@ def fit_recording_stimulation(rec: Recording, channels: Sequence[int], scan: Sca
         read = lambda a, b: rec.read(a, b, [channels[ref]])[0] - mean  # noqa: E731
         source = f"data channel {ref}"
     x_ds, fs_ds = decimate_reader(read, rec.n_samples, rec.fs, decimated_rate(stim_freq, fmax))
-    return fit_decimated(x_ds, fs_ds, rec.fs, rec.n_samples, stim_freq=stim_freq, source=source, fmax=fmax)
+    return fit_decimated(x_ds, fs_ds, rec.fs, rec.n_samples, stim_freq=stim_freq, source=source, fmax=fmax,
+                         read=read)
 
 
 def input_files(path: Path) -> list[Path]:
