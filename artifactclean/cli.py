@@ -40,6 +40,15 @@ class _Bar:
         sys.stderr.flush()
 
 
+def _distinct(freqs: list, main: float):
+    """The block frequencies, one per 2% cluster, the main one first; a single one as a number."""
+    out = [main]
+    for f in freqs:
+        if all(abs(f - g) > 0.02 * g for g in out):
+            out.append(f)
+    return out[0] if len(out) == 1 else out
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="artifactclean",
@@ -62,7 +71,9 @@ def _parser() -> argparse.ArgumentParser:
         sp.add_argument("--block", type=int, default=0, help="neo block index (default 0)")
         sp.add_argument("--segment", type=int, default=0, help="neo segment index (default 0)")
         sp.add_argument("--channels", help="comma-separated channel names or indices (default: all but the monitor)")
-        sp.add_argument("--stim-freq", type=float, help="nominal stimulation frequency in Hz (refined from the data)")
+        sp.add_argument("--stim-freq", type=float, nargs="+", metavar="HZ",
+                        help="nominal stimulation frequency in Hz (refined from the data); several for a session "
+                             "that delivers blocks at several frequencies")
         sp.add_argument("--stim-channel", help="stimulator monitor channel (name or index) to take the phase from")
         sp.add_argument("--profile", help="rig profile (TOML) saved by `survey --save-profile`")
         sp.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -165,6 +176,8 @@ def _open(args, prof: dict):
                 raise
     sp = prof.get("stimulation", {})
     stim_freq = args.stim_freq if args.stim_freq is not None else sp.get("nominal_freq_hz")
+    if isinstance(stim_freq, list) and len(stim_freq) == 1:
+        stim_freq = stim_freq[0]
     return rec, channels, monitor, stim_freq
 
 
@@ -198,7 +211,7 @@ def _survey(args) -> int:
         save_profile(args.save_profile, dict(
             recording=dict(format=rec.format, stream=rec.stream_name, channels=[c["name"] for c in res["channels"]],
                            monitor_channel=args.stim_channel or prof.get("recording", {}).get("monitor_channel")),
-            stimulation=dict(nominal_freq_hz=stim_freq if stim_freq is not None else st["frequency_hz"],
+            stimulation=dict(nominal_freq_hz=stim_freq if stim_freq is not None else _distinct(freqs, st["frequency_hz"]),
                              frequencies_hz=freqs,
                              blocks=[[b["start_s"], b["stop_s"], b["kind"]] for b in st["blocks"]],
                              events=[[e["time_s"], e["duration_s"], e["label"]] for e in res["events"]]),

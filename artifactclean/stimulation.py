@@ -20,6 +20,7 @@ Processing: Estimation Theory, ch. 7).
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field, asdict
 
 import numpy as np
@@ -36,6 +37,7 @@ __all__ = [
     "StimulationModel",
     "estimate_tone",
     "fit_stimulation",
+    "nominal_frequencies",
     "tone_crb",
 ]
 
@@ -385,9 +387,12 @@ class _Segment:
     level: float
 
 
-def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, min_cycles: float) -> list:
+def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, min_cycles: float,
+                   valid: np.ndarray | None = None) -> list:
     env = _envelope(x_ds, fs_ds, f)
-    bg = np.sqrt(np.median(_envelope(x_ds, fs_ds, 0.5 * f)) * np.median(_envelope(x_ds, fs_ds, 1.5 * f)))
+    # the background from the samples still in play (blocks found at other frequencies are zeros)
+    sel = slice(None) if valid is None else valid
+    bg = np.sqrt(np.median(_envelope(x_ds, fs_ds, 0.5 * f)[sel]) * np.median(_envelope(x_ds, fs_ds, 1.5 * f)[sel]))
     bg = max(bg, 1e-12 * max(1.0, float(np.max(np.abs(x_ds)))))
     on = env > threshold * bg
     # bridge short dropouts (a few cycles) inside one block
@@ -466,7 +471,7 @@ def fit_stimulation(
     data: np.ndarray,
     fs: float,
     *,
-    stim_freq: float | None = None,
+    stim_freq=None,
     reference: np.ndarray | None = None,
     events: np.ndarray | None = None,
     threshold: float = 10.0,
@@ -481,10 +486,13 @@ def fit_stimulation(
         The recording (any unit).
     fs : float
         Sampling rate in Hz.
-    stim_freq : float, optional
-        Nominal stimulation frequency; the search stays within +-2% of it.
-        Without it, the strongest spectral peak between 0.5 Hz and ``fmax``
-        is taken.
+    stim_freq : float or sequence of float, optional
+        Nominal stimulation frequency, or one per frequency the session
+        delivers; the search stays within +-2% of each (with one, blocks
+        found at another frequency are warned about). Without it, the
+        strongest spectral peak between 0.5 Hz and ``fmax`` is taken, its
+        blocks set aside and the search repeated on the rest (up to
+        :data:`MAX_FREQUENCIES` frequencies, each of which must come and go).
     reference : ndarray, shape (n_samples,), optional
         A recorded stimulator monitor signal; used instead of the data.
     events : ndarray, optional
@@ -527,9 +535,10 @@ def fit_stimulation(
                          threshold=threshold, min_cycles=min_cycles, fmax=fmax, read=lambda a, b: centred[a:b])
 
 
-def decimated_rate(stim_freq: float | None, fmax: float = 200.0) -> float:
+def decimated_rate(stim_freq=None, fmax: float = 200.0) -> float:
     """Rate the reference is decimated to before the search: 16 times the top frequency, >= 200 Hz."""
-    f_top = stim_freq * 1.02 if stim_freq else fmax
+    hints = nominal_frequencies(stim_freq)
+    f_top = max(hints) * 1.02 if hints else fmax
     return max(16 * f_top, 200.0)
 
 
@@ -539,7 +548,7 @@ def fit_decimated(
     fs: float,
     n: int,
     *,
-    stim_freq: float | None = None,
+    stim_freq=None,
     source: str = "data",
     threshold: float = 10.0,
     min_cycles: float = 8.0,
@@ -555,16 +564,25 @@ def fit_decimated(
     without a ramp (a step) is placed to the sample (:func:`_step_sample`);
     the decimated envelope places it within a few milliseconds only.
     """
-    if stim_freq is None:
-        if x_ds.size / fs_ds * 0.5 < 1:
-            raise ValueError("recording too short to find a stimulation frequency")
-        f_guess, _, _ = estimate_tone(x_ds, fs_ds, fmin=0.5, fmax=min(fmax, 0.45 * fs_ds))
-    else:
-        f_guess = float(stim_freq)
-    segs = _find_segments(x_ds, fs_ds, f_guess, threshold, min_cycles)
+    hints = nominal_frequencies(stim_freq)
+    if hints is None and x_ds.size / fs_ds * 0.5 < 1:
+        raise ValueError("recording too short to find a stimulation frequency")
+    found = _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax)
+    if hints is not None and len(hints) == 1:
+        # a session may also hold blocks at another frequency: say so rather than leave them
+        others = _search_frequencies(x_ds, fs_ds, None, threshold, min_cycles, min(fmax, 0.45 * fs_ds),
+                                     free=_free_of(found, x_ds.size, fs_ds), first_free=False)
+        if others:
+            at = ", ".join(f"{f:.4g} Hz" for f, _, _ in others)
+            warnings.warn(
+                (f"stimulation blocks at {at} too, besides {hints[0]:g} Hz; pass every frequency "
+                 "(stim_freq=[...], --stim-freq F1 F2) to clean them") if found else
+                (f"no stimulation blocks near {hints[0]:g} Hz, but blocks at {at}: is that the frequency "
+                 "(stim_freq, --stim-freq)?"), stacklevel=3)
     model = StimulationModel(fs=fs, n_samples=n, nominal_freq_hz=stim_freq, reference=source)
     scale = fs / fs_ds
-    for sg in segs:
+    pairs = sorted(((sg, f_guess, nominal) for f_guess, nominal, segs in found for sg in segs), key=lambda p: p[0].start)
+    for sg, f_guess, nominal in pairs:
         # ramps carry phase information too: fit over the whole segment
         a, b = int(max(0, np.ceil(sg.start))), int(min(x_ds.size, np.floor(sg.stop) + 1))
         f_b, ph_c, amp = estimate_tone(x_ds[a:b], fs_ds, freq_hint=f_guess)
@@ -582,7 +600,7 @@ def fit_decimated(
         down = int(np.clip(round(sg.p1 * scale), up, stop))
         ramps = (up - start) + (stop - down)
         kind = "sham" if ramps > 0 and (down - up) < 0.5 * ramps else "active"
-        drift = None if stim_freq is None else (f_b - stim_freq) / stim_freq * 1e6
+        drift = None if nominal is None else (f_b - nominal) / nominal * 1e6
         model.blocks.append(StimBlock(kind, start, stop, up, down, f_b, float(np.mod(phase_ref, 2 * np.pi)),
                                       ref_sample, amp, drift))
     if read is not None:
@@ -594,6 +612,65 @@ def fit_decimated(
             if blk.stop - blk.ramp_down_start <= 1 and blk.stop < n:
                 blk.stop = blk.ramp_down_start = _step_sample(read, model, blk, blk.stop, fs_ds, rising=False)
     return model
+
+
+def nominal_frequencies(stim_freq) -> list[float] | None:
+    """``stim_freq`` (None, a number or a sequence of numbers) as a list of floats, or None."""
+    if stim_freq is None:
+        return None
+    values = np.atleast_1d(np.asarray(stim_freq, dtype=np.float64))
+    if values.ndim != 1 or values.size == 0:
+        raise ValueError(f"stim_freq must be a frequency or a list of frequencies (Hz), got {stim_freq!r}")
+    return [float(v) for v in values]
+
+
+#: the most stimulation frequencies one recording is searched for without a nominal frequency
+MAX_FREQUENCIES = 4
+
+
+def _free_of(found, n: int, fs_ds: float) -> np.ndarray:
+    """Samples outside every segment found so far (with a few cycles' guard around each)."""
+    free = np.ones(n, dtype=bool)
+    for f, _, segs in found:
+        guard = int(np.ceil(2 * fs_ds / f))
+        for sg in segs:
+            free[max(0, int(np.floor(sg.start)) - guard):int(np.ceil(sg.stop)) + guard + 1] = False
+    return free
+
+
+def _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax, free=None, first_free=True) -> list:
+    """Stimulation segments per frequency: ``[(frequency searched, nominal or None, segments)]``.
+
+    With nominal frequencies (``hints``), each is searched in turn on what the
+    others left. Without, the strongest tone is taken, its blocks found and
+    set aside, and the search repeated on the rest (up to
+    :data:`MAX_FREQUENCIES`): a session may deliver 10 Hz and 40 Hz blocks,
+    and a search for one frequency alone left the other's blocks uncleaned.
+    A later frequency must come and go (its segments cover under 90% of
+    what is left: a tone present throughout, such as mains hum, is not a
+    block) and not lie within 2% of one found already. ``first_free=False``
+    applies those rules to the first frequency too.
+    """
+    found = []
+    free = np.ones(x_ds.size, dtype=bool) if free is None else free.copy()
+    for i in range(len(hints) if hints is not None else MAX_FREQUENCIES):
+        if free.sum() / fs_ds * 0.5 < 1 or free.sum() < 16:
+            break
+        x_left = np.where(free, x_ds, 0.0)
+        if hints is not None:
+            f_guess, nominal = hints[i], hints[i]
+        else:
+            f_guess, nominal = estimate_tone(x_left, fs_ds, fmin=0.5, fmax=min(fmax, 0.45 * fs_ds))[0], None
+        segs = _find_segments(x_left, fs_ds, f_guess, threshold, min_cycles, valid=free)
+        if hints is None and (found or not first_free):
+            covered = sum(min(sg.stop, free.size) - max(sg.start, 0) for sg in segs)
+            repeated = any(abs(f_guess - f) < 0.02 * f for f, _, _ in found)
+            if not segs or repeated or covered > 0.9 * free.sum():
+                break
+        if segs:
+            found.append((f_guess, nominal, segs))
+            free &= _free_of([found[-1]], x_ds.size, fs_ds)
+    return found
 
 
 def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds: float, rising: bool) -> int:
@@ -636,7 +713,7 @@ def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds
     return int(lo + np.argmin(cost))
 
 
-def _from_events(times: np.ndarray, fs: float, n: int, stim_freq: float | None) -> StimulationModel:
+def _from_events(times: np.ndarray, fs: float, n: int, stim_freq) -> StimulationModel:
     times = np.sort(times[np.isfinite(times)])
     if times.size < 3:
         raise ValueError("need at least 3 cycle-onset events to fit the stimulation phase")
@@ -653,7 +730,9 @@ def _from_events(times: np.ndarray, fs: float, n: int, stim_freq: float | None) 
         stop = int(np.clip(np.ceil((grp[-1] + slope) * fs), 0, n))
         ref = start
         phase = -2 * np.pi * f * (icpt - ref / fs)
-        drift = None if stim_freq is None else (f - stim_freq) / stim_freq * 1e6
+        hints = nominal_frequencies(stim_freq)
+        nominal = None if hints is None else min(hints, key=lambda h: abs(h - f))
+        drift = None if nominal is None else (f - nominal) / nominal * 1e6
         model.blocks.append(StimBlock("active", start, stop, start, stop, f, float(np.mod(phase, 2 * np.pi)),
                                       ref, float("nan"), drift))
     return model

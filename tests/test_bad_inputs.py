@@ -37,7 +37,8 @@ def test_no_stimulation_returns_input_with_a_warning():
 def test_wrong_frequency_hint_is_reported_not_guessed():
     rec = simulate_recording(6.0, artifact=ArtifactSpec(freq_hz=10.0), seed=53)
     with pytest.warns(UserWarning, match="survey"):
-        y = ac.clean(rec.data, rec.fs, stim_freq=20.0)
+        with pytest.warns(UserWarning, match="no stimulation blocks near 20 Hz, but blocks at 10 Hz"):
+            y = ac.clean(rec.data, rec.fs, stim_freq=20.0)
     np.testing.assert_array_equal(y, rec.data)  # nothing subtracted at the wrong frequency
 
 

@@ -302,3 +302,16 @@ def test_a_file_places_a_step_where_its_array_does(tmp_path):
     array_model = ac.fit_stimulation(r.read(), r.fs, stim_freq=20.0)
     (blk,), (ablk,) = model.blocks, array_model.blocks
     assert (blk.start, blk.stop) == (ablk.start, ablk.stop) == (int(2.0 * rec.fs), int(8.0 * rec.fs))
+
+
+def test_survey_and_profile_with_two_frequencies(tmp_path):
+    """--stim-freq takes every frequency a session delivers; a profile saved without it keeps them all."""
+    rec = simulate_recording(24.0, artifact=ArtifactSpec(freq_hz=10.0), neural=NeuralSpec(units=units4()),
+                             blocks=[BlockSpec(2.0, 8.0, freq_hz=10.0), BlockSpec(13.0, 8.0, freq_hz=40.0)], seed=44)
+    root = write_openephys_binary(tmp_path / "session", rec.data, rec.fs)
+    out = json.loads(cli("survey", root, "--json", "--stim-freq", "10", "40").stdout)
+    assert [round(b["freq_hz"]) for b in out["stimulation"]["blocks"] if b["kind"] == "active"] == [10, 40]
+    cli("survey", root, "--save-profile", tmp_path / "rig.toml")
+    from artifactclean.io.profile import load_profile
+
+    assert [round(f) for f in load_profile(tmp_path / "rig.toml")["stimulation"]["nominal_freq_hz"]] == [10, 40]

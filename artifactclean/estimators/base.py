@@ -262,23 +262,42 @@ class ArtifactEstimator(BaseEstimator):
         raise NotImplementedError
 
 
-def _fit_model(x, fs, stim_freq, stim_reference) -> StimulationModel:
-    if stim_freq is not None:
-        try:
-            stim_freq = float(stim_freq)
-        except (TypeError, ValueError):
-            raise TypeError(f"stim_freq must be a number (Hz), got {stim_freq!r}") from None
-        if not np.isfinite(stim_freq) or stim_freq <= 0:
-            raise ValueError(f"stim_freq must be positive, got {stim_freq}")
-        if stim_freq >= fs / 2:
+def check_stim_freq(stim_freq, fs: float, n_samples: int | None = None):
+    """``stim_freq`` (a number or a sequence of numbers) validated: a float, a list of floats, or None.
+
+    Raises
+    ------
+    TypeError
+        For something that is not a number or a sequence of numbers.
+    ValueError
+        For a frequency that is not positive, at or above Nyquist, or that the
+        recording holds fewer than 8 cycles of (when ``n_samples`` is given).
+    """
+    if stim_freq is None:
+        return None
+    try:
+        values = np.atleast_1d(np.asarray(stim_freq, dtype=np.float64))
+    except (TypeError, ValueError):
+        raise TypeError(f"stim_freq must be a number (Hz) or a list of numbers, got {stim_freq!r}") from None
+    if values.ndim != 1 or values.size == 0:
+        raise TypeError(f"stim_freq must be a number (Hz) or a list of numbers, got {stim_freq!r}")
+    for f in values:
+        if not np.isfinite(f) or f <= 0:
+            raise ValueError(f"stim_freq must be positive, got {f:g}")
+        if f >= fs / 2:
             raise ValueError(
-                f"stim_freq {stim_freq} Hz is at or above the Nyquist frequency {fs / 2} Hz of fs={fs}; "
+                f"stim_freq {f:g} Hz is at or above the Nyquist frequency {fs / 2:g} Hz of fs={fs:g}; "
                 "check the sampling rate and the stimulation frequency"
             )
-        if x.shape[1] / fs * stim_freq < 8:
+        if n_samples is not None and n_samples / fs * f < 8:
             raise ValueError(
-                f"recording holds {x.shape[1] / fs * stim_freq:.1f} stimulation cycles; at least 8 are needed"
+                f"recording holds {n_samples / fs * f:.1f} stimulation cycles at {f:g} Hz; at least 8 are needed"
             )
+    return float(values[0]) if np.ndim(stim_freq) == 0 else [float(f) for f in values]
+
+
+def _fit_model(x, fs, stim_freq, stim_reference) -> StimulationModel:
+    stim_freq = check_stim_freq(stim_freq, fs, x.shape[1])
     return fit_stimulation(x, fs, stim_freq=stim_freq, reference=_check_reference(stim_reference, x.shape[1]))
 
 

@@ -32,6 +32,7 @@ import numpy as np
 from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
+from ..estimators.base import check_stim_freq
 from ..staircase import find_dac_grid, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
@@ -112,8 +113,7 @@ def fit_recording_stimulation(rec: Recording, channels: Sequence[int], scan: Sca
                               stim_freq: float | None = None, monitor: tuple[Recording, int] | None = None,
                               fmax: float = 200.0) -> StimulationModel:
     """Stimulation model of a recording, streamed through the same decimation as arrays."""
-    if stim_freq is not None and stim_freq >= rec.fs / 2:
-        raise ValueError(f"stim_freq {stim_freq} Hz is at or above the Nyquist frequency {rec.fs / 2} Hz")
+    stim_freq = check_stim_freq(stim_freq, rec.fs)
     if monitor is not None:
         mrec, mch = monitor
         if mrec.n_samples != rec.n_samples or mrec.fs != rec.fs:
