@@ -27,7 +27,7 @@ from scipy import ndimage, signal
 from .estimators._kernels import gain_sums
 
 __all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
-           "segment_gain", "segments_per_cycle", "smooth_gain", "to_middles"]
+           "segment_gain", "segments_per_cycle", "smooth_gain", "to_middles", "cycle_slope"]
 
 #: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
 #: filter's transition
@@ -166,7 +166,7 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
     return to_middles(g, np.where(den > 0.1 * np.median(den, axis=1, keepdims=True), shift, 0.0), per_cycle), f * per_cycle
 
 
-def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int) -> np.ndarray:
+def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int, slope: np.ndarray | None = None) -> np.ndarray:
     """Gains fitted per segment, moved from where they stand to the segments' middles.
 
     A gain fitted over part of a cycle stands for the template-weighted
@@ -175,8 +175,9 @@ def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int) -> np.ndarray:
     gains left at the middles carry that pattern times the gain's slope
     (lines at the heart rate +- multiples of ``f``, which the response would
     pass and the fundamental brings back down to the heart rate). Each gain
-    is corrected to first order by the slope of the gains' mean over a
-    cycle (which has no such pattern); shifts are bounded to 3 segments.
+    is corrected to first order by ``slope`` (per segment), by default the
+    slope of the gains' mean over a cycle (:func:`cycle_slope`, which has no
+    such pattern); shifts are bounded to 3 segments.
 
     Parameters
     ----------
@@ -186,9 +187,17 @@ def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int) -> np.ndarray:
     per_cycle : int
         Segments per cycle.
     """
-    smooth = ndimage.uniform_filter1d(g, per_cycle, axis=-1, mode="nearest") if per_cycle > 1 else g
-    slope = np.gradient(smooth, axis=-1) if g.shape[-1] > 1 else np.zeros_like(g)
+    if slope is None:
+        slope = cycle_slope(g, per_cycle)
     return g - slope * np.clip(np.nan_to_num(shift), -3.0, 3.0)
+
+
+def cycle_slope(g: np.ndarray, per_cycle: int) -> np.ndarray:
+    """Slope (per segment) of the mean of ``g`` over one cycle (``per_cycle`` segments) around each segment."""
+    if g.shape[-1] < 2:
+        return np.zeros_like(g)
+    mean = ndimage.uniform_filter1d(g, per_cycle, axis=-1, mode="nearest") if per_cycle > 1 else g
+    return np.gradient(mean, axis=-1)
 
 
 def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_hz: float = 2.0,

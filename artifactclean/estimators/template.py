@@ -51,7 +51,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import _FOOT, ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
+from ..modulation import _FOOT, cycle_slope, ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
 from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
 
@@ -431,17 +431,23 @@ class TemplateSubtraction(CycleEstimator):
                 g[ch] = (num[ch, ok] / den[ch, ok]).mean()
             else:
                 g[ch] = 1.0
-        g = to_middles(g, shift, per_cycle)
-        if trap is not None:
-            g = g * seg_env
-        if response is not None:
+        def smooth(gg):
             # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
             # level keeps the ramps' filtering local, so pieces of a block match the whole block
-            g = smooth_gain(g, response, seg_rate, seg_env, ramp_hz, scale=1.0)
-        if trap is None:
-            return lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            g = np.where(seg_env > _FOOT, g / seg_env, 1.0)
+            if trap is None:
+                return smooth_gain(gg, response, seg_rate, seg_env, ramp_hz, scale=1.0)
+            gg = smooth_gain(gg * seg_env, response, seg_rate, seg_env, ramp_hz, scale=1.0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                return np.where(seg_env > _FOOT, gg / seg_env, 1.0)
+
+        if response is None:
+            g = to_middles(g, shift, per_cycle)
+        else:
+            # the slope that moves each gain to its segment's middle is the filtered gain's (the raw
+            # gains carry the neural floor, whose slope times the shifts would come back as noise),
+            # over whole cycles (the filter may pass the shifts' own pattern)
+            g = smooth(to_middles(g, shift, per_cycle, slope=cycle_slope(smooth(g), per_cycle)))
         out = lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
-        out *= trap
+        if trap is not None:
+            out *= trap
         return out
