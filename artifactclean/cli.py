@@ -230,7 +230,10 @@ def _print_survey(res: dict) -> None:
     f = st["frequency_hz"]
     print(f"stimulation: {'none found' if f is None else f'{f:.6f} Hz (main block)'}; phase from {st['reference']}")
     dac = st.get("dac", {})
-    if dac.get("locked"):
+    if dac.get("locked") and (dac.get("cycles_per_period") or 1) > 1:
+        print(f"DAC staircase: {dac['ticks_per_cycle']} updates every {dac['cycles_per_period']} cycles "
+              "(modelled exactly by the template)")
+    elif dac.get("locked"):
         print(f"DAC staircase: {dac['ticks_per_cycle']} updates per cycle (modelled exactly)")
     elif dac.get("steps_per_s", 0) > 50:
         print(f"DAC staircase: {dac['steps_per_s']:.0f} steps/s, not locked to the cycle (not modelled)")

@@ -8,6 +8,13 @@ every sample belongs to one tick ``floor(M * u - c)`` of the unwrapped
 stimulation phase ``u`` (cycles), and all samples of a tick share one held
 value. A template indexed by tick is then exact for the staircase.
 
+The DAC and the waveform run on the stimulator's one clock, so even when a
+cycle is not a whole number of updates (13 Hz or 6 Hz from a 1 kHz DAC:
+76.9 and 166.7 updates per cycle) the ticks fall on the same phases every
+``q`` cycles (13 and 3), ``M`` updates per period of ``q`` cycles (1000 and
+500): the same grid, on the period instead of the cycle
+(:func:`find_dac_period`).
+
 Steps are found with a four-sample step detector, and ``M`` and ``c`` by
 folding the step positions on the stimulation phase.
 """
@@ -18,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["DacGrid", "find_dac_grid", "step_rate"]
+__all__ = ["DacGrid", "find_dac_grid", "find_dac_period", "step_rate"]
 
 
 @dataclass(frozen=True)
@@ -28,9 +35,10 @@ class DacGrid:
     Attributes
     ----------
     ticks_per_cycle : int
-        Updates per stimulation cycle (``M``).
+        Updates per period (``M``): per stimulation cycle, or per
+        ``cycles_per_period`` cycles.
     offset : float
-        Tick phase ``c`` in [0, 1): ticks fall at ``u = (k + c) / M``.
+        Tick phase ``c`` in [0, 1): ticks fall at ``u / q = (k + c) / M``.
     offset_track : tuple of (ndarray, ndarray)
         Two phases (cycles) and the offsets there: a straight line through
         offsets located window by window from the steps themselves, which
@@ -40,6 +48,9 @@ class DacGrid:
         period (1 = every step exactly on the grid).
     n_steps : int
         Number of steps used.
+    cycles_per_period : int
+        Stimulation cycles (``q``) after which the ticks fall on the same
+        phases again: 1 when a cycle is a whole number of updates.
     """
 
     ticks_per_cycle: int
@@ -47,14 +58,16 @@ class DacGrid:
     concentration: float
     n_steps: int
     offset_track: tuple = ()
+    cycles_per_period: int = 1
 
     def _position(self, cycles: np.ndarray) -> np.ndarray:
+        periods = cycles / self.cycles_per_period if self.cycles_per_period != 1 else cycles
         if self.offset_track:
             at, off = self.offset_track
-            c = np.interp(cycles, at, off)
+            c = np.interp(periods, at, off)
         else:
             c = self.offset
-        return self.ticks_per_cycle * cycles - c
+        return self.ticks_per_cycle * periods - c
 
     def tick_index(self, cycles: np.ndarray) -> np.ndarray:
         """Global tick number of each sample with unwrapped phase ``cycles``."""
@@ -75,6 +88,8 @@ def find_dac_grid(
     z_threshold: float = 4.5,
     min_concentration: float = 0.85,
     max_steps: int = 2000,
+    ticks: int | None = None,
+    cycles_per_period: int = 1,
 ) -> DacGrid | None:
     """Look for a DAC staircase locked to the stimulation phase.
 
@@ -95,6 +110,10 @@ def find_dac_grid(
         Folded step positions must be at least this concentrated.
     max_steps : int
         Steps used for the search (evenly subsampled).
+    ticks : int, optional
+        Only this number of updates per period is tried.
+    cycles_per_period : int
+        Fold on periods of this many cycles (see :func:`find_dac_period`).
 
     Returns
     -------
@@ -104,10 +123,9 @@ def find_dac_grid(
     x = np.asarray(x, dtype=np.float64)
     if x.size < 16:
         return None
-    # step between samples i and i+1: (-x[i-1] + 3 x[i] - 3 x[i+1] + x[i+2]) / 2 flips sign;
-    # smooth waveforms give ~0 to third order, a step of size s gives -s
-    q = 0.5 * (-x[:-3] + 3 * x[1:-2] - 3 * x[2:-1] + x[3:])
-    sigma = 1.4826 * np.median(np.abs(q - np.median(q)))
+    cycles = cycles / cycles_per_period if cycles_per_period != 1 else cycles
+    freq = freq / cycles_per_period
+    q, sigma = _step_statistic(x)
     if sigma <= 0:
         return None
     big = _step_positions(q, z_threshold * sigma)
@@ -124,13 +142,20 @@ def find_dac_grid(
     m_hi = int(samples_per_cycle // 3)
     if m_hi < m_lo:
         return None
-    ms = np.arange(m_lo, m_hi + 1)
+    ms = np.arange(m_lo, m_hi + 1) if ticks is None else np.array([int(ticks)])
     # fold step positions on each candidate tick period
     r = _fold_concentration(u_mid, ms)
     best = int(np.argmax(r))
     if r[best] < min_concentration:
         return None
     m = int(ms[best])
+    if ticks is None and cycles_per_period == 1:
+        # a grid of M slots per cycle also holds ticks that fall every few slots, their phases
+        # turning from cycle to cycle (6 Hz from a 1 kHz DAC fits 500 slots per cycle): the
+        # ticks' own spacing must give M per cycle
+        period = _tick_period(x, max(z_threshold, 6.0))
+        if period is not None and abs(fs / (period * freq) - m) > 0.03:
+            return None
     all_steps = _step_positions(q, z_threshold * sigma)
     c = _vote_offset(m, cycles[all_steps + 1], cycles[all_steps + 2])
     # refine the offset locally, about every half second (>= 50 steps per window)
@@ -153,7 +178,84 @@ def find_dac_grid(
         coef = np.polyfit(centres - centres.mean(), offs, 1)
         ends = np.array([u_all[0] - 1e6, u_all[-1] + 1e6])
         track = (ends, np.polyval(coef, ends - centres.mean()))
-    return DacGrid(m, c, float(r[best]), int(big.size), track)
+    return DacGrid(m, c, float(r[best]), int(big.size), track, int(cycles_per_period))
+
+
+def find_dac_period(
+    x: np.ndarray,
+    cycles: np.ndarray,
+    fs: float,
+    freq: float,
+    *,
+    max_period: int = 24,
+    z_threshold: float = 6.0,
+) -> DacGrid | None:
+    """Look for a DAC staircase whose ticks repeat every few stimulation cycles.
+
+    The update period is measured from the steps themselves (the spacing of
+    consecutive steps, refined by a least-squares line through the step
+    times against their tick numbers), which gives the updates per cycle
+    ``rho = fs / (period * freq)``; the first ``q <= max_period`` with
+    ``q * rho`` a whole number ``M`` (within 0.03) is checked with
+    :func:`find_dac_grid` folding on periods of ``q`` cycles.
+
+    Returns
+    -------
+    DacGrid or None
+        With ``cycles_per_period = q``; None when no such staircase is found.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    if x.size < 64:
+        return None
+    period = _tick_period(x, z_threshold)
+    if period is None:
+        return None
+    rho = fs / (period * freq)
+    for q in range(2, max_period + 1):
+        m = round(q * rho)
+        if m >= 3 and abs(q * rho - m) < 0.03:
+            grid = find_dac_grid(x, cycles, fs, freq, ticks=m, cycles_per_period=q, min_rate_hz=0.0)
+            if grid is not None:
+                return grid
+    return None
+
+
+def _tick_period(x: np.ndarray, z_threshold: float) -> float | None:
+    """The DAC update period (samples) from the times of large steps, or None."""
+    qs, sigma = _step_statistic(x)
+    if sigma <= 0:
+        return None
+    t = _step_positions(qs, z_threshold * sigma) + 1.5  # the step lies between samples i+1 and i+2
+    if t.size < 50:
+        return None
+    d = np.diff(t)
+    # consecutive ticks: the shortest common spacing (steps are found wherever the waveform is steep)
+    p0 = float(np.median(d[d <= np.percentile(d, 25)]))
+    if p0 < 2:
+        return None
+    # fold the first 500 ticks' steps on periods around it (a fold over many more has peaks too
+    # narrow for the grid, and the waveform's own rhythm in the steps puts side peaks at R +- f),
+    # then a line through times against tick numbers
+    first = t[t - t[0] <= 500 * p0]
+    cand = p0 * (1 + np.linspace(-0.04, 0.04, 801))
+    r = np.abs(np.exp(2j * np.pi * np.outer(1.0 / cand, first - first[0])).mean(axis=1))
+    p = float(cand[np.argmax(r)])
+    # over spans growing fourfold, each short enough that the period so far counts ticks right
+    # (a 1e-4 error miscounts by a tick over 10,000 ticks)
+    span = 1000.0 * p
+    t0 = t[0]
+    while True:
+        sel = t - t[0] <= span
+        k = np.round((t[sel] - t0) / p)
+        # steps off the grid (a spike's edge) are left out of the line
+        on = np.abs(t[sel] - t0 - k * p) < 0.25 * p
+        if np.unique(k[on]).size < 3:
+            return None
+        p, t0 = (float(v) for v in np.polyfit(k[on], t[sel][on], 1))
+        if sel.all() or p <= 0:
+            break
+        span *= 4
+    return p if p > 0 else None
 
 
 def step_rate(x: np.ndarray, fs: float, *, z_threshold: float = 8.0) -> float:
@@ -165,11 +267,20 @@ def step_rate(x: np.ndarray, fs: float, *, z_threshold: float = 8.0) -> float:
     x = np.asarray(x, dtype=np.float64)
     if x.size < 16:
         return 0.0
-    q = 0.5 * (-x[:-3] + 3 * x[1:-2] - 3 * x[2:-1] + x[3:])
-    sigma = 1.4826 * np.median(np.abs(q - np.median(q)))
+    q, sigma = _step_statistic(x)
     if sigma <= 0:
         return 0.0
     return float(_step_positions(q, z_threshold * sigma).size / (x.size / fs))
+
+
+def _step_statistic(x: np.ndarray) -> tuple[np.ndarray, float]:
+    """The four-sample step statistic and its robust SD.
+
+    Between samples i and i+1, ``(-x[i-1] + 3 x[i] - 3 x[i+1] + x[i+2]) / 2``
+    is ~0 to third order for a smooth waveform and ``-s`` for a step ``s``.
+    """
+    q = 0.5 * (-x[:-3] + 3 * x[1:-2] - 3 * x[2:-1] + x[3:])
+    return q, float(1.4826 * np.median(np.abs(q - np.median(q))))
 
 
 def _fold_concentration(u: np.ndarray, ms: np.ndarray, width: int = 64) -> np.ndarray:

@@ -315,3 +315,12 @@ def test_survey_and_profile_with_two_frequencies(tmp_path):
     from artifactclean.io.profile import load_profile
 
     assert [round(f) for f in load_profile(tmp_path / "rig.toml")["stimulation"]["nominal_freq_hz"]] == [10, 40]
+
+
+def test_survey_names_a_dac_that_repeats_every_13_cycles(tmp_path):
+    rec = simulate_recording(10.0, artifact=ArtifactSpec(freq_hz=13.0, dac_rate_hz=1000.0),
+                             neural=NeuralSpec(units=units4()), seed=45)
+    root = write_openephys_binary(tmp_path / "session", rec.data, rec.fs)
+    out = cli("survey", root, "--stim-freq", "13").stdout
+    assert "DAC staircase: 1000 updates every 13 cycles" in out
+    assert "not locked" not in out

@@ -53,7 +53,7 @@ from scipy import ndimage
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
-from .cycles import CycleEstimator, settle_edges, spike_outliers, trapezoid
+from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, trapezoid
 
 __all__ = ["TemplateSubtraction"]
 
@@ -83,7 +83,7 @@ def _median_of_positive(g: np.ndarray) -> np.ndarray:
     return typical
 
 
-def _shape(s, g, n_bins, k_groups, denoise, stride):
+def _shape(s, g, n_bins, k_groups, denoise, stride, per=1):
     """Least-squares templates every ``stride`` cycles: windowed sum(w g x) / sum(w g^2).
 
     The window (``2 k_groups + 1`` groups of ``stride`` cycles) is centred on
@@ -139,6 +139,13 @@ def _shape(s, g, n_bins, k_groups, denoise, stride):
         scale = np.where((den > 0) & (num > 0), num / np.where(den > 0, den, 1.0), 1.0)
     t /= scale[..., None]
     t -= np.where(whole_rows, t.mean(axis=-1, keepdims=True), 0.0)
+    if per > 1:
+        # rows of `per` cycles, one bin per DAC tick: the held values are the waveform sampled at
+        # the ticks, whose harmonics over the period are the stimulation's, multiples of `per`;
+        # the rest is neural signal periodic by chance over the window (LFP at every 1 / period)
+        c = np.fft.rfft(t, axis=-1)
+        c[..., np.arange(c.shape[-1]) % per != 0] = 0.0
+        t = np.where(whole_rows, np.fft.irfft(c, n=n_bins, axis=-1), t)
     if denoise and n_bins >= 16:
         c = np.fft.rfft(t, axis=-1)
         # each template decides from its own window (so a piece of a block decides as the
@@ -199,6 +206,7 @@ class TemplateSubtraction(CycleEstimator):
 
     _method_name = "template"
     _reads_reference = True
+    _dac_periods = True
 
     def __init__(
         self,
@@ -228,18 +236,31 @@ class TemplateSubtraction(CycleEstimator):
         k = 30 if self.n_cycles is None else self.n_cycles
         return float((3 if self.robust else 2) * (k + 2 * max(1, k // 4) + 2) + self.margin_cycles)
 
-    def context_seconds(self, freq_hz: float) -> float:
+    def context_seconds(self, freq_hz: float, cycles_per_row: int = 1) -> float:
         """Context (s) an output sample needs on each side.
 
         The window reaches K cycles plus two template groups (alignment and
         interpolation between groups), once per pass; the gain's low-pass
-        filter reaches :data:`artifactclean.modulation.HALF_S` seconds.
+        filter reaches :data:`artifactclean.modulation.HALF_S` seconds. With
+        a DAC whose ticks repeat every ``cycles_per_row`` cycles the
+        template's rows are such periods (see :meth:`block_context_seconds`).
         """
-        k = self._window(freq_hz)
-        reach = k + 2 * max(1, k // 4) + 2
+        k = self._rows(self._window(freq_hz), cycles_per_row)
+        reach = (k + 2 * max(1, k // 4) + 2) * cycles_per_row
         # each pass builds on the previous pass's residual, so edge effects travel one window per pass
         passes = 3 if self.robust else 2
         return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S
+
+    def block_context_seconds(self, blk) -> float:
+        """:meth:`context_seconds` for ``blk``, with the rows its plan (:meth:`prepare`) gives it."""
+        plan = getattr(self, "_plans", {}).get(block_key(blk))
+        grid = None if plan is None else plan.grid
+        return self.context_seconds(blk.freq_hz, 1 if grid is None else grid.cycles_per_period)
+
+    @staticmethod
+    def _rows(k_half: int, cycles_per_row: int) -> int:
+        """The window's half-width in rows: ``K`` cycles, or at least 2 periods of several cycles."""
+        return k_half if cycles_per_row == 1 else max(2, int(round(k_half / cycles_per_row)))
 
     def _validate_params(self) -> None:
         super()._validate_params()
@@ -257,27 +278,30 @@ class TemplateSubtraction(CycleEstimator):
         f = blk.freq_hz
         k_half = self._window(f)
         ref, grid, unlocked, response, _ = self._block_plan(xb, blk, fs, offset)
+        # the template's rows: cycles, or periods of a few cycles when a DAC's ticks repeat only so
+        per = 1 if grid is None else grid.cycles_per_period
+        k_rows = self._rows(k_half, per)
         if grid is not None:
             n_bins = grid.ticks_per_cycle
             key = grid.tick_index(u)
             # samples within a quarter sample of a tick edge are assigned by the data
             edge = grid.edge_distance(u)
-            delta = 0.25 * n_bins * f / fs
+            delta = 0.25 * n_bins * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
         else:
             n_bins = max(4, int(round(fs / f)))
             key = np.floor(u * n_bins).astype(np.int64)
-        # templates are computed every `stride` cycles and interpolated between (see _shape);
-        # groups start at multiples of `stride` in absolute cycle numbers, so a piece of a
-        # block groups its cycles exactly as the whole block does
-        stride = max(1, k_half // 4)
+        # templates are computed every `stride` rows and interpolated between (see _shape);
+        # groups start at multiples of `stride` in absolute row numbers, so a piece of a
+        # block groups its rows exactly as the whole block does
+        stride = max(1, k_rows // 4)
         row0 = (key[0] // n_bins) // stride * stride
         key = key - row0 * n_bins  # first group starts at row 0
         n_rows = int(key[-1] // n_bins) + 1
         n_grid = n_rows * n_bins
         n_groups = -(-n_rows // stride)
-        k_groups = max(1, int(round(k_half / stride)))
+        k_groups = max(1, int(round(k_rows / stride)))
         if grid is not None:
             # every sample of a DAC tick shares one held value
             base_key = key.copy()
@@ -333,7 +357,7 @@ class TemplateSubtraction(CycleEstimator):
                 if it > 0:
                     key = settle_edges(xb[ref], gain[ref], lambda k, _: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
                                         key, base_key, amb_lo, amb_hi)
-                tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride)
+                tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups)
             else:
                 tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride)
@@ -348,8 +372,9 @@ class TemplateSubtraction(CycleEstimator):
                                           compiled=self.compiled)
         info = dict(
             freq_hz=f,
-            n_cycles=(2 * k_groups + 1) * stride,
-            cycles_per_template=stride,
+            n_cycles=(2 * k_groups + 1) * stride * per,
+            cycles_per_template=stride * per,
+            dac_cycles_per_period=None if grid is None else per,
             bins_per_cycle=n_bins,
             dac_ticks_per_cycle=None if grid is None else grid.ticks_per_cycle,
             dac_concentration=None if grid is None else grid.concentration,
@@ -395,9 +420,9 @@ class TemplateSubtraction(CycleEstimator):
         i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
         return grouped_eval(tmpl, n_bins, i0, i1, beta, b, b, np.zeros(key.size), compiled=self.compiled)
 
-    def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride):
+    def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per=1):
         s, g = tick_sums(xb, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
-        return _shape(s, g, n_bins, k_groups, denoise, stride)
+        return _shape(s, g, n_bins, k_groups, denoise, stride, per)
 
     def _phase_template(self, xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride):
         gi, ga, inside = sampler

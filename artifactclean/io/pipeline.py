@@ -33,7 +33,7 @@ from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..estimators.base import check_stim_freq
-from ..staircase import find_dac_grid, step_rate
+from ..staircase import find_dac_grid, find_dac_period, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
                         client_threads, open_client, ordered_results, piece_task)
@@ -430,6 +430,8 @@ def _run_now(fn, *args):
 
 def _context(est, blk, model, fs: float) -> int:
     """Samples of context the estimator declares for a work range (its block's frequency)."""
+    if blk is not None and hasattr(est, "block_context_seconds"):
+        return int(np.ceil(est.block_context_seconds(blk) * fs))  # the block's plan may widen it
     f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
     return int(np.ceil(est.context_seconds(f_ctx) * fs))
 
@@ -521,11 +523,14 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         amps = 2 * np.abs((x - x.mean(axis=1, keepdims=True)) @ np.exp(-2j * np.pi * u)) / max(b - a, 1)
         strongest = int(np.argmax(amps))
         grid = find_dac_grid(x[strongest], u, rec.fs, main.freq_hz)
+        steps = step_rate(x[strongest], rec.fs)
+        if grid is None and steps > 50.0:
+            grid = find_dac_period(x[strongest], u, rec.fs, main.freq_hz)
         dac = dict(ticks_per_cycle=None if grid is None else grid.ticks_per_cycle,
-                   steps_per_s=step_rate(x[strongest], rec.fs),
-                   locked=grid is not None)
+                   cycles_per_period=None if grid is None else grid.cycles_per_period,
+                   steps_per_s=steps, locked=grid is not None)
     else:
-        dac = dict(ticks_per_cycle=None, steps_per_s=0.0, locked=False)
+        dac = dict(ticks_per_cycle=None, cycles_per_period=None, steps_per_s=0.0, locked=False)
     unlocked = not dac["locked"] and dac["steps_per_s"] > 50.0
     frac = scan.n_at_rails / max(scan.n_samples, 1)
     chans = []

@@ -1,0 +1,50 @@
+"""The DAC grid: ticks locked to the cycle, or repeating every few cycles, found from the steps."""
+
+import numpy as np
+import pytest
+
+from artifactclean.staircase import find_dac_grid, find_dac_period
+
+
+def _held_sine(freq, dac, fs=30000.0, seconds=6.0, ppm=40.0, seed=0):
+    """A DAC staircase of a sine on a clock ``ppm`` fast, sampled by the amplifier, with white noise."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(int(seconds * fs)) / fs
+    clock = 1 + ppm * 1e-6
+    tick = 1.0 / (dac * clock)
+    held = (np.floor(t / tick + 0.37) - 0.37) * tick
+    x = 4000.0 * np.cos(2 * np.pi * freq * clock * held) + 10.0 * rng.standard_normal(t.size)
+    cycles = freq * clock * t  # the unwrapped stimulation phase, as the model gives it
+    return x, cycles, fs, freq * clock
+
+
+@pytest.mark.parametrize("freq, ticks, period", [(13.0, 1000, 13), (6.0, 500, 3), (30.0, 100, 3), (6.5, 2000, 13)])
+def test_ticks_that_repeat_every_few_cycles(freq, ticks, period):
+    """1000 / 13 = 76.9 updates per cycle: the same phases every 13 cycles, 1000 updates per period."""
+    x, cycles, fs, f = _held_sine(freq, 1000.0)
+    grid = find_dac_period(x, cycles, fs, f)
+    assert grid is not None and (grid.ticks_per_cycle, grid.cycles_per_period) == (ticks, period)
+    assert grid.concentration > 0.95
+    # every sample of a tick gets one key: the held value is constant within a key
+    key = grid.tick_index(cycles)
+    edge = grid.edge_distance(cycles)
+    inner = (edge > 0.05) & (edge < 0.95)
+    spread = [np.ptp(x[inner][key[inner] == k]) for k in np.unique(key[inner])[100:200]]
+    assert np.median(spread) < 80.0  # the noise's range over ~30 samples, not a step of ~190 uV
+
+
+def test_a_grid_of_slots_that_only_holds_every_third_tick_is_refused():
+    """6 Hz from 1 kHz: 500 slots per cycle fit every tick (each third slot, turning from cycle to
+    cycle; concentration 0.95), but a template per slot would mix held values; the ticks' own
+    spacing (166.7 per cycle) refuses it."""
+    x, cycles, fs, f = _held_sine(6.0, 1000.0)
+    assert find_dac_grid(x, cycles, fs, f) is None
+    x, cycles, fs, f = _held_sine(10.0, 1000.0)
+    grid = find_dac_grid(x, cycles, fs, f)
+    assert grid is not None and grid.ticks_per_cycle == 100 and grid.cycles_per_period == 1
+
+
+def test_no_period_when_the_ticks_never_repeat_soon():
+    x, cycles, fs, f = _held_sine(13.37, 1000.0)  # every 1337 cycles
+    assert find_dac_grid(x, cycles, fs, f) is None
+    assert find_dac_period(x, cycles, fs, f) is None
