@@ -235,6 +235,9 @@ def _print_survey(res: dict) -> None:
               "(modelled exactly by the template)")
     elif dac.get("locked"):
         print(f"DAC staircase: {dac['ticks_per_cycle']} updates per cycle (modelled exactly)")
+    elif dac.get("updates_per_cycle"):
+        print(f"DAC staircase: {dac['updates_per_cycle']:.4f} updates per cycle, free-running "
+              "(the template reads each tick's held phase)")
     elif dac.get("steps_per_s", 0) > 50:
         print(f"DAC staircase: {dac['steps_per_s']:.0f} steps/s, not locked to the cycle (not modelled)")
     print(f"\n{'kind':<7} {'start s':>9} {'stop s':>9} {'ramp up s':>10} {'ramp down s':>12} {'freq Hz':>12} {'drift ppm':>10} {'amplitude uV':>13}")

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["DacGrid", "find_dac_grid", "find_dac_period", "step_rate"]
+__all__ = ["DacClock", "DacGrid", "find_dac_clock", "find_dac_grid", "find_dac_period", "step_rate"]
 
 
 @dataclass(frozen=True)
@@ -76,6 +76,76 @@ class DacGrid:
     def edge_distance(self, cycles: np.ndarray) -> np.ndarray:
         """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
         return np.mod(self._position(cycles), 1.0)
+
+
+@dataclass(frozen=True)
+class DacClock:
+    """DAC update ticks at any whole or fractional number per cycle (a free-running grid).
+
+    Ticks fall at ``u = (k + offset) / ticks_per_cycle`` of the unwrapped
+    stimulation phase ``u``; a sample holds the waveform at the phase of its
+    tick (:meth:`held_cycles`), which a template over the cycle, read there,
+    reproduces.
+
+    Attributes
+    ----------
+    ticks_per_cycle : float
+        Updates per cycle (``rho``, not a whole number).
+    offset : float
+        Tick phase in ticks.
+    concentration : float
+        Mean resultant length of the step positions folded on the ticks.
+    n_steps : int
+        Number of steps used.
+    """
+
+    ticks_per_cycle: float
+    offset: float
+    concentration: float
+    n_steps: int
+
+    #: the template's rows are cycles
+    cycles_per_period = 1
+
+    def tick_index(self, cycles: np.ndarray) -> np.ndarray:
+        """Global tick number of each sample with unwrapped phase ``cycles``."""
+        return np.floor(self.ticks_per_cycle * cycles - self.offset).astype(np.int64)
+
+    def edge_distance(self, cycles: np.ndarray) -> np.ndarray:
+        """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
+        return np.mod(self.ticks_per_cycle * cycles - self.offset, 1.0)
+
+    def held_cycles(self, ticks: np.ndarray) -> np.ndarray:
+        """Stimulation phase (unwrapped cycles) at which each tick sampled the waveform."""
+        return (np.asarray(ticks, dtype=np.float64) + self.offset) / self.ticks_per_cycle
+
+
+def find_dac_clock(x: np.ndarray, cycles: np.ndarray, fs: float, freq: float, *, z_threshold: float = 6.0,
+                   min_concentration: float = 0.85) -> DacClock | None:
+    """A DAC staircase at any number of updates per cycle, from the steps' own spacing.
+
+    The update period comes from the steps (:func:`find_dac_period` does the
+    same); the tick phase from a line through step times against tick
+    numbers, converted to the stimulation phase of ``cycles`` (linear in
+    samples). Accepted when the steps fold on the ticks with at least
+    ``min_concentration``.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    if x.size < 64:
+        return None
+    fit = _tick_line(x, z_threshold)
+    if fit is None:
+        return None
+    period, t0, t = fit
+    rho = fs / (period * freq)
+    slope = (cycles[-1] - cycles[0]) / max(cycles.size - 1, 1)
+    # tick k at sample t0 + k * period, i.e. at phase cycles[0] + (t0 + k * period) * slope
+    offset = float(rho * (cycles[0] + t0 * slope))
+    frac = np.mod(rho * (cycles[0] + t * slope) - offset, 1.0)
+    conc = float(np.abs(np.mean(np.exp(2j * np.pi * frac))))
+    if conc < min_concentration:
+        return None
+    return DacClock(float(rho), offset, conc, int(t.size))
 
 
 def find_dac_grid(
@@ -222,6 +292,12 @@ def find_dac_period(
 
 def _tick_period(x: np.ndarray, z_threshold: float) -> float | None:
     """The DAC update period (samples) from the times of large steps, or None."""
+    fit = _tick_line(x, z_threshold)
+    return None if fit is None else fit[0]
+
+
+def _tick_line(x: np.ndarray, z_threshold: float):
+    """``(period, t0, step times)``: ticks at samples ``t0 + k period``, from large steps; or None."""
     qs, sigma = _step_statistic(x)
     if sigma <= 0:
         return None
@@ -255,7 +331,11 @@ def _tick_period(x: np.ndarray, z_threshold: float) -> float | None:
         if sel.all() or p <= 0:
             break
         span *= 4
-    return p if p > 0 else None
+    if p <= 0:
+        return None
+    on = np.abs(t - t0 - np.round((t - t0) / p) * p) < 0.25 * p
+    # a step detected between samples i+1 and i+2 is at i + 1.5 on average: the tick edge
+    return p, t0, t[on]
 
 
 def step_rate(x: np.ndarray, fs: float, *, z_threshold: float = 8.0) -> float:

@@ -203,16 +203,18 @@ def test_a_cluster_running_another_version_is_refused(oe_file, tmp_path, monkeyp
     assert not list(tmp_path.glob("*.dat")) and not list(tmp_path.glob(".*partial*"))
 
 
-def test_pieces_with_a_dac_that_repeats_every_13_cycles_equal_the_whole_array(tmp_path):
-    """13 Hz from a 1 kHz DAC: the template's rows are periods of 13 cycles (1 s), found once per
-    block (prepare), so every piece models the same ticks."""
+@pytest.mark.parametrize("freq", [13.0, 13.37])
+def test_pieces_with_a_dac_that_is_not_locked_to_the_cycle_equal_the_whole_array(freq, tmp_path):
+    """13 Hz from a 1 kHz DAC: the template's rows are periods of 13 cycles (1 s); 13.37 Hz: it reads
+    each tick's held phase. The ticks are found once per block (prepare), so every piece models the
+    same ticks."""
     from neo.io import NixIO
 
     from artifactclean.io import open_recording
     from artifactclean.io.pipeline import clean_recording
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
-    rec = simulate_recording(100.0, artifact=ArtifactSpec(freq_hz=13.0, dac_rate_hz=1000.0, drift_ppm=40.0,
+    rec = simulate_recording(100.0, artifact=ArtifactSpec(freq_hz=freq, dac_rate_hz=1000.0, drift_ppm=40.0,
                                                           channel_gains=(1.0, -0.6)),
                              blocks=[BlockSpec(1.0, 98.0, ramp_s=1.0)], seed=8, n_channels=2)
     with warnings.catch_warnings():
@@ -223,6 +225,7 @@ def test_pieces_with_a_dac_that_repeats_every_13_cycles_equal_the_whole_array(tm
         blk = io.read_block()
     prov = json.loads(blk.annotations["provenance"])
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2  # cleaned in pieces of time
-    assert prov["estimator_report"][0]["blocks"][0]["dac_cycles_per_period"] == 13
+    info = prov["estimator_report"][0]["blocks"][0]
+    assert info["dac_free_running"] if freq == 13.37 else info["dac_cycles_per_period"] == 13
     y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)

@@ -48,3 +48,19 @@ def test_no_period_when_the_ticks_never_repeat_soon():
     x, cycles, fs, f = _held_sine(13.37, 1000.0)  # every 1337 cycles
     assert find_dac_grid(x, cycles, fs, f) is None
     assert find_dac_period(x, cycles, fs, f) is None
+
+
+@pytest.mark.parametrize("freq", [13.37, 10.25, 7.3])
+def test_a_free_running_dac_clock_is_found(freq):
+    """Any number of updates per cycle (an individual alpha frequency from a 1 kHz DAC): the period
+    from the steps, then the ticks' phase; every sample's tick number as the staircase has it."""
+    from artifactclean.staircase import find_dac_clock
+
+    x, cycles, fs, f = _held_sine(freq, 1000.0)
+    clock = find_dac_clock(x, cycles, fs, f)
+    assert clock is not None
+    assert clock.ticks_per_cycle == pytest.approx(1000.0 / freq, rel=1e-6)  # the clock's drift cancels
+    # the held value is the waveform at the phase of the sample's tick
+    held = 4000.0 * np.cos(2 * np.pi * clock.held_cycles(clock.tick_index(cycles)))
+    inner = (clock.edge_distance(cycles) > 0.02) & (clock.edge_distance(cycles) < 0.98)
+    assert np.sqrt(np.mean((x - held)[inner] ** 2)) < 12.0  # the white noise (10 uV), no steps left

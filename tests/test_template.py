@@ -187,14 +187,15 @@ def test_the_heartbeat_is_not_brought_down_to_low_frequencies():
     assert np.std(low[plateau]) < 2.0, np.std(low[plateau])
 
 
-@pytest.mark.parametrize("freq, ticks, cycles", [(13.0, 1000, 13), (6.0, 500, 3)])
+@pytest.mark.parametrize("freq, ticks, cycles", [(13.0, 1000, 13), (6.0, 500, 3), (13.37, None, None)])
 def test_a_dac_whose_ticks_repeat_every_few_cycles(freq, ticks, cycles):
     """13 Hz and 6 Hz from a 1 kHz DAC: 76.9 and 166.7 updates per cycle, so no grid locked to the
     cycle exists and the staircase was left in the spike band (6x the noise, recall 0.09 at 13 Hz).
     The DAC and the waveform share the stimulator's clock: the ticks repeat every 13 (3) cycles, and
     the template's rows become those periods. A grid of 500 slots per 6 Hz cycle also fits every
     tick (each third slot, turning from cycle to cycle) and was taken before; the ticks' own spacing
-    rules it out."""
+    rules it out. 13.37 Hz repeats only every 1337 cycles: the template reads each sample at the phase
+    its tick held (a free-running clock)."""
     art = ArtifactSpec(freq_hz=freq, amplitude_uv=4000.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0,
                        dac_rate_hz=1000.0, channel_gains=(1.0, -0.7, 0.45, -1.2))
     rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=units4(kappa0=1.0)), seed=1)
@@ -204,7 +205,10 @@ def test_a_dac_whose_ticks_repeat_every_few_cycles(freq, ticks, cycles):
         warnings.simplefilter("error")  # no "not locked" warning: it is modelled
         est = TemplateSubtraction().fit(rec.data, fs=rec.fs, stim_freq=freq)
     info = est.report_["blocks"][0]
-    assert (info["dac_ticks_per_cycle"], info["dac_cycles_per_period"]) == (ticks, cycles)
+    if ticks is None:
+        assert info["dac_free_running"] and info["dac_ticks_per_cycle"] == pytest.approx(1000 / freq, rel=1e-5)
+    else:
+        assert (info["dac_ticks_per_cycle"], info["dac_cycles_per_period"]) == (ticks, cycles)
     s = score_cleaning(rec, est.transform(rec.data), lost=est.lost_)
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
     assert s["recall_ratio"] >= 0.99 and s["sixth_recall_min_over_max"] >= 0.95

@@ -22,7 +22,7 @@ from scipy import ndimage, signal
 from ..clipping import find_clipped
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, plateau_level, ramp_cutoff, segment_gain, segments_per_cycle
-from ..staircase import DacGrid, find_dac_grid, find_dac_period, step_rate
+from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
 
@@ -247,6 +247,7 @@ class CycleEstimator(ArtifactEstimator):
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
     #: whether the estimator models a DAC grid that repeats every few cycles (DacGrid.cycles_per_period)
+    #: or at any phase (DacClock)
     _dac_periods = False
 
     def for_channels(self, channels):
@@ -302,6 +303,8 @@ class CycleEstimator(ArtifactEstimator):
         unlocked = step_rate(x[ref], fs) if grid is None else 0.0
         if unlocked > _UNLOCKED_STEPS and self._dac_periods:
             grid = find_dac_period(x[ref], cycles, fs, f)
+            if grid is None:
+                grid = find_dac_clock(x[ref], cycles, fs, f)  # ticks at any phase: read where they held
             if grid is not None:
                 unlocked = 0.0
         return ref, grid, unlocked, response

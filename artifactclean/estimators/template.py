@@ -53,6 +53,7 @@ from scipy import ndimage
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
+from ..staircase import DacClock
 from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, trapezoid
 
 __all__ = ["TemplateSubtraction"]
@@ -83,7 +84,7 @@ def _median_of_positive(g: np.ndarray) -> np.ndarray:
     return typical
 
 
-def _shape(s, g, n_bins, k_groups, denoise, stride, per=1):
+def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, sparse=False):
     """Least-squares templates every ``stride`` cycles: windowed sum(w g x) / sum(w g^2).
 
     The window (``2 k_groups + 1`` groups of ``stride`` cycles) is centred on
@@ -106,6 +107,13 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1):
     g = _group_window(g, k_groups)
     with np.errstate(invalid="ignore", divide="ignore"):
         t = np.where(g > 0, s / np.where(g > 0, g, 1.0), 0.0)
+    if s_off is not None:
+        # the samples of a bin sit off its centre by s_off / g bins on average (a free-running DAC's
+        # ticks hold a few phases per bin): move each bin's mean to its centre along the template's
+        # slope, or reading at the exact phase would be off by up to half a bin times the slope
+        with np.errstate(invalid="ignore", divide="ignore"):
+            off = np.where(g > 0, _group_window(s_off, k_groups) / np.where(g > 0, g, 1.0), 0.0)
+        t = t - off * 0.5 * (np.roll(t, -1, axis=-1) - np.roll(t, 1, axis=-1))
     # a bin whose window holds almost no artifact energy (only cycles of near-zero gain, e.g.
     # margins, because the rest were clipped there) gives a ratio of noise to nothing: a hole
     # judged per template (locally), so a piece of a block decides as the whole block
@@ -124,7 +132,8 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1):
     # an alternating-current artifact has no mean over its cycle; a template mean would be
     # the slow LFP of the window, so it is removed (a stimulation DC offset stays in the data).
     # Templates with empty bins keep theirs: the mean of a gap-filled cycle is not the artifact's.
-    whole_rows = ~holes.any(axis=-1, keepdims=True)
+    # (with ``sparse``, empty bins are phases no tick happened to hold, not lost ones: no row is partial)
+    whole_rows = np.ones(holes.shape[:-1] + (1,), dtype=bool) if sparse else ~holes.any(axis=-1, keepdims=True)
     # one amplitude for every template of the block (the gain carries the amplitude): each
     # template is scaled to the block-average shape over its own usable bins, so gains fitted
     # against different templates agree and the template/gain alternation settles fast
@@ -281,14 +290,36 @@ class TemplateSubtraction(CycleEstimator):
         # the template's rows: cycles, or periods of a few cycles when a DAC's ticks repeat only so
         per = 1 if grid is None else grid.cycles_per_period
         k_rows = self._rows(k_half, per)
+        # a free-running DAC (any number of updates per cycle): samples are binned, and the template
+        # read, at the phase their tick held (DacClock.held_cycles), on bins of the cycle
+        free = isinstance(grid, DacClock)
         if grid is not None:
-            n_bins = grid.ticks_per_cycle
-            key = grid.tick_index(u)
+            ticks = grid.tick_index(u)
             # samples within a quarter sample of a tick edge are assigned by the data
             edge = grid.edge_distance(u)
-            delta = 0.25 * n_bins * f / (per * fs)
+            delta = 0.25 * grid.ticks_per_cycle * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
+        if free:
+            # a bin must hold many ticks, far apart in time, or it holds the LFP of a few moments:
+            # four bins per update (about 16 ticks each over 63 cycles), their means moved to the
+            # bins' centres and the template kept to its clear harmonics (_shape, every pass)
+            n_bins = int(min(max(16, 4 * np.ceil(grid.ticks_per_cycle)), max(16, round(fs / f))))
+
+            # tick numbers from the block's first (settle_edges keeps them >= 0)
+            tick0 = int(ticks[0])
+            ticks = ticks - tick0
+
+            def held_bins(tk):
+                """Bin keys of the held phases, and each sample's offset from its bin's centre (bins)."""
+                pos = grid.held_cycles(tk + tick0) * n_bins
+                b = np.floor(pos).astype(np.int64)
+                return b, pos - b - 0.5
+
+            key, bin_off = held_bins(ticks)
+        elif grid is not None:
+            n_bins = grid.ticks_per_cycle
+            key = ticks
         else:
             n_bins = max(4, int(round(fs / f)))
             key = np.floor(u * n_bins).astype(np.int64)
@@ -302,7 +333,18 @@ class TemplateSubtraction(CycleEstimator):
         n_grid = n_rows * n_bins
         n_groups = -(-n_rows // stride)
         k_groups = max(1, int(round(k_rows / stride)))
-        if grid is not None:
+        if free:
+            base_ticks = ticks.copy()
+            sampler = None
+
+            def read_free(tmpl, tk, out=None):
+                # linear interpolation between bin centres and between groups, at the held phase
+                uh = grid.held_cycles(tk + tick0) - row0
+                bpos = np.mod(uh, 1.0) * n_bins - 0.5
+                b0f = np.floor(bpos).astype(np.int64)
+                return grouped_eval(tmpl, n_bins, *group_position(uh, stride, n_groups), np.mod(b0f, n_bins),
+                                    np.mod(b0f + 1, n_bins), bpos - b0f, out=out, compiled=self.compiled)
+        elif grid is not None:
             # every sample of a DAC tick shares one held value
             base_key = key.copy()
             sampler = None
@@ -353,7 +395,16 @@ class TemplateSubtraction(CycleEstimator):
         for it in range(passes):
             # the harmonic clean-up only matters for the template that is subtracted
             denoise = self.denoise and it == passes - 1
-            if sampler is None:
+            if free:
+                if it > 0:
+                    ticks = settle_edges(xb[ref], gain[ref], lambda k, _: read_free(tmpl[ref:ref + 1], k)[0],
+                                         ticks, base_ticks, amb_lo, amb_hi)
+                    key, bin_off = held_bins(ticks)
+                    key -= row0 * n_bins
+                tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, self.denoise, stride,
+                                           bin_off=bin_off)
+                t_n = read_free(tmpl, ticks, out=None if it == 0 else t_n)
+            elif sampler is None:
                 if it > 0:
                     key = settle_edges(xb[ref], gain[ref], lambda k, _: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
                                         key, base_key, amb_lo, amb_hi)
@@ -377,6 +428,7 @@ class TemplateSubtraction(CycleEstimator):
             dac_cycles_per_period=None if grid is None else per,
             bins_per_cycle=n_bins,
             dac_ticks_per_cycle=None if grid is None else grid.ticks_per_cycle,
+            dac_free_running=free,
             dac_concentration=None if grid is None else grid.concentration,
             gain_segments_per_cycle=per_cycle if self.track_amplitude else 0,
             outliers_left_out=int(n_out),
@@ -420,9 +472,12 @@ class TemplateSubtraction(CycleEstimator):
         i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
         return grouped_eval(tmpl, n_bins, i0, i1, beta, b, b, np.zeros(key.size), compiled=self.compiled)
 
-    def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per=1):
+    def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per=1, bin_off=None):
         s, g = tick_sums(xb, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
-        return _shape(s, g, n_bins, k_groups, denoise, stride, per)
+        s_off = None
+        if bin_off is not None:  # sum w g^2 (offset from the bin centre)
+            s_off, _ = tick_sums(gain * bin_off, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
+        return _shape(s, g, n_bins, k_groups, denoise, stride, per, s_off, sparse=bin_off is not None)
 
     def _phase_template(self, xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride):
         gi, ga, inside = sampler

@@ -33,7 +33,7 @@ from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..estimators.base import check_stim_freq
-from ..staircase import find_dac_grid, find_dac_period, step_rate
+from ..staircase import find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
                         client_threads, open_client, ordered_results, piece_task)
@@ -526,12 +526,14 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         steps = step_rate(x[strongest], rec.fs)
         if grid is None and steps > 50.0:
             grid = find_dac_period(x[strongest], u, rec.fs, main.freq_hz)
+        free = grid is None and steps > 50.0 and find_dac_clock(x[strongest], u, rec.fs, main.freq_hz)
         dac = dict(ticks_per_cycle=None if grid is None else grid.ticks_per_cycle,
                    cycles_per_period=None if grid is None else grid.cycles_per_period,
+                   updates_per_cycle=float(free.ticks_per_cycle) if free else None,
                    steps_per_s=steps, locked=grid is not None)
     else:
-        dac = dict(ticks_per_cycle=None, cycles_per_period=None, steps_per_s=0.0, locked=False)
-    unlocked = not dac["locked"] and dac["steps_per_s"] > 50.0
+        dac = dict(ticks_per_cycle=None, cycles_per_period=None, updates_per_cycle=None, steps_per_s=0.0, locked=False)
+    unlocked = not dac["locked"] and dac["updates_per_cycle"] is None and dac["steps_per_s"] > 50.0
     frac = scan.n_at_rails / max(scan.n_samples, 1)
     chans = []
     for k, ch in enumerate(channels):
