@@ -25,6 +25,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .clipping import find_clipped
+
 __all__ = ["DacClock", "DacGrid", "find_dac_clock", "find_dac_grid", "find_dac_period", "step_rate"]
 
 
@@ -124,6 +126,8 @@ def find_dac_clock(x: np.ndarray, cycles: np.ndarray, fs: float, freq: float, *,
                    min_concentration: float = 0.85) -> DacClock | None:
     """A DAC staircase at any number of updates per cycle, from the steps' own spacing.
 
+    ``x`` is one channel or several (rows), whose steps are pooled.
+
     The update period comes from the steps (:func:`find_dac_period` does the
     same); the tick phase from a line through step times against tick
     numbers, converted to the stimulation phase of ``cycles`` (linear in
@@ -131,7 +135,7 @@ def find_dac_clock(x: np.ndarray, cycles: np.ndarray, fs: float, freq: float, *,
     ``min_concentration``.
     """
     x = np.asarray(x, dtype=np.float64)
-    if x.size < 64:
+    if x.shape[-1] < 64:
         return None
     fit = _tick_line(x, z_threshold)
     if fit is None:
@@ -262,6 +266,9 @@ def find_dac_period(
 ) -> DacGrid | None:
     """Look for a DAC staircase whose ticks repeat every few stimulation cycles.
 
+    ``x`` is one channel or several (rows, the first checked for the grid);
+    their steps are pooled for the update period.
+
     The update period is measured from the steps themselves (the spacing of
     consecutive steps, refined by a least-squares line through the step
     times against their tick numbers), which gives the updates per cycle
@@ -275,7 +282,7 @@ def find_dac_period(
         With ``cycles_per_period = q``; None when no such staircase is found.
     """
     x = np.asarray(x, dtype=np.float64)
-    if x.size < 64:
+    if x.shape[-1] < 64:
         return None
     period = _tick_period(x, z_threshold)
     if period is None:
@@ -284,7 +291,8 @@ def find_dac_period(
     for q in range(2, max_period + 1):
         m = round(q * rho)
         if m >= 3 and abs(q * rho - m) < 0.03:
-            grid = find_dac_grid(x, cycles, fs, freq, ticks=m, cycles_per_period=q, min_rate_hz=0.0)
+            grid = find_dac_grid(np.atleast_2d(x)[0], cycles, fs, freq, ticks=m, cycles_per_period=q,
+                                 min_rate_hz=0.0)
             if grid is not None:
                 return grid
     return None
@@ -297,11 +305,21 @@ def _tick_period(x: np.ndarray, z_threshold: float) -> float | None:
 
 
 def _tick_line(x: np.ndarray, z_threshold: float):
-    """``(period, t0, step times)``: ticks at samples ``t0 + k period``, from large steps; or None."""
-    qs, sigma = _step_statistic(x)
-    if sigma <= 0:
+    """``(period, t0, step times)``: ticks at samples ``t0 + k period``, from large steps; or None.
+
+    ``x`` is one channel, or several (rows) whose steps are pooled: one DAC drives them all, and a
+    weak channel shows few steps above the noise (and a clipped one none at its peaks).
+    """
+    pos = []
+    rows = np.atleast_2d(x)
+    lost = find_clipped(rows)
+    for row, at_rail in zip(rows, lost):
+        qs, sigma = _step_statistic(row, at_rail if at_rail.any() else None)
+        if sigma > 0:
+            pos.append(_step_positions(qs, z_threshold * sigma))
+    if not pos:
         return None
-    t = _step_positions(qs, z_threshold * sigma) + 1.5  # the step lies between samples i+1 and i+2
+    t = np.unique(np.concatenate(pos)) + 1.5  # the step lies between samples i+1 and i+2
     if t.size < 50:
         return None
     d = np.diff(t)
@@ -353,13 +371,21 @@ def step_rate(x: np.ndarray, fs: float, *, z_threshold: float = 8.0) -> float:
     return float(_step_positions(q, z_threshold * sigma).size / (x.size / fs))
 
 
-def _step_statistic(x: np.ndarray) -> tuple[np.ndarray, float]:
+def _step_statistic(x: np.ndarray, lost: np.ndarray | None = None) -> tuple[np.ndarray, float]:
     """The four-sample step statistic and its robust SD.
 
     Between samples i and i+1, ``(-x[i-1] + 3 x[i] - 3 x[i+1] + x[i+2]) / 2``
     is ~0 to third order for a smooth waveform and ``-s`` for a step ``s``.
+    Windows touching a ``lost`` sample (a rail) are set to 0 and left out of
+    the SD: a rail's flat stretches would make it 0, and its edges look like steps.
     """
     q = 0.5 * (-x[:-3] + 3 * x[1:-2] - 3 * x[2:-1] + x[3:])
+    if lost is not None:
+        ok = ~(lost[:-3] | lost[1:-2] | lost[2:-1] | lost[3:])
+        q = np.where(ok, q, 0.0)
+        if ok.sum() < 16:
+            return q, 0.0
+        return q, float(1.4826 * np.median(np.abs(q[ok] - np.median(q[ok]))))
     return q, float(1.4826 * np.median(np.abs(q - np.median(q))))
 
 

@@ -213,3 +213,16 @@ def test_a_dac_whose_ticks_repeat_every_few_cycles(freq, ticks, cycles):
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
     assert s["recall_ratio"] >= 0.99 and s["sixth_recall_min_over_max"] >= 0.95
     assert max(s["lfp_band_ratio"]) <= 2.0
+
+
+def test_a_free_running_dac_is_found_when_the_strongest_channels_are_clipped():
+    """The DAC search pools the steps of the four strongest channels, between their rails: the
+    unclipped reference (0.7 of the strongest) alone showed too few steps above the noise, and a
+    clipped channel's flat rails made its step statistic's spread 0 (every noise sample a step)."""
+    art = ArtifactSpec(freq_hz=13.37, amplitude_uv=4000.0, drift_ppm=40.0, dac_rate_hz=1000.0, clip_uv=3600.0,
+                       channel_gains=(1.0, -0.7, 0.45, -1.2))
+    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=units4()), seed=2)
+    est = TemplateSubtraction().fit(rec.data, fs=rec.fs, stim_freq=13.37)
+    assert est.report_["blocks"][0]["dac_free_running"]
+    s = score_cleaning(rec, est.transform(rec.data), lost=est.lost_)
+    assert max(s["spikeband_residual"][1:3]) <= 0.1, s["spikeband_residual"]  # the unclipped channels

@@ -300,11 +300,14 @@ class CycleEstimator(ArtifactEstimator):
         grid = find_dac_grid(x[ref], cycles, fs, f)
         # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
         # unless its ticks repeat every few cycles and the estimator models periods of cycles
-        unlocked = step_rate(x[ref], fs) if grid is None else 0.0
+        # the four strongest channels (one DAC drives them all: a weaker reference shows few steps;
+        # a clipped one shows them between its rails)
+        strong = x[[ref] + [int(c) for c in np.argsort(spread)[::-1] if c != ref][:3]]
+        unlocked = max(step_rate(row, fs) for row in strong) if grid is None else 0.0
         if unlocked > _UNLOCKED_STEPS and self._dac_periods:
-            grid = find_dac_period(x[ref], cycles, fs, f)
+            grid = find_dac_period(strong, cycles, fs, f)
             if grid is None:
-                grid = find_dac_clock(x[ref], cycles, fs, f)  # ticks at any phase: read where they held
+                grid = find_dac_clock(strong, cycles, fs, f)  # ticks at any phase: read where they held
             if grid is not None:
                 unlocked = 0.0
         return ref, grid, unlocked, response

@@ -84,7 +84,7 @@ def _median_of_positive(g: np.ndarray) -> np.ndarray:
     return typical
 
 
-def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, sparse=False):
+def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, occupied=None):
     """Least-squares templates every ``stride`` cycles: windowed sum(w g x) / sum(w g^2).
 
     The window (``2 k_groups + 1`` groups of ``stride`` cycles) is centred on
@@ -132,8 +132,15 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, sparse=Fa
     # an alternating-current artifact has no mean over its cycle; a template mean would be
     # the slow LFP of the window, so it is removed (a stimulation DC offset stays in the data).
     # Templates with empty bins keep theirs: the mean of a gap-filled cycle is not the artifact's.
-    # (with ``sparse``, empty bins are phases no tick happened to hold, not lost ones: no row is partial)
-    whole_rows = np.ones(holes.shape[:-1] + (1,), dtype=bool) if sparse else ~holes.any(axis=-1, keepdims=True)
+    if occupied is None:
+        whole_rows = ~holes.any(axis=-1, keepdims=True)
+    else:
+        # held phases: a bin without usable weight may be one no tick of the window held, or one held
+        # only on a ramp's foot; both are gaps in the sampling, filled along the cycle. A row is
+        # partial only where most of a bin's samples were there and unusable (clipping)
+        every, usable = (_group_window(o, k_groups) for o in occupied)
+        lost_bins = holes & (usable < 0.5 * every)
+        whole_rows = ~lost_bins.any(axis=-1, keepdims=True)
     # one amplitude for every template of the block (the gain carries the amplitude): each
     # template is scaled to the block-average shape over its own usable bins, so gains fitted
     # against different templates agree and the template/gain alternation settles fast
@@ -474,10 +481,14 @@ class TemplateSubtraction(CycleEstimator):
 
     def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per=1, bin_off=None):
         s, g = tick_sums(xb, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
-        s_off = None
-        if bin_off is not None:  # sum w g^2 (offset from the bin centre)
+        s_off = occupied = None
+        if bin_off is not None:  # held phases: sum w g^2 (offset from the bin centre), and samples per bin
             s_off, _ = tick_sums(gain * bin_off, w, gain, key, n_bins, stride, n_groups, compiled=self.compiled)
-        return _shape(s, g, n_bins, k_groups, denoise, stride, per, s_off, sparse=bin_off is not None)
+            ones = np.ones_like(w)
+            every, usable = tick_sums(ones, ones, (w > 0).astype(np.float64), key, n_bins, stride, n_groups,
+                                      compiled=self.compiled)
+            occupied = (every, usable)
+        return _shape(s, g, n_bins, k_groups, denoise, stride, per, s_off, occupied)
 
     def _phase_template(self, xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride):
         gi, ga, inside = sampler
