@@ -24,10 +24,11 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, signal
 
-from .estimators._kernels import gain_sums
+from .estimators._kernels import gain_sums, quadrature_sums, segment_stats
 
 __all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
-           "segment_gain", "segments_per_cycle", "smooth_gain", "to_middles", "cycle_slope"]
+           "phase_highpass", "phase_shift", "segment_gain", "segment_phase", "segments_per_cycle", "smooth_gain",
+           "to_middles", "cycle_slope"]
 
 #: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
 #: filter's transition
@@ -64,13 +65,34 @@ class GainResponse:
         Between 0 and 1.
     rate : float
         Rate (Hz) of the gain samples the response was designed for.
+    phase : ndarray, shape (n_channels, n_freqs), optional
+        The response for the artifact's phase shift (:func:`segment_phase`),
+        designed from its own spectrum with nothing always passed.
     """
 
     freqs: np.ndarray
     response: np.ndarray
     rate: float
+    phase: np.ndarray | None = None
 
-    def taps(self, ch: int, rate: float | None = None) -> np.ndarray:
+    def rows(self, rows) -> "GainResponse":
+        """The responses of channels ``rows`` only."""
+        return GainResponse(self.freqs, self.response[rows], self.rate,
+                            None if self.phase is None else self.phase[rows])
+
+    def phase_taps(self, ch: int, rate: float | None = None) -> np.ndarray | None:
+        """Zero-phase FIR taps for channel ``ch``'s phase shift; None where nothing passes.
+
+        As :meth:`taps`, but 0 at 0 Hz and not scaled to a unit gain there: the
+        shift passes at its lines only (its mean is the template's).
+        """
+        if self.phase is None or not np.any(self.phase[ch][self.freqs > 0] > 0.5):
+            return None
+        phase = self.phase.copy()
+        phase[:, self.freqs == 0] = 0.0
+        return GainResponse(self.freqs, phase, self.rate).taps(ch, rate, unit_dc=False)
+
+    def taps(self, ch: int, rate: float | None = None, unit_dc: bool = True) -> np.ndarray:
         """Symmetric FIR taps (``scipy.signal.firwin2``) for channel ``ch`` at ``rate``.
 
         The response ``r`` is multiplied by ``(1 / sinc(f / rate)^3) ** r``
@@ -95,7 +117,7 @@ class GainResponse:
         taps = signal.firwin2(numtaps, f, r, fs=rate, window="hann")
         # the window smooths the response near 0 Hz too: restore a unit gain there exactly,
         # or the whole artifact would be scaled by a few per cent
-        return taps / taps.sum()
+        return taps / taps.sum() if unit_dc else taps
 
     def passed_lines(self, ch: int = 0) -> list[float]:
         """Frequencies (Hz) above :data:`FOLLOW_HZ` where the response passes more than half."""
@@ -198,6 +220,122 @@ def cycle_slope(g: np.ndarray, per_cycle: int) -> np.ndarray:
         return np.zeros_like(g)
     mean = ndimage.uniform_filter1d(g, per_cycle, axis=-1, mode="nearest") if per_cycle > 1 else g
     return np.gradient(mean, axis=-1)
+
+
+def phase_highpass(f: float, fs: float) -> np.ndarray:
+    """Second-order sections of the zero-phase high-pass at ``f / 2`` the phase-shift fits use.
+
+    Over a part of a cycle the slow LFP is a slope, which projects on the
+    template's phase derivative; removed, the fit sees the artifact and the
+    neural signal near its harmonics only. The data and both regressors go
+    through the same filter (``scipy.signal.sosfiltfilt``), so the filter's
+    own gain at the harmonics cancels.
+    """
+    return signal.butter(2, 0.5 * f, "highpass", fs=fs, output="sos")
+
+
+def phase_shift(xh: np.ndarray, th: np.ndarray, dh: np.ndarray, w: np.ndarray, seg_starts: np.ndarray,
+                *, compiled: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """Phase shift (cycles) per segment from high-passed data, template and derivative.
+
+    Per segment, ``xh = g th + h dh`` by least squares; the shift is ``h /
+    g``. Returns the shift and a mask of the segments where it is defined
+    (the two regressors told apart, ``g`` not small).
+    """
+    num, den, _, _ = segment_stats(xh, w, th, seg_starts, compiled=compiled)
+    sxd, std_, sdd = quadrature_sums(xh, w, th, dh, seg_starts, compiled=compiled)
+    det = den * sdd - std_ * std_
+    ok = det > 1e-6 * np.maximum(den * sdd, 1e-300)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        g = np.where(ok, (num * sdd - sxd * std_) / np.where(ok, det, 1.0), 0.0)
+        h = np.where(ok, (sxd * den - num * std_) / np.where(ok, det, 1.0), 0.0)
+        typical = np.median(np.abs(g), axis=-1, keepdims=True)
+        ok &= np.abs(g) > 0.1 * typical
+        return np.where(ok, h / np.where(ok, g, 1.0), 0.0), ok
+
+
+def segment_phase(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
+                  per_cycle: int) -> tuple[np.ndarray, float]:
+    """Phase shift (cycles) of each channel per part of a cycle against the stretch's mean cycle.
+
+    The mean cycle ``T`` and its phase derivative, read at the samples, and
+    the data are high-passed alike (:func:`phase_highpass`) and fitted per
+    segment (:func:`phase_shift`): an artifact ``T(u + eta)`` is ``T + eta
+    T'`` to first order. Segments where the shift is undefined take their
+    neighbours'.
+
+    Returns
+    -------
+    eta : ndarray, shape (n_channels, n_segments)
+    rate : float
+        Samples of ``eta`` per second.
+    """
+    n_bins = max(8, int(round(fs / f)))
+    b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
+    seg = np.floor(u * per_cycle).astype(np.int64)
+    starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
+    sos = phase_highpass(f, fs)
+    eta = np.zeros((x.shape[0], starts.size))
+    for ch in range(x.shape[0]):
+        cnt = np.bincount(b, w[ch], n_bins)
+        tmpl = np.bincount(b, w[ch] * x[ch], n_bins) / np.maximum(cnt, 1e-12)
+        tmpl -= tmpl.mean()
+        deriv = _smooth_derivative(tmpl)
+        keep = w[ch] > 0
+        xh, th, dh = (signal.sosfiltfilt(sos, v * keep)[None] for v in (x[ch], tmpl[b], deriv[b]))
+        e, ok = phase_shift(xh, th, dh, w[ch:ch + 1], starts)
+        if ok[0].sum() >= 2:
+            eta[ch] = np.interp(np.arange(starts.size), np.flatnonzero(ok[0]), e[0, ok[0]])
+    return eta, f * per_cycle
+
+
+def _smooth_derivative(tmpl: np.ndarray, max_harmonic: int = 20) -> np.ndarray:
+    """d/du (per cycle) of a mean cycle from its harmonics up to ``max_harmonic`` above 1% of the largest.
+
+    A DAC's mean cycle is a staircase, whose differences are spikes at the
+    steps; the phase shift moves the waveform the steps hold, whose
+    derivative its first harmonics give.
+    """
+    c = np.fft.rfft(tmpl)
+    k = np.arange(c.size)
+    keep = (k >= 1) & (k <= max_harmonic) & (np.abs(c) > 0.01 * np.abs(c[1:]).max(initial=0.0))
+    return np.fft.irfft(np.where(keep, 2j * np.pi * k * c, 0.0), n=tmpl.size)
+
+
+def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float, per_cycle: int,
+                gain: np.ndarray, eta: np.ndarray, response: "GainResponse") -> np.ndarray:
+    """Per channel, whether following the phase shift leaves less artifact beside the fundamental.
+
+    An amplitude that changes within a segment also moves the fitted shift
+    (at the heartbeat's lines, with no phase modulation at all), and the
+    shift's response passes those lines. Here the stretch is modelled both
+    ways, the mean cycle times the filtered gain with and without the
+    filtered shift, and the shift is kept where it takes at least a fifth off
+    the residual power within 0.3-3 Hz of the fundamental (high-passed at
+    ``f / 2``).
+    """
+    n_bins = max(8, int(round(fs / f)))
+    b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
+    centres = (np.floor(u[0] * per_cycle) + np.arange(gain.shape[1]) + 0.5) / per_cycle
+    sos = phase_highpass(f, fs)
+    freqs = np.fft.rfftfreq(u.size, 1.0 / fs)
+    near = (np.abs(freqs - f) >= 0.3) & (np.abs(freqs - f) <= 3.0)
+    keep = np.zeros(x.shape[0], dtype=bool)
+    for ch in range(x.shape[0]):
+        taps = response.phase_taps(ch)
+        if taps is None:
+            continue
+        cnt = np.bincount(b, w[ch], n_bins)
+        tmpl = np.bincount(b, w[ch] * x[ch], n_bins) / np.maximum(cnt, 1e-12)
+        tmpl -= tmpl.mean()
+        deriv = _smooth_derivative(tmpl)
+        g = np.interp(u, centres, ndimage.convolve1d(gain[ch], response.taps(ch), mode="nearest"))
+        e = np.interp(u, centres, ndimage.convolve1d(eta[ch], taps, mode="nearest"))
+        r0 = (x[ch] - g * tmpl[b]) * (w[ch] > 0)
+        r1 = r0 - g * e * deriv[b] * (w[ch] > 0)
+        p0, p1 = (np.sum(np.abs(np.fft.rfft(signal.sosfiltfilt(sos, r)))[near] ** 2) for r in (r0, r1))
+        keep[ch] = p1 < 0.8 * p0
+    return keep
 
 
 def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_hz: float = 2.0,

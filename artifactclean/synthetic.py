@@ -81,6 +81,9 @@ class ArtifactSpec:
     ``heart_harmonics`` lists ``(relative_amplitude, phase_rad)`` for
     harmonics 2, 3, ... of the cardiac rate in the impedance pulse (the
     pulse is not a sinusoid); empty for a sinusoidal heartbeat.
+    ``heart_phase_deg`` is the peak phase shift the pulse puts on the
+    artifact (the electrode-tissue interface is partly capacitive), to first
+    order: the waveform's phase derivative, held like it, times the shift.
     """
 
     freq_hz: float = 20.0
@@ -92,6 +95,7 @@ class ArtifactSpec:
     heart_harmonics: Sequence[tuple[float, float]] = ((0.5, 0.3), (0.25, 0.6))
     resp_rate_hz: float = 0.3
     resp_depth: float = 0.01
+    heart_phase_deg: float = 0.0
     drift_ppm: float = 40.0
     dac_rate_hz: float | None = None
     clip_uv: float | None = None
@@ -214,6 +218,14 @@ def _harmonic_sum(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -
     return out
 
 
+def _harmonic_derivative(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -> np.ndarray:
+    """d/dphase of :func:`_harmonic_sum`."""
+    out = -np.sin(phase)
+    for k, (rel, ph) in enumerate(harmonics, start=2):
+        out = out - k * rel * np.sin(k * phase + ph)
+    return out
+
+
 def _heart_shape(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -> np.ndarray:
     # pulsatile, not sinusoidal: harmonics of the cardiac rate, scaled to peak |1|
     peak = np.abs(_harmonic_sum(np.linspace(0, 2 * np.pi, 3600, endpoint=False), harmonics)).max()
@@ -249,8 +261,9 @@ def _oscillation(n_channels: int, n: int, fs: float, f0: float, amp: float, rng)
 
 
 def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpec], rng):
-    """Stimulator output (unit peak fundamental), true phase and block table."""
+    """Stimulator output (unit peak fundamental), true phase, block table, and the output's phase derivative."""
     out = np.zeros(n)
+    quad = np.zeros(n)
     phase = np.full(n, np.nan)
     table = []
     clock = 1.0 + spec.drift_ppm * 1e-6
@@ -279,6 +292,7 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
         if blk.ramp_s > 0:
             env = np.clip(np.minimum(t_held, dur - t_held) / blk.ramp_s, 0.0, 1.0)
         out[i0_:i1_] = blk.amplitude_scale * env * wave
+        quad[i0_:i1_] = blk.amplitude_scale * env * _harmonic_derivative(ph_held, spec.harmonics)
         phase[i0_:i1_] = np.mod(2 * np.pi * f_true * t + blk.phase0, 2 * np.pi)
         table.append(
             dict(
@@ -291,7 +305,7 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
                 amplitude_uv=spec.amplitude_uv * blk.amplitude_scale,
             )
         )
-    return out, phase, table
+    return out, phase, table, quad
 
 
 def _spike_train(unit: UnitSpec, duration: float, stim_phase: np.ndarray, fs: float, rng) -> np.ndarray:
@@ -357,7 +371,7 @@ def simulate_recording(
     rng = np.random.default_rng(seed)
     n = int(round(duration_s * fs))
 
-    stim, phase, table = _stimulator(n, fs, artifact, blocks, rng)
+    stim, phase, table, quad = _stimulator(n, fs, artifact, blocks, rng)
     gains = np.asarray(
         artifact.channel_gains if artifact.channel_gains is not None else 1.0 - 0.15 * np.arange(n_channels),
         dtype=float,
@@ -365,9 +379,13 @@ def simulate_recording(
     if gains.shape != (n_channels,):
         raise ValueError(f"channel_gains needs {n_channels} values, got {gains.size}")
     mod = np.ones(n)
-    if artifact.heart_depth:
-        mod += artifact.heart_depth * _heart_shape(_smooth_rate_phase(n, fs, artifact.heart_rate_hz, 0.03, rng),
-                                                   artifact.heart_harmonics)
+    if artifact.heart_depth or artifact.heart_phase_deg:
+        heart = _heart_shape(_smooth_rate_phase(n, fs, artifact.heart_rate_hz, 0.03, rng), artifact.heart_harmonics)
+        mod += artifact.heart_depth * heart
+        if artifact.heart_phase_deg:
+            # the electrode-tissue interface is partly capacitive: the pulse also shifts the
+            # artifact's phase, w(phase + d) = w + d w' to first order (w' held like w by the DAC)
+            stim = stim + np.deg2rad(artifact.heart_phase_deg) * heart * quad
     if artifact.resp_depth:
         mod += artifact.resp_depth * np.sin(_smooth_rate_phase(n, fs, artifact.resp_rate_hz, 0.05, rng))
     art = artifact.amplitude_uv * gains[:, None] * (mod * stim)[None, :]

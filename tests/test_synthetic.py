@@ -132,3 +132,30 @@ def test_heartbeat_depth_is_the_peak_change_and_its_harmonics_are_sidebands(harm
         assert second > 0.1 * first  # (0.5)^2 = 0.25 in power, smeared by the rate wander
     else:
         assert second < 1e-4 * first  # window leakage only
+
+
+def test_heartbeat_phase_shift_of_the_artifact():
+    """heart_phase_deg shifts the artifact's phase with the pulse: the fundamental's phase
+    (demodulated at the true frequency, scipy.signal.butter + filtfilt) swings by the set peak."""
+    from scipy import signal
+
+    fs, f = 30000.0, 20.0
+    art = ArtifactSpec(freq_hz=f, heart_depth=0.0, resp_depth=0.0, heart_phase_deg=2.0, heart_harmonics=(),
+                       harmonics=(), drift_ppm=0.0, lsb_uv=None)
+    rec = simulate_recording(12.0, fs, 1, artifact=art, blocks=[BlockSpec(1.0, 10.0, ramp_s=0.5)], seed=3,
+                             neural=NeuralSpec(noise_uv=0.0, lfp_uv=0.0, oscillation_uv=0.0, units=[]))
+    t = np.arange(rec.n_samples) / fs
+    z = rec.artifact[0] * np.exp(-2j * np.pi * f * t)
+    sos = signal.butter(4, 8.0, fs=fs, output="sos")
+    lp = signal.sosfiltfilt(sos, z.real) + 1j * signal.sosfiltfilt(sos, z.imag)
+    plateau = slice(int(3 * fs), int(9 * fs))
+    phase = np.degrees(np.unwrap(np.angle(lp[plateau])))
+    assert (phase.max() - phase.min()) / 2 == pytest.approx(2.0, rel=0.1)
+    # and no phase swing without it
+    flat = simulate_recording(12.0, fs, 1, artifact=ArtifactSpec(freq_hz=f, heart_depth=0.0, resp_depth=0.0,
+                                                                  harmonics=(), drift_ppm=0.0, lsb_uv=None),
+                              blocks=[BlockSpec(1.0, 10.0, ramp_s=0.5)], seed=3,
+                              neural=NeuralSpec(noise_uv=0.0, lfp_uv=0.0, oscillation_uv=0.0, units=[]))
+    z0 = flat.artifact[0] * np.exp(-2j * np.pi * f * t)
+    lp0 = signal.sosfiltfilt(sos, z0.real) + 1j * signal.sosfiltfilt(sos, z0.imag)
+    assert np.ptp(np.degrees(np.unwrap(np.angle(lp0[plateau])))) < 0.01

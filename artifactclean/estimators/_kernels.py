@@ -19,7 +19,8 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
     HAVE_NUMBA = False
 
-__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "gain_sums", "highpass_residual",
+__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "quadrature_sums", "gain_sums",
+           "highpass_residual",
            "lerp_positions", "lerp_rows", "widen_flags"]
 
 
@@ -231,6 +232,38 @@ def _segment_stats_loop(x, w, t, env, use_env, seg_starts, num, den, full, centr
             centre[ch, k] = (sptt - st / sw * spt) / d if d > 0 else 0.0
 
 
+def _quadrature_sums_loop(x, w, t, d, env, use_env, seg_starts, sxd, std_, sdd):
+    n_ch, n = x.shape
+    n_seg = seg_starts.size
+    for ch in range(n_ch):
+        for k in range(n_seg):
+            a = seg_starts[k]
+            b = seg_starts[k + 1] if k + 1 < n_seg else n
+            sw = 0.0
+            sx = 0.0
+            st = 0.0
+            sd = 0.0
+            sxd_ = 0.0
+            stdd = 0.0
+            sddd = 0.0
+            for i in range(a, b):
+                e = env[i] if use_env else 1.0
+                tt = t[ch, i] * e
+                dd = d[ch, i] * e
+                wi = w[ch, i]
+                sw += wi
+                sx += wi * x[ch, i]
+                st += wi * tt
+                sd += wi * dd
+                sxd_ += wi * x[ch, i] * dd
+                stdd += wi * tt * dd
+                sddd += wi * dd * dd
+            sw = max(sw, 1e-300)
+            sxd[ch, k] = sxd_ - sx * sd / sw
+            std_[ch, k] = stdd - st * sd / sw
+            sdd[ch, k] = sddd - sd * sd / sw
+
+
 def _gain_bin_sums_loop(x, w, b, cnt, sbx):
     # the order of the additions is that of numpy.bincount, so the sums agree to the bit
     for ch in range(x.shape[0]):
@@ -342,6 +375,7 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, pos, *, compiled: bool = True):
 _phase_sums_c = _jit(_phase_sums_loop)
 _tick_sums_c = _jit(_tick_sums_loop)
 _segment_stats_c = _jit(_segment_stats_loop)
+_quadrature_sums_c = _jit(_quadrature_sums_loop)
 _grouped_eval_c = _jit(_grouped_eval_loop)
 
 
@@ -377,6 +411,33 @@ def tick_sums(x, w, gain, key, n_bins, stride, n_groups, *, compiled: bool = Tru
     g = np.zeros_like(s)
     _tick_sums_c(x, w, gain, key, n_bins, stride, s, g)
     return s.reshape(-1, n_groups, n_bins), g.reshape(-1, n_groups, n_bins)
+
+
+def quadrature_sums_np(x, w, t, d, seg_starts, env=None):
+    """Per gain segment, about each segment's own (weighted) means: sum w x d, sum w t d, sum w d^2.
+
+    With :func:`segment_stats`, the normal equations of ``x = g t + h d +
+    offset`` per segment (``d`` the template's phase derivative: ``h / g`` is
+    the artifact's phase shift there). With ``env`` (n,), ``t`` and ``d`` are
+    multiplied by it.
+    """
+    if env is not None:
+        t, d = t * env, d * env
+    red = lambda v: np.add.reduceat(v, seg_starts, axis=-1)  # noqa: E731
+    sw = np.maximum(red(w), 1e-300)
+    sx, st, sd = red(w * x), red(w * t), red(w * d)
+    return red(w * x * d) - sx * sd / sw, red(w * t * d) - st * sd / sw, red(w * d * d) - sd * sd / sw
+
+
+def quadrature_sums(x, w, t, d, seg_starts, env=None, *, compiled: bool = True):
+    if not (compiled and HAVE_NUMBA):
+        return quadrature_sums_np(x, w, t, d, seg_starts, env)
+    shape = (x.shape[0], seg_starts.size)
+    out = np.empty(shape), np.empty(shape), np.empty(shape)
+    use_env = env is not None
+    _quadrature_sums_c(x, w, t, d, np.asarray(env, dtype=np.float64) if use_env else np.ones(1), use_env, seg_starts,
+                       *out)
+    return out
 
 
 def segment_stats(x, w, t, seg_starts, env=None, *, compiled: bool = True):

@@ -21,7 +21,7 @@ from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
-    lowpass_taps, plateau_level, ramp_cutoff, segment_gain, segments_per_cycle
+    lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle
 from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
@@ -160,7 +160,7 @@ def _subset_plan(plan, fit: list[int]):
         new_ref = len(rows)
         rows.append(ref)
     if response is not None:
-        response = GainResponse(response.freqs, response.response[rows], response.rate)
+        response = response.rows(rows)
     if decided is not None:
         decided = [decided[i] for i in rows]
     return BlockPlan(new_ref, grid, unlocked, response, decided)
@@ -293,8 +293,17 @@ class CycleEstimator(ArtifactEstimator):
         response = None
         if self.track_amplitude:
             per_cycle = segments_per_cycle(self.tracking_hz, f)
-            raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+            usable = (~find_clipped(x)).astype(np.float64)
+            raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
             response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
+            if getattr(self, "track_phase", False):
+                # the phase shift's own lines pass, nothing always does: without a phase modulation
+                # the shift is the neural floor, which the derivative would copy onto every harmonic
+                eta, _ = segment_phase(x, usable, cycles, fs, f, per_cycle)
+                response.phase = design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=0.0,
+                                                      over_subtraction=4.0).response
+                # kept only where following it takes artifact off beside the fundamental
+                response.phase[~phase_helps(x, usable, cycles, fs, f, per_cycle, raw, eta, response)] = 0.0
         if self.dac != "auto":
             return ref, None, 0.0, response
         grid = find_dac_grid(x[ref], cycles, fs, f)
@@ -532,7 +541,7 @@ class RowModelEstimator(CycleEstimator):
         a, b = self._decide_stretch(blk, fs, bounds)
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         x = np.asarray(read(a, b, rows), dtype=np.float64)
-        sub = None if response is None else GainResponse(response.freqs, response.response[rows], response.rate)
+        sub = None if response is None else response.rows(rows)
         # the same passes as a range (outliers left out before the choices that count)
         *_, chosen = self._passes(x, (~find_clipped(x)).astype(np.float64), cycles, fs, blk, a, grid, sub, None,
                                   artifact=False)

@@ -48,10 +48,11 @@ from __future__ import annotations
 
 
 import numpy as np
-from scipy import ndimage
+from scipy import ndimage, signal
 
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import _FOOT, cycle_slope, ramp_cutoff, segments_per_cycle, smooth_gain, to_middles
+from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, smooth_gain, \
+    to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
 from ..staircase import DacClock
 from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, trapezoid
@@ -66,6 +67,12 @@ def _group_window(grp: np.ndarray, k_groups: int) -> np.ndarray:
     np.cumsum(grp, axis=1, out=c[:, 1:])
     idx = np.arange(n_groups)
     return c[:, np.minimum(idx + k_groups + 1, n_groups)] - c[:, np.maximum(idx - k_groups, 0)]
+
+
+def _phase_derivative(t: np.ndarray, n_bins: int) -> np.ndarray:
+    """d/du of each template (rows of ``n_bins`` bins): central differences, periodic."""
+    r = t.reshape(t.shape[0], -1, n_bins)
+    return (0.5 * n_bins * (np.roll(r, -1, axis=-1) - np.roll(r, 1, axis=-1))).reshape(t.shape)
 
 
 def _median_of_positive(g: np.ndarray) -> np.ndarray:
@@ -213,6 +220,14 @@ class TemplateSubtraction(CycleEstimator):
     compiled : bool
         Use the numba-compiled inner loops when numba is installed (same
         numbers as the numpy ones, several times faster).
+    track_phase : bool
+        With ``track_amplitude``, also follow a phase shift of the artifact
+        where the block's plan finds it modulated: electrode impedance is
+        partly capacitive, so heartbeat and respiration shift the artifact's
+        phase as well as its amplitude (Noury & Siegel 2017, NeuroImage). The
+        template's phase derivative times the shift, fitted per gain segment
+        on high-passed data and filtered to the shift's own lines, is added to
+        the template.
 
     Attributes
     ----------
@@ -235,6 +250,7 @@ class TemplateSubtraction(CycleEstimator):
         outlier_z: float = 5.0,
         denoise: bool = True,
         compiled: bool = True,
+        track_phase: bool = True,
     ):
         self.n_cycles = n_cycles
         self.robust = robust
@@ -245,6 +261,7 @@ class TemplateSubtraction(CycleEstimator):
         self.outlier_z = outlier_z
         self.denoise = denoise
         self.compiled = compiled
+        self.track_phase = track_phase
 
     @property
     def context_cycles(self) -> float:  # type: ignore[override]
@@ -442,7 +459,46 @@ class TemplateSubtraction(CycleEstimator):
             censored_samples=0 if censored is None else int(censored.sum()),
             unlocked_dac_steps_per_s=float(unlocked),
         )
+        shifted = False
+        if self.track_phase and self.track_amplitude and response is not None and any(
+                response.phase_taps(min(ch, response.response.shape[0] - 1)) is not None for ch in range(n_ch)):
+            # the phase shift, where the block's plan found it modulated (heartbeat, respiration)
+            if free:
+                d_tm = read_free(_phase_derivative(tmpl, n_bins), ticks)
+            elif sampler is None:
+                d_tm = self._read_ticks(_phase_derivative(tmpl, n_bins), key, n_bins, stride, n_groups)
+            else:
+                d_tm = grouped_eval(_phase_derivative(tmpl, n_bins), n_bins, *reader, compiled=self.compiled)
+            t_n += self._phase_term(xb, w, gain, t_n, d_tm, fs, f, seg_starts, seg_u, seg_pos, f * per_cycle,
+                                    response, seg_env)
+            shifted = True
+        info["phase_shift_followed"] = shifted
         return np.multiply(gain, t_n, out=t_n), info, censored
+
+    def _phase_term(self, xb, w, gain, t_n, d_n, fs, f, seg_starts, seg_u, seg_pos, seg_rate, response, seg_env):
+        """``eta d_n``: the template's phase derivative times the filtered phase shift (cycles).
+
+        The shift is fitted per gain segment on data and regressors high-passed
+        alike (:func:`artifactclean.modulation.phase_shift`) and filtered by the
+        block's phase response (its own lines only); it is 0 in the margins.
+        """
+        sos = phase_highpass(f, fs)
+        keep = (w > 0).astype(np.float64)
+        xh = signal.sosfiltfilt(sos, xb * keep, axis=-1)
+        th = signal.sosfiltfilt(sos, gain * t_n * keep, axis=-1)
+        dh = signal.sosfiltfilt(sos, gain * d_n * keep, axis=-1)
+        eta_seg, ok = phase_shift(xh, th, dh, w, seg_starts, compiled=self.compiled)
+        eta = np.zeros_like(eta_seg)
+        for ch in range(eta.shape[0]):
+            taps = response.phase_taps(min(ch, response.response.shape[0] - 1), seg_rate)
+            # on the plateau and the upper half of the ramps: lower, the shift is a ratio of small numbers
+            use = ok[ch] & (seg_env > 0.5)
+            if taps is None or use.sum() < 2:
+                continue
+            filled = np.interp(seg_u, seg_u[use], eta_seg[ch, use])
+            eta[ch] = ndimage.convolve1d(filled, taps, mode="nearest")
+        eta[:, seg_env <= _FOOT] = 0.0
+        return lerp_rows(eta, *seg_pos, compiled=self.compiled) * d_n
 
     def _censored(self, wb, sampler, key, reader, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in some cycle of the window.
