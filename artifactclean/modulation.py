@@ -255,7 +255,7 @@ def phase_shift(xh: np.ndarray, th: np.ndarray, dh: np.ndarray, w: np.ndarray, s
 
 
 def segment_phase(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
-                  per_cycle: int) -> tuple[np.ndarray, float]:
+                  per_cycle: int, segments: tuple[int, int] | None = None) -> tuple[np.ndarray, float]:
     """Phase shift (cycles) of each channel per part of a cycle against the stretch's mean cycle.
 
     The mean cycle ``T`` and its phase derivative, read at the samples, and
@@ -263,6 +263,9 @@ def segment_phase(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: flo
     segment (:func:`phase_shift`): an artifact ``T(u + eta)`` is ``T + eta
     T'`` to first order. Segments where the shift is undefined take their
     neighbours'.
+
+    ``segments`` (first segment number, count) puts the result on another
+    sampling's segments (the full-rate gain's, for data averaged in blocks).
 
     Returns
     -------
@@ -274,18 +277,24 @@ def segment_phase(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: flo
     b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
     seg = np.floor(u * per_cycle).astype(np.int64)
     starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
+    first, n_out = (int(seg[0]), starts.size) if segments is None else segments
+    at = seg[starts] - first  # each fitted segment's index on the output's segments
     sos = phase_highpass(f, fs)
-    eta = np.zeros((x.shape[0], starts.size))
+    eta = np.zeros((x.shape[0], n_out))
     for ch in range(x.shape[0]):
         cnt = np.bincount(b, w[ch], n_bins)
         tmpl = np.bincount(b, w[ch] * x[ch], n_bins) / np.maximum(cnt, 1e-12)
         tmpl -= tmpl.mean()
         deriv = _smooth_derivative(tmpl)
         keep = w[ch] > 0
-        xh, th, dh = (signal.sosfiltfilt(sos, v * keep)[None] for v in (x[ch], tmpl[b], deriv[b]))
+        # read at each sample's own phase (linear between bin centres): at few bins per cycle a
+        # bin's value is off by the waveform's change across the bin
+        at_u = np.mod(u, 1.0) * n_bins - 0.5
+        t_s, d_s = (np.interp(at_u, np.arange(n_bins), v, period=n_bins) for v in (tmpl, deriv))
+        xh, th, dh = (signal.sosfiltfilt(sos, v * keep)[None] for v in (x[ch], t_s, d_s))
         e, ok = phase_shift(xh, th, dh, w[ch:ch + 1], starts)
         if ok[0].sum() >= 2:
-            eta[ch] = np.interp(np.arange(starts.size), np.flatnonzero(ok[0]), e[0, ok[0]])
+            eta[ch] = np.interp(np.arange(n_out), at[ok[0]], e[0, ok[0]])
     return eta, f * per_cycle
 
 
@@ -303,7 +312,7 @@ def _smooth_derivative(tmpl: np.ndarray, max_harmonic: int = 20) -> np.ndarray:
 
 
 def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float, per_cycle: int,
-                gain: np.ndarray, eta: np.ndarray, response: "GainResponse") -> np.ndarray:
+                gain: np.ndarray, eta: np.ndarray, response: "GainResponse", first: int | None = None) -> np.ndarray:
     """Per channel, whether following the phase shift leaves less artifact beside the fundamental.
 
     An amplitude that changes within a segment also moves the fitted shift
@@ -316,7 +325,8 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
     """
     n_bins = max(8, int(round(fs / f)))
     b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
-    centres = (np.floor(u[0] * per_cycle) + np.arange(gain.shape[1]) + 0.5) / per_cycle
+    first = np.floor(u[0] * per_cycle) if first is None else first  # the segments' first number
+    centres = (first + np.arange(gain.shape[1]) + 0.5) / per_cycle
     sos = phase_highpass(f, fs)
     freqs = np.fft.rfftfreq(u.size, 1.0 / fs)
     near = (np.abs(freqs - f) >= 0.3) & (np.abs(freqs - f) <= 3.0)
@@ -331,8 +341,10 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
         deriv = _smooth_derivative(tmpl)
         g = np.interp(u, centres, ndimage.convolve1d(gain[ch], response.taps(ch), mode="nearest"))
         e = np.interp(u, centres, ndimage.convolve1d(eta[ch], taps, mode="nearest"))
-        r0 = (x[ch] - g * tmpl[b]) * (w[ch] > 0)
-        r1 = r0 - g * e * deriv[b] * (w[ch] > 0)
+        at_u = np.mod(u, 1.0) * n_bins - 0.5
+        t_s, d_s = (np.interp(at_u, np.arange(n_bins), v, period=n_bins) for v in (tmpl, deriv))
+        r0 = (x[ch] - g * t_s) * (w[ch] > 0)
+        r1 = r0 - g * e * d_s * (w[ch] > 0)
         p0, p1 = (np.sum(np.abs(np.fft.rfft(signal.sosfiltfilt(sos, r)))[near] ** 2) for r in (r0, r1))
         keep[ch] = p1 < 0.8 * p0
     return keep

@@ -296,14 +296,18 @@ class CycleEstimator(ArtifactEstimator):
             usable = (~find_clipped(x)).astype(np.float64)
             raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
             response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
-            if getattr(self, "track_phase", False):
+            if getattr(self, "track_phase", False) and (b - a) * f / fs >= 40:  # a shift needs seconds of cycles
                 # the phase shift's own lines pass, nothing always does: without a phase modulation
-                # the shift is the neural floor, which the derivative would copy onto every harmonic
-                eta, _ = segment_phase(x, usable, cycles, fs, f, per_cycle)
+                # the shift is the neural floor, which the derivative would copy onto every harmonic;
+                # measured on means over ~1/32 cycle (the shift lives in the first harmonics)
+                xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
+                eta, _ = segment_phase(xd, wd, ud, fsd, f, per_cycle,
+                                       segments=(int(np.floor(cycles[0] * per_cycle)), raw.shape[1]))
                 response.phase = design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=0.0,
                                                       over_subtraction=4.0).response
                 # kept only where following it takes artifact off beside the fundamental
-                response.phase[~phase_helps(x, usable, cycles, fs, f, per_cycle, raw, eta, response)] = 0.0
+                response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
+                                            first=int(np.floor(cycles[0] * per_cycle)))] = 0.0
         if self.dac != "auto":
             return ref, None, 0.0, response
         grid = find_dac_grid(x[ref], cycles, fs, f)
@@ -345,6 +349,17 @@ class CycleEstimator(ArtifactEstimator):
                 f"cycle: {type(self).__name__} cannot follow it and a spike-band residual will remain; check "
                 "the result with the validation figures", stacklevel=5)
         return ref, grid, unlocked, response, decided
+
+
+def _block_means(x, w, cycles, fs, q):
+    """Means over consecutive blocks of ``q`` samples: data, usable (all of the block), phase, rate."""
+    if q <= 1:
+        return x, w, cycles, fs
+    m = x.shape[1] // q * q
+    xd = x[:, :m].reshape(x.shape[0], -1, q).mean(axis=-1)
+    wd = w[:, :m].reshape(w.shape[0], -1, q).min(axis=-1)
+    ud = cycles[:m].reshape(-1, q).mean(axis=-1)
+    return xd, wd, ud, fs / q
 
 
 def plan_stretch(blk, fs: float, span_s: float) -> tuple[int, int]:

@@ -460,7 +460,7 @@ class TemplateSubtraction(CycleEstimator):
             unlocked_dac_steps_per_s=float(unlocked),
         )
         shifted = False
-        if self.track_phase and self.track_amplitude and response is not None and any(
+        if self.track_phase and self.track_amplitude and response is not None and n > 64 and any(
                 response.phase_taps(min(ch, response.response.shape[0] - 1)) is not None for ch in range(n_ch)):
             # the phase shift, where the block's plan found it modulated (heartbeat, respiration)
             if free:
