@@ -319,7 +319,7 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
     (at the heartbeat's lines, with no phase modulation at all), and the
     shift's response passes those lines. Here the stretch is modelled both
     ways, the mean cycle times the filtered gain with and without the
-    filtered shift, and the shift is kept where it takes at least a fifth off
+    filtered shift, and the shift is kept where it takes at least half off
     the residual power within 0.3-3 Hz of the fundamental (high-passed at
     ``f / 2``).
     """
@@ -346,7 +346,7 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
         r0 = (x[ch] - g * t_s) * (w[ch] > 0)
         r1 = r0 - g * e * d_s * (w[ch] > 0)
         p0, p1 = (np.sum(np.abs(np.fft.rfft(signal.sosfiltfilt(sos, r)))[near] ** 2) for r in (r0, r1))
-        keep[ch] = p1 < 0.8 * p0
+        keep[ch] = p1 < 0.5 * p0
     return keep
 
 

@@ -303,7 +303,7 @@ class CycleEstimator(ArtifactEstimator):
                 xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
                 eta, _ = segment_phase(xd, wd, ud, fsd, f, per_cycle,
                                        segments=(int(np.floor(cycles[0] * per_cycle)), raw.shape[1]))
-                response.phase = design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=0.0,
+                response.phase = design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f),
                                                       over_subtraction=4.0).response
                 # kept only where following it takes artifact off beside the fundamental
                 response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
