@@ -316,7 +316,8 @@ class CycleEstimator(ArtifactEstimator):
         # the four strongest channels (one DAC drives them all: a weaker reference shows few steps;
         # a clipped one shows them between its rails)
         strong = x[[ref] + [int(c) for c in np.argsort(spread)[::-1] if c != ref][:3]]
-        unlocked = max(step_rate(row, fs) for row in strong) if grid is None else 0.0
+        # steps per second from 2 s of each (a rate, not a grid: a few thousand steps are plenty)
+        unlocked = max(step_rate(row[: int(2 * fs)], fs) for row in strong) if grid is None else 0.0
         if unlocked > _UNLOCKED_STEPS and self._dac_periods:
             grid = find_dac_period(strong, cycles, fs, f)
             if grid is None:
