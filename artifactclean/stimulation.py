@@ -604,14 +604,46 @@ def fit_decimated(
         model.blocks.append(StimBlock(kind, start, stop, up, down, f_b, float(np.mod(phase_ref, 2 * np.pi)),
                                       ref_sample, amp, drift))
     if read is not None:
-        for blk in model.blocks:
-            if blk.kind != "active":
-                continue
-            if blk.ramp_up_stop - blk.start <= 1 and blk.start > 0:
-                blk.start = blk.ramp_up_stop = _step_sample(read, model, blk, blk.start, fs_ds, rising=True)
-            if blk.stop - blk.ramp_down_start <= 1 and blk.stop < n:
-                blk.stop = blk.ramp_down_start = _step_sample(read, model, blk, blk.stop, fs_ds, rising=False)
+        for k, blk in enumerate(model.blocks):
+            if blk.kind == "active":
+                bounds = (model.blocks[k - 1].stop if k else 0,
+                          model.blocks[k + 1].start if k + 1 < len(model.blocks) else n)
+                _edges_at_full_rate(read, model, blk, fs_ds, bounds)
     return model
+
+
+#: ramps shorter than this many cycles or :data:`_WHOLE_RAMP_S` (as the decimated envelope sees them)
+#: are fitted whole at the full rate; longer ones only at their feet (see :func:`_ramp_fit`)
+_WHOLE_RAMP_CYCLES = 10.0
+_WHOLE_RAMP_S = 0.5
+
+
+def _edges_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: float,
+                        bounds: tuple[int, int]) -> None:
+    """Place ``blk``'s ramps (or steps) on the full-rate reference: :func:`_ramp_fit`, :func:`_step_sample`.
+
+    A fitted ramp shorter than a tenth of a cycle is a step, placed as one
+    (the change point is exact to the sample where a short ramp fit is not).
+    """
+    n = model.n_samples
+    tenth = 0.1 * model.fs / blk.freq_hz
+    longest = max(_WHOLE_RAMP_CYCLES / blk.freq_hz, _WHOLE_RAMP_S) * model.fs
+    if blk.start > 0:
+        ramp = _ramp_fit(read, model, blk, blk.start, blk.ramp_up_stop, fs_ds, rising=True, bounds=bounds,
+                         foot_only=blk.ramp_up_stop - blk.start >= longest)
+        if ramp is not None and ramp[1] - ramp[0] >= tenth:
+            blk.start, blk.ramp_up_stop = ramp
+        elif ramp is not None or blk.ramp_up_stop - blk.start <= 1:
+            blk.start = blk.ramp_up_stop = _step_sample(read, model, blk, blk.start if ramp is None else ramp[0],
+                                                        fs_ds, rising=True)
+    if blk.stop < n:
+        ramp = _ramp_fit(read, model, blk, blk.stop, blk.ramp_down_start, fs_ds, rising=False, bounds=bounds,
+                         foot_only=blk.stop - blk.ramp_down_start >= longest)
+        if ramp is not None and ramp[0] - ramp[1] >= tenth:
+            blk.stop, blk.ramp_down_start = ramp
+        elif ramp is not None or blk.stop - blk.ramp_down_start <= 1:
+            blk.stop = blk.ramp_down_start = _step_sample(read, model, blk, blk.stop if ramp is None else ramp[0],
+                                                          fs_ds, rising=False)
 
 
 def nominal_frequencies(stim_freq) -> list[float] | None:
@@ -673,6 +705,33 @@ def _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax, free=No
     return found
 
 
+def _cycle_template(read, model: StimulationModel, blk: StimBlock, a: int, b: int):
+    """Mean cycle of the reference on samples ``a .. b`` of ``blk`` (bin centres, bin values, offset).
+
+    Returns None where a bin is empty. The offset is the slow LFP under those
+    cycles (the mean cycle's own mean), the template the mean cycle less it.
+    """
+    cyc = model.fs / blk.freq_hz
+    x = np.asarray(read(a, b), dtype=np.float64)
+    n_bins = int(max(8, min(256, cyc)))
+    ph = np.mod(model.cycles(blk, a, b), 1.0)
+    k = np.minimum((ph * n_bins).astype(np.int64), n_bins - 1)
+    cnt = np.bincount(k, minlength=n_bins)
+    if np.any(cnt == 0):
+        return None
+    tmpl = np.bincount(k, x, n_bins) / cnt
+    offset = float(np.mean(tmpl))  # over phase bins: uneven bin counts do not tilt it
+    tmpl -= offset
+    # phases where the reference sat on a rail: its ramp is unclipped there and the mean cycle is not
+    hi, lo = x.max(), x.min()
+    railed = np.zeros(n_bins, bool)
+    for v in (hi, lo):
+        at = x == v
+        if at.mean() > 0.002:
+            railed |= np.bincount(k[at], minlength=n_bins) > 0
+    return (np.arange(n_bins) + 0.5) / n_bins, tmpl, offset, railed
+
+
 def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds: float, rising: bool) -> int:
     """The sample where a block switched on (or off) without a ramp, near ``edge``.
 
@@ -692,18 +751,11 @@ def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds
     lo, hi = max(edge - half, 0), min(edge + half, n)
     if b - a < 2 * cyc or hi - lo < 3:
         return int(edge)
-    x = np.asarray(read(a, b), dtype=np.float64)
-    n_bins = int(max(8, min(256, cyc)))
-    ph = np.mod(model.cycles(blk, a, b), 1.0)
-    k = np.minimum((ph * n_bins).astype(np.int64), n_bins - 1)
-    cnt = np.bincount(k, minlength=n_bins)
-    if np.any(cnt == 0):
+    got = _cycle_template(read, model, blk, a, b)
+    if got is None:
         return int(edge)
-    tmpl = np.bincount(k, x, n_bins) / cnt
-    offset = float(np.mean(x) - np.mean(tmpl))  # slow LFP near the edge
-    tmpl -= tmpl.mean()
+    centres, tmpl, offset, _ = got
     w = np.asarray(read(lo, hi), dtype=np.float64) - offset
-    centres = (np.arange(n_bins) + 0.5) / n_bins
     t = np.interp(np.mod(model.cycles(blk, lo, hi), 1.0), centres, tmpl, period=1.0)
     e = t * t - 2.0 * w * t
     if rising:  # cost of the artifact starting at lo + j: sum of e from j on
@@ -711,6 +763,114 @@ def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds
     else:  # cost of the artifact ending at lo + j: sum of e before j
         cost = np.concatenate(([0.0], np.cumsum(e)))
     return int(lo + np.argmin(cost))
+
+
+def _ramp_fit(read, model: StimulationModel, blk: StimBlock, foot: int, corner: int, fs_ds: float,
+              rising: bool, bounds: tuple[int, int | None] = (0, None),
+              foot_only: bool = False) -> tuple[int, int] | None:
+    """A ramp's foot and corner (samples) from the full-rate reference, near the coarse ``foot`` and ``corner``.
+
+    The decimated envelope places a ramp's ends within a few to ~100 ms
+    (its moving mean over cycles rounds them; a heartbeat tilts it); a gain
+    read from segments cannot follow the rest over a short ramp (0.1-0.3 s
+    left 100-400 uV). Here the artifact on the ramp is ``A r(i) T(i)``:
+    ``T`` the mean cycle of 8 plateau cycles past the corner, ``r`` rising
+    linearly from 0 at the foot to 1 at the corner, ``A`` free (the
+    heartbeat changes the level a few per cent). The foot and corner that
+    maximise the explained energy ``(sum r x T)^2 / sum r^2 T^2`` (least
+    squares with ``A`` profiled out) are searched on a coarse grid, then
+    finer around the best, to the sample; the sums over the ramp come from
+    running sums of ``x T``, ``i x T``, ``T^2``, ``i T^2`` and ``i^2 T^2``, so
+    each candidate costs a few operations. Phases where the reference is
+    clipped on the plateau are left out (its ramp is not). Returns
+    ``(foot, corner)`` in samples (for a falling ramp: the corner is the
+    plateau's end, the foot the block's stop), or None without a plateau to
+    learn from. The search stays within ``bounds`` (the neighbouring blocks'
+    ends) and within 2.5 cycles or 30% of the ramp of the coarse ends: the
+    envelope's 4-cycle mean can put them 2 cycles out (on a monitor without
+    noise, whose background is nothing, up to 1.7 cycles were seen).
+
+    With ``foot_only`` the corner stays where it is and only the foot is
+    searched, on the ramp's first part (within 2 x the reach of the foot,
+    at most half the ramp): over a long ramp the heartbeat and respiration
+    (a few per cent) tilt a single line by tens of ms at the corner, where
+    the gain follows them anyway, while near the foot the line is short.
+    """
+    fs, n = model.fs, model.n_samples
+    cyc = fs / blk.freq_hz
+    reach = int(np.ceil(max(2.5 * cyc, 0.3 * abs(corner - foot), 3 * fs / fs_ds)))
+    span = int(8 * cyc)
+    first, last = bounds[0], n if bounds[1] is None else bounds[1]
+    if foot_only:
+        reach = int(np.ceil(max(2.5 * cyc, 3 * fs / fs_ds)))
+    if rising:
+        lo, hi = max(foot - reach, first), min(corner + reach + int(cyc), last)
+        if foot_only:
+            hi = min(foot + 2 * reach, (foot + corner) // 2, last)
+        a, b = corner + reach, corner + reach + span
+    else:
+        lo, hi = max(corner - reach - int(cyc), first), min(foot + reach, last)
+        if foot_only:
+            lo = max(foot - 2 * reach, (foot + corner) // 2, first)
+        a, b = corner - reach - span, corner - reach
+    a, b = max(a, blk.ramp_up_stop, 0), min(b, blk.ramp_down_start, n)
+    if b - a < 2 * cyc or hi - lo < 3:
+        return None
+    got = _cycle_template(read, model, blk, a, b)
+    if got is None:
+        return None
+    centres, tmpl, offset, railed = got
+    ph = np.mod(model.cycles(blk, lo, hi), 1.0)
+    t = np.interp(ph, centres, tmpl, period=1.0)
+    if railed.any():
+        n_bins = centres.size
+        t[railed[np.minimum((ph * n_bins).astype(np.int64), n_bins - 1)]] = 0.0
+    x = np.asarray(read(lo, hi), dtype=np.float64) - offset
+    if not rising:  # a falling ramp is a rising one read backwards
+        x, t = x[::-1], t[::-1]
+    m = x.size
+    i = np.arange(m, dtype=np.float64)
+    B, A = x * t, t * t
+
+    def run(v):
+        return np.concatenate(([0.0], np.cumsum(v)))
+
+    sB, siB, sA, siA, siiA = run(B), run(i * B), run(A), run(i * A), run(i * i * A)
+
+    def explained(s, c):
+        # ramp samples s .. c - 1 at (i - s) / (c - s), plateau c .. m - 1 at 1
+        L = np.maximum(c - s, 1.0)
+        si, ci = s.astype(np.int64), np.minimum(c, m).astype(np.int64)  # a fixed corner may lie beyond
+        num = (siB[ci] - siB[si] - s * (sB[ci] - sB[si])) / L + (sB[m] - sB[ci])
+        den = ((siiA[ci] - siiA[si]) - 2 * s * (siA[ci] - siA[si]) + s * s * (sA[ci] - sA[si])) / (L * L) \
+            + (sA[m] - sA[ci])
+        return np.where((num > 0) & (den > 0), num * num / np.maximum(den, 1e-300), -np.inf)
+
+    # the coarse ends in this (possibly reversed) window
+    f0, c0 = (foot - lo, corner - lo) if rising else (hi - 1 - foot, hi - 1 - corner)
+    top = m - int(cyc)  # a cycle of plateau stays in the window
+    s_lo, s_hi = max(0, f0 - reach), min(top, f0 + reach)
+    c_lo, c_hi = max(0, c0 - reach), min(top, c0 + reach)
+    if foot_only:
+        s_lo, s_hi, c_lo, c_hi = max(0, f0 - reach), min(m - 1, f0 + reach, c0 - 1), c0, c0
+    step = max(1, (max(s_hi - s_lo, c_hi - c_lo)) // 192)
+    best = None
+    while True:
+        ss, cc = np.meshgrid(np.arange(s_lo, s_hi + 1, step), np.arange(c_lo, c_hi + 1, step), indexing="ij")
+        ok = cc >= ss
+        if not ok.any():
+            return None
+        ss, cc = ss[ok].astype(np.float64), cc[ok].astype(np.float64)
+        k = int(np.argmax(explained(ss, cc)))
+        best = int(ss[k]), int(cc[k])
+        if step == 1:
+            break
+        s_lo, s_hi = max(0, best[0] - 3 * step), min(s_hi, best[0] + 3 * step)
+        if not foot_only:
+            c_lo, c_hi = max(0, best[1] - 3 * step), min(top, best[1] + 3 * step)
+        step = max(1, step // 8)
+    s, c = best
+    return (lo + s, lo + c) if rising else (hi - 1 - s, hi - 1 - c)
 
 
 def _from_events(times: np.ndarray, fs: float, n: int, stim_freq) -> StimulationModel:

@@ -1,3 +1,5 @@
+import dataclasses
+
 import numpy as np
 import pytest
 
@@ -140,6 +142,26 @@ def test_short_ramps_at_5hz_are_not_a_sham_block():
     assert blk.kind == "active"
     assert abs(blk.start / rec.fs - 2.0) < 0.15 and abs(blk.stop / rec.fs - 12.0) < 0.15
     assert (blk.ramp_down_start - blk.ramp_up_stop) / rec.fs > 9.0
+
+
+@pytest.mark.parametrize("freq, ramp_s", [(5.0, 0.1), (5.0, 0.3), (20.0, 0.1), (40.0, 0.3)])
+def test_ramps_are_placed_at_the_full_rate(freq, ramp_s):
+    """On a monitor without heartbeat or noise the full-rate least-squares ramp fit lands on the
+    generator's ramps to a sample or two; on the data (2% heartbeat, LFP) within a few ms. The
+    decimated envelope alone put 0.1-0.3 s ramps 4-110 ms off (a 0.1 s ramp at 5 Hz, half a
+    cycle, read as a step in its middle)."""
+    art = ArtifactSpec(freq_hz=freq, drift_ppm=40.0)
+    rec = simulate_recording(8.0, artifact=art, blocks=[BlockSpec(start_s=2.0, duration_s=4.0, ramp_s=ramp_s)], seed=5)
+    fs = rec.fs
+    truth = np.array([2.0, 2.0 + ramp_s, 6.0 - ramp_s, 6.0]) * fs
+    (blk,) = fit_stimulation(rec.data, fs, stim_freq=freq).blocks
+    assert blk.kind == "active"
+    assert np.abs(np.array(blk.geometry()) - truth).max() < 0.008 * fs
+    still = dataclasses.replace(art, heart_depth=0.0, resp_depth=0.0)
+    mon = simulate_recording(8.0, artifact=still, blocks=[BlockSpec(start_s=2.0, duration_s=4.0, ramp_s=ramp_s)],
+                             seed=5).artifact[0]
+    (blk,) = fit_stimulation(rec.data, fs, stim_freq=freq, reference=mon / 4000.0).blocks
+    assert np.abs(np.array(blk.geometry()) - truth).max() <= 2
 
 
 def test_a_recording_that_starts_and_stops_inside_a_block():
