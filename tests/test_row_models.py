@@ -10,7 +10,7 @@ from artifactclean.estimators import CyclePCA, HarmonicRegression
 from artifactclean.estimators.cycles import CycleGrid
 from artifactclean.estimators.pca import principal_shapes
 from artifactclean.evaluation import score_cleaning
-from artifactclean.synthetic import ArtifactSpec, NeuralSpec, simulate_recording
+from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
 
 
 @pytest.mark.parametrize("shape", [(300, 40), (30, 200)])  # both Gram branches
@@ -181,3 +181,17 @@ def test_lfp_away_at_20hz_with_a_sinusoidal_heartbeat(method):
     assert max(s["lfp_error_away"]) <= 0.05, s["lfp_error_away"]
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
     assert s["recall_ratio"] >= 0.99
+
+
+@pytest.mark.parametrize("method", ["regression", "pca"])
+@pytest.mark.parametrize("freq, ramp_s", [(5.0, 0.0), (20.0, 0.0), (20.0, 0.1), (40.0, 0.3)])
+def test_steps_and_short_ramps(method, freq, ramp_s):
+    """Rows are rescaled by the block's ramps sample by sample and read back times them: a line
+    between row centres turned a step into a one-cycle ramp (49-53% of the artifact's peak left
+    beside it) and rounded a 0.1 s ramp's corners (17%); now 1-2%."""
+    rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=freq, drift_ppm=40.0),
+                             blocks=[BlockSpec(start_s=2.0, duration_s=4.0, ramp_s=ramp_s)], seed=5)
+    fs = rec.fs
+    resid = clean(rec.data, fs, stim_freq=freq, method=method) - rec.neural
+    edges = np.r_[int(1.8 * fs):int((2.2 + ramp_s) * fs), int((5.8 - ramp_s) * fs):int(6.2 * fs)]
+    assert np.max(np.abs(resid[:, edges])) < 0.03 * np.max(np.abs(rec.artifact))

@@ -476,11 +476,12 @@ class CycleGrid:
             wt[ch] = cnt > 0.5
         return v.reshape(shape), wt.reshape(shape)
 
-    def scatter(self, grid: np.ndarray, x: np.ndarray | None = None) -> np.ndarray:
+    def scatter(self, grid: np.ndarray, x: np.ndarray | None = None, gain: np.ndarray | None = None) -> np.ndarray:
         """Values of ``grid`` (n_channels, n_rows, n_bins) at every sample, (n_channels, n).
 
         With a DAC and ``x`` given, samples next to a tick edge take whichever
-        tick explains them best in ``x`` (channel by channel).
+        tick explains them best in ``x`` (channel by channel), the grid's
+        values times ``gain`` (n_channels, n) when the grid is at unit level.
         """
         flat = np.ascontiguousarray(grid.reshape(grid.shape[0], -1))
         read = lambda b0, b1, alpha: grouped_eval(flat, self.n_bins, self._r0, self._r1, self._beta,  # noqa: E731
@@ -498,7 +499,8 @@ class CycleGrid:
                 return grouped_eval(one, self.n_bins, self._r0[idx], self._r1[idx], self._beta[idx],
                                     b, b, np.zeros(idx.size))[0]
 
-            key = settle_edges(x[ch], ones, at, self.key, self.key, self.amb_lo, self.amb_hi)
+            key = settle_edges(x[ch], ones if gain is None else gain[ch], at, self.key, self.key, self.amb_lo,
+                               self.amb_hi)
             b = np.mod(key, self.n_bins)
             out[ch] = grouped_eval(one, self.n_bins, self._r0, self._r1, self._beta, b, b, self._alpha)[0]
         return out
@@ -590,7 +592,13 @@ class RowModelEstimator(CycleEstimator):
         """
         f = blk.freq_hz
         grid = CycleGrid(u, fs, f, dac)
-        env = trapezoid(xb.shape[1], blk, offset)[grid.row_centres]
+        trap = trapezoid(xb.shape[1], blk, offset)
+        env = trap[grid.row_centres]
+        # the block's ramps (or steps) sample by sample: rows are rescaled by them within a row and
+        # read back times them, as the template's gain is (a row-to-row line rounds a ramp's corners
+        # and turns a step into a one-cycle ramp: the whole artifact left beside a step)
+        relative = blk.kind == "active"
+        trap_bins = grid.gather(trap[None, :], np.ones((1, trap.size)))[0][0] if relative else None
         # rows are cycles: sequences along rows are sampled at f
         slow = lowpass_taps(KEEP_HZ, f)
         ramp_hz = ramp_cutoff(blk, fs, self.tracking_hz)
@@ -600,18 +608,28 @@ class RowModelEstimator(CycleEstimator):
         passes = 2 if self.robust else 1
         for it in range(passes):
             rows = np.empty_like(v)
+            rel = np.empty((xb.shape[0], grid.n_rows)) if relative else None
             chosen = []
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
                 dec = None if decided is None else decided[ch]
-                g_row, vd, wd, made = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz, dec)
+                g_row, vd, wd, made = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz, dec,
+                                                       trap_bins=trap_bins)
                 rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen, decided=dec)
+                if relative:
+                    # each row at unit level, its gain relative to the ramps kept for reading back
+                    rel[ch] = np.where(env < _FOOT, 1.0, g_row / env)
+                    rows[ch] = _unit_rows(rows[ch], rel[ch] * env, env >= _FOOT)
                 info["decided"] = {**made, **info.get("decided", {})}
                 chosen.append(info)
             if it == passes - 1 and not artifact:
                 return None, grid, censor, n_out, chosen
-            art = grid.scatter(rows, xb)
+            if relative:
+                gain = (rel[:, grid._r0] * (1.0 - grid._beta) + rel[:, grid._r1] * grid._beta) * trap
+                art = grid.scatter(rows, xb, gain) * gain
+            else:
+                art = grid.scatter(rows, xb)
             if it < passes - 1:
                 w_out, n_out = spike_outliers(xb, art, wb, fs, u, _OUTLIER_ROWS, self.outlier_z)
                 v, w = grid.gather(xb, w_out)
@@ -633,7 +651,7 @@ class RowModelEstimator(CycleEstimator):
             report["censored_samples"] = int(lost.sum())
         return art, report, lost
 
-    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz, decided=None):
+    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz, decided=None, trap_bins=None):
         """The envelope of the rows as the data show it, and the rows rescaled to their centres.
 
         The strongest harmonic's amplitude (the fundamental, normally),
@@ -650,9 +668,22 @@ class RowModelEstimator(CycleEstimator):
         Which harmonic leads, the plateau level of its sequences and of its
         amplitude come from ``decided`` (the block's, made by :meth:`_decide`)
         when given, else from these rows; the fourth value returned holds them.
+
+        With ``trap_bins`` (the block's ramps at every bin, shape of ``v``)
+        the envelope within a row is the row's gain relative to the ramps,
+        interpolated between row centres, times the ramps at each bin: a
+        ramp's corner or a step stays where it is instead of being spread
+        over a row.
         """
         n_rows, n_bins = v.shape
-        filled = fill_rows(v, w, env, _FILL_ROWS, censor)
+        vm, wm = v, w
+        if trap_bins is not None:
+            # each row measured on its bins within the ramps, brought to its centre's ramp level (a
+            # row holding a step measured as half a row, or a ramp's corner as its mean, misleads)
+            inside = trap_bins >= _FOOT
+            vm = np.where(inside, v * env[:, None] / np.where(inside, trap_bins, 1.0), 0.0)
+            wm = w * inside
+        filled = fill_rows(vm, wm, env, _FILL_ROWS, censor)
         filled = filled - filled.mean(axis=1, keepdims=True)
         plateau = env > 0.99
         coef = np.fft.rfft(filled, axis=1)[:, 1:]
@@ -673,7 +704,11 @@ class RowModelEstimator(CycleEstimator):
         g_row = np.where(env < _FOOT, env, mag / max(level, 1e-300))
         centres = np.arange(n_rows) + 0.5
         at_bins = np.arange(n_rows)[:, None] + (np.arange(n_bins)[None, :] + 0.5) / n_bins
-        g_bin = np.interp(at_bins.ravel(), centres, g_row).reshape(n_rows, n_bins)
+        if trap_bins is None:
+            g_bin = np.interp(at_bins.ravel(), centres, g_row).reshape(n_rows, n_bins)
+        else:
+            rel = np.where(env < _FOOT, 1.0, g_row / np.maximum(env, 1e-300))
+            g_bin = np.interp(at_bins.ravel(), centres, rel).reshape(n_rows, n_bins) * trap_bins
         ok = g_bin >= _FOOT
         vd = np.where(ok, v * g_row[:, None] / np.where(ok, g_bin, 1.0), 0.0)
         return g_row, vd, w * ok, dict(lead=h, lead_scale=scale, level=level)
@@ -691,6 +726,28 @@ class RowModelEstimator(CycleEstimator):
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True
+
+
+def _unit_rows(rows: np.ndarray, level: np.ndarray, usable: np.ndarray) -> np.ndarray:
+    """Rows divided by their ``level``; a row not ``usable`` (centre at a ramp's foot or before a
+    step) takes the nearest usable row's shape.
+
+    Such a row was modelled at a level near nothing, where what the row
+    filters spread into it from the plateau is as large as the row itself
+    (divided by its level, 4x the artifact beside a 5 Hz step); its samples
+    inside the block still read it.
+    """
+    ok = np.flatnonzero(usable)
+    if ok.size == 0:
+        return np.zeros_like(rows)
+    out = rows / np.maximum(level, 1e-300)[:, None]
+    bad = np.flatnonzero(~usable)
+    if bad.size:
+        right = np.clip(np.searchsorted(ok, bad), 0, ok.size - 1)
+        left = np.clip(right - 1, 0, ok.size - 1)
+        near = np.where(np.abs(ok[left] - bad) <= np.abs(ok[right] - bad), ok[left], ok[right])
+        out[bad] = out[near]
+    return out
 
 
 def fill_rows(v: np.ndarray, w: np.ndarray, env: np.ndarray, half_rows: int = _FILL_ROWS,
