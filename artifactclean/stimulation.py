@@ -628,22 +628,18 @@ def _edges_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: fl
     n = model.n_samples
     tenth = 0.1 * model.fs / blk.freq_hz
     longest = max(_WHOLE_RAMP_CYCLES / blk.freq_hz, _WHOLE_RAMP_S) * model.fs
-    if blk.start > 0:
-        ramp = _ramp_fit(read, model, blk, blk.start, blk.ramp_up_stop, fs_ds, rising=True, bounds=bounds,
-                         foot_only=blk.ramp_up_stop - blk.start >= longest)
-        if ramp is not None and ramp[1] - ramp[0] >= tenth:
-            blk.start, blk.ramp_up_stop = ramp
-        elif ramp is not None or blk.ramp_up_stop - blk.start <= 1:
-            blk.start = blk.ramp_up_stop = _step_sample(read, model, blk, blk.start if ramp is None else ramp[0],
-                                                        fs_ds, rising=True)
-    if blk.stop < n:
-        ramp = _ramp_fit(read, model, blk, blk.stop, blk.ramp_down_start, fs_ds, rising=False, bounds=bounds,
-                         foot_only=blk.stop - blk.ramp_down_start >= longest)
-        if ramp is not None and ramp[0] - ramp[1] >= tenth:
-            blk.stop, blk.ramp_down_start = ramp
-        elif ramp is not None or blk.stop - blk.ramp_down_start <= 1:
-            blk.stop = blk.ramp_down_start = _step_sample(read, model, blk, blk.stop if ramp is None else ramp[0],
-                                                          fs_ds, rising=False)
+    for rising, foot_name, corner_name in ((True, "start", "ramp_up_stop"), (False, "stop", "ramp_down_start")):
+        foot, corner = getattr(blk, foot_name), getattr(blk, corner_name)
+        if (foot <= 0) if rising else (foot >= n):
+            continue  # the recording starts (or stops) inside the block: no edge to place
+        ramp = _ramp_fit(read, model, blk, foot, corner, fs_ds, rising=rising, bounds=bounds,
+                         foot_only=abs(corner - foot) >= longest)
+        if ramp is not None and abs(ramp[1] - ramp[0]) >= tenth:
+            foot, corner = ramp
+        elif ramp is not None or abs(corner - foot) <= 1:
+            foot = corner = _step_sample(read, model, blk, foot if ramp is None else ramp[0], fs_ds, rising=rising)
+        setattr(blk, foot_name, foot)
+        setattr(blk, corner_name, corner)
 
 
 def nominal_frequencies(stim_freq) -> list[float] | None:

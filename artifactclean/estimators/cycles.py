@@ -455,6 +455,10 @@ class CycleGrid:
         use[self.amb_hi] = 0.0
         return (np.bincount(self.key, use, self.n_rows * self.n_bins) > 0.5).reshape(self.n_rows, self.n_bins)
 
+    def at_samples(self, per_row: np.ndarray) -> np.ndarray:
+        """Values given per row (..., n_rows) at every sample, between the rows' centres as :meth:`scatter` reads."""
+        return per_row[..., self._r0] * (1.0 - self._beta) + per_row[..., self._r1] * self._beta
+
     def gather(self, x: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Grid values and weights (0 where no usable sample), both (n_channels, n_rows, n_bins)."""
         n_ch = x.shape[0]
@@ -626,7 +630,7 @@ class RowModelEstimator(CycleEstimator):
             if it == passes - 1 and not artifact:
                 return None, grid, censor, n_out, chosen
             if relative:
-                gain = (rel[:, grid._r0] * (1.0 - grid._beta) + rel[:, grid._r1] * grid._beta) * trap
+                gain = grid.at_samples(rel) * trap
                 art = grid.scatter(rows, xb, gain) * gain
             else:
                 art = grid.scatter(rows, xb)
