@@ -138,55 +138,52 @@ def test_cluster_needs_a_file_not_an_array(tmp_path):
         clean_recording(open_recording(np.zeros((2, 30000)), fs=30000.0), tmp_path / "x.dat", cluster=3)
 
 
+def _pieces_and_whole(rec, path, method=None, **kwargs):
+    """``rec`` cleaned as a file in pieces of time (written as float32 NIX) and as one array:
+    the file's provenance, its samples (n_channels, n) and the array's result."""
+    from neo.io import NixIO
+
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import clean_recording
+
+    extra = {} if method is None else dict(method=method)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        clean_recording(open_recording(rec.data, fs=rec.fs), path, **extra, **kwargs)
+        whole = clean(rec.data, rec.fs, **extra)
+    with NixIO(str(path), "ro") as io:
+        blk = io.read_block()
+    y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
+    return json.loads(blk.annotations["provenance"]), y, whole
+
+
 @pytest.mark.parametrize("method", ["template", "adaptive", "comb", "regression", "pca"])
 def test_file_pieces_equal_the_whole_array(method, tmp_path):
     """Pieces with each estimator's declared context give the whole-array result: written as
     float32 NIX, within 1e-6 of the data's range (float32 itself holds 6e-8). Regression and PCA
     make their choices once per block, here (a 47 s block) on the middle of its plateau: while they
     chose per piece, pieces differed by 3.7e-3 (27 uV) and 4.1e-2 (294 uV) of the range."""
-    from neo.io import NixIO
-
-    from artifactclean.io import open_recording
-    from artifactclean.io.pipeline import clean_recording
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
     rec = simulate_recording(50.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, heart_depth=0.02,
                                                          resp_depth=0.01, drift_ppm=40.0, clip_uv=3600.0),
                              blocks=[BlockSpec(1.0, 48.0, ramp_s=1.0)], seed=6)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "y.nix", method=method, max_range_s=9.0,
-                        workers=2)
-        whole = clean(rec.data, rec.fs, method=method)
-    with NixIO(str(tmp_path / "y.nix"), "ro") as io:
-        blk = io.read_block()
-    prov = json.loads(blk.annotations["provenance"])
+    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", method=method, max_range_s=9.0, workers=2)
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2  # cleaned in pieces of time
-    y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
 
 
 def test_pieces_that_start_inside_a_long_ramp_equal_the_whole_array(tmp_path):
     """10 s ramps (common in tACS protocols) are longer than a piece: a piece that reads part of one
     must still see the block's ramp, not the part it holds (1.4 uV next to the ramp before)."""
-    from neo.io import NixIO
-
-    from artifactclean.io import open_recording
-    from artifactclean.io.pipeline import clean_recording
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
     rec = simulate_recording(44.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0),
                              blocks=[BlockSpec(1.0, 42.0, ramp_s=10.0)], seed=6)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "y.nix", max_range_s=6.0)
-        whole = clean(rec.data, rec.fs)
-    with NixIO(str(tmp_path / "y.nix"), "ro") as io:
-        blk = io.read_block()
-    starts = sorted({r["start_s"] for r in json.loads(blk.annotations["provenance"])["estimator_report"]})
+    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=6.0)
+    starts = sorted({r["start_s"] for r in prov["estimator_report"]})
     # a piece boundary within a context (~6 s) of a ramp: one piece reads part of that ramp only
     assert any(1.0 < a < 17.0 or 27.0 < a < 43.0 for a in starts[1:]), starts
-    y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
 
 
@@ -208,49 +205,27 @@ def test_pieces_with_a_dac_that_is_not_locked_to_the_cycle_equal_the_whole_array
     """13 Hz from a 1 kHz DAC: the template's rows are periods of 13 cycles (1 s); 13.37 Hz: it reads
     each tick's held phase. The ticks are found once per block (prepare), so every piece models the
     same ticks."""
-    from neo.io import NixIO
-
-    from artifactclean.io import open_recording
-    from artifactclean.io.pipeline import clean_recording
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
     rec = simulate_recording(100.0, artifact=ArtifactSpec(freq_hz=freq, dac_rate_hz=1000.0, drift_ppm=40.0,
                                                           channel_gains=(1.0, -0.6)),
                              blocks=[BlockSpec(1.0, 98.0, ramp_s=1.0)], seed=8, n_channels=2)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "y.nix", max_range_s=9.0)
-        whole = clean(rec.data, rec.fs)
-    with NixIO(str(tmp_path / "y.nix"), "ro") as io:
-        blk = io.read_block()
-    prov = json.loads(blk.annotations["provenance"])
+    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=9.0)
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2  # cleaned in pieces of time
     info = prov["estimator_report"][0]["blocks"][0]
     assert info["dac_free_running"] if freq == 13.37 else info["dac_cycles_per_period"] == 13
-    y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
 
 
 def test_pieces_with_a_phase_shifting_heartbeat_equal_the_whole_array(tmp_path):
     """The phase shift is planned once per block and fitted per segment on high-passed data: pieces
     read the context their filters need and give the whole array's result."""
-    from neo.io import NixIO
-
-    from artifactclean.io import open_recording
-    from artifactclean.io.pipeline import clean_recording
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
     rec = simulate_recording(50.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01,
                                                          drift_ppm=40.0, heart_phase_deg=2.0),
                              blocks=[BlockSpec(1.0, 48.0, ramp_s=1.0)], seed=6, n_channels=2)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        clean_recording(open_recording(rec.data, fs=rec.fs), tmp_path / "y.nix", max_range_s=9.0)
-        whole = clean(rec.data, rec.fs)
-    with NixIO(str(tmp_path / "y.nix"), "ro") as io:
-        blk = io.read_block()
-    prov = json.loads(blk.annotations["provenance"])
+    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=9.0)
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2
     assert all(r["blocks"][0]["phase_shift_followed"] for r in prov["estimator_report"])
-    y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
