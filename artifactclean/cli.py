@@ -240,14 +240,16 @@ def _print_survey(res: dict) -> None:
               "(the template reads each tick's held phase)")
     elif dac.get("steps_per_s", 0) > 50:
         print(f"DAC staircase: {dac['steps_per_s']:.0f} steps/s, not locked to the cycle (not modelled)")
-    print(f"\n{'kind':<7} {'start s':>9} {'stop s':>9} {'ramp up s':>10} {'ramp down s':>12} {'freq Hz':>12} {'drift ppm':>10} {'amplitude uV':>13}")
+    print(f"\n{'kind':<7} {'start s':>9} {'stop s':>9} {'ramp up s':>10} {'ramp down s':>12} {'ramps':>7} {'freq Hz':>12} "
+          f"{'drift ppm':>10} {'amplitude uV':>13}")
     for b in st["blocks"]:
         if b["kind"] == "off":
             print(f"{'off':<7} {b['start_s']:>9.3f} {b['stop_s']:>9.3f}")
         else:
             drift = "" if b["drift_ppm"] is None else f"{b['drift_ppm']:+.1f}"
+            ramps = b.get("ramp_shape", "linear") if b["ramp_up_s"] > 0 or b["ramp_down_s"] > 0 else "none"
             print(f"{b['kind']:<7} {b['start_s']:>9.3f} {b['stop_s']:>9.3f} {b['ramp_up_s']:>10.2f} {b['ramp_down_s']:>12.2f} "
-                  f"{b['freq_hz']:>12.6f} {drift:>10} {b['amplitude']:>13.0f}")
+                  f"{ramps:>7} {b['freq_hz']:>12.6f} {drift:>10} {b['amplitude']:>13.0f}")
     print(f"\n{'channel':<12} {'artifact uV':>12} {'SD uV':>10} {'clipped %':>10}  recommended")
     for c in res["channels"]:
         print(f"{c['name']:<12} {c['artifact_amplitude_uv']:>12.1f} {c['sd_uv']:>10.1f} {100 * c['clipped_fraction']:>10.3f}  "

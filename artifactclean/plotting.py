@@ -7,6 +7,8 @@ from pathlib import Path
 import numpy as np
 from scipy import signal
 
+from .stimulation import ramp_level
+
 
 def _plt():
     import matplotlib
@@ -69,8 +71,11 @@ def plot_survey(path: Path, survey: dict) -> Path:
     for b in survey["stimulation"]["blocks"]:
         if b["kind"] == "off":
             continue
-        t = [b["start_s"], b["start_s"] + b["ramp_up_s"], b["stop_s"] - b["ramp_down_s"], b["stop_s"]]
-        a = [0, b["amplitude"], b["amplitude"], 0]
+        # the ramps drawn in their shape (straight or raised cosine), 32 points each
+        tau = np.linspace(0.0, 1.0, 32)
+        level = ramp_level(tau, b.get("ramp_shape", "linear"))
+        t = np.concatenate((b["start_s"] + tau * b["ramp_up_s"], b["stop_s"] - tau[::-1] * b["ramp_down_s"]))
+        a = b["amplitude"] * np.concatenate((level, level[::-1]))
         ax0.fill_between(t, a, color=colours.get(b["kind"], "0.5"), alpha=0.5, label=b["kind"])
         ax0.text(0.5 * (t[0] + t[-1]), b["amplitude"] * 1.02, f"{b['freq_hz']:.4f} Hz", ha="center", fontsize=8)
     for e in survey.get("events", []):

@@ -38,8 +38,44 @@ __all__ = [
     "estimate_tone",
     "fit_stimulation",
     "nominal_frequencies",
+    "RAMP_SHAPES",
+    "ramp_level",
     "tone_crb",
 ]
+
+#: shapes a block's ramps may take: straight lines, or half a cosine period (a raised cosine,
+#: which some stimulators use to soften the switch on and off); see :func:`ramp_level`
+RAMP_SHAPES = ("linear", "cosine")
+
+
+def ramp_level(tau: np.ndarray, shape: str = "linear") -> np.ndarray:
+    """Level of a ramp at ``tau`` (0 at its foot, 1 at its corner; clipped to [0, 1]).
+
+    Parameters
+    ----------
+    tau : ndarray
+        Position along the ramp: 0 at the foot, 1 at the plateau.
+    shape : {"linear", "cosine"}
+        ``"cosine"`` is ``(1 - cos(pi tau)) / 2``: no slope at either end.
+
+    Returns
+    -------
+    ndarray
+        Between 0 and 1, the shape of ``tau``.
+    """
+    tau = np.clip(tau, 0.0, 1.0)
+    if shape == "cosine":
+        return 0.5 - 0.5 * np.cos(np.pi * tau)
+    if shape != "linear":
+        raise ValueError(f"ramp shape must be one of {RAMP_SHAPES}, got {shape!r}")
+    return tau
+
+
+def _ramp_slope(tau: np.ndarray, shape: str) -> np.ndarray:
+    """Derivative of :func:`ramp_level` in ``tau``; 0 outside the ramp."""
+    inside = (tau > 0.0) & (tau < 1.0)
+    d = 0.5 * np.pi * np.sin(np.pi * np.clip(tau, 0.0, 1.0)) if shape == "cosine" else np.ones_like(tau)
+    return np.where(inside, d, 0.0)
 
 
 @dataclass
@@ -52,7 +88,8 @@ class StimBlock:
     holds start, ramp corners and stop as the whole recording has them
     (shifted like the others) when :meth:`StimulationModel.window` clipped
     the block to a piece of it: the ramps' shape is the block's, not the
-    piece's.
+    piece's. ``ramp_shape`` is one of :data:`RAMP_SHAPES` (both ramps of a
+    block share it; see :func:`ramp_level`).
     """
 
     kind: str
@@ -66,6 +103,7 @@ class StimBlock:
     amplitude: float
     drift_ppm: float | None = None
     edges: tuple[int, int, int, int] | None = None
+    ramp_shape: str = "linear"
 
     def geometry(self) -> tuple[int, int, int, int]:
         """Start, ramp-up end, ramp-down start and stop of the whole block (see ``edges``)."""
@@ -153,7 +191,7 @@ class StimulationModel:
                 b.kind, max(b.start, start) - start, min(b.stop, stop) - start,
                 int(np.clip(b.ramp_up_stop, start, stop)) - start, int(np.clip(b.ramp_down_start, start, stop)) - start,
                 b.freq_hz, b.phase_ref, b.ref_sample - start, b.amplitude, b.drift_ppm,
-                tuple(int(v) - start for v in b.geometry())))
+                tuple(int(v) - start for v in b.geometry()), b.ramp_shape))
         return StimulationModel(self.fs, stop - start, blocks, self.nominal_freq_hz, self.reference)
 
     def to_dict(self) -> dict:
@@ -605,10 +643,12 @@ def fit_decimated(
                                       ref_sample, amp, drift))
     if read is not None:
         for k, blk in enumerate(model.blocks):
+            bounds = (model.blocks[k - 1].stop if k else 0,
+                      model.blocks[k + 1].start if k + 1 < len(model.blocks) else n)
             if blk.kind == "active":
-                bounds = (model.blocks[k - 1].stop if k else 0,
-                          model.blocks[k + 1].start if k + 1 < len(model.blocks) else n)
                 _edges_at_full_rate(read, model, blk, fs_ds, bounds)
+            elif blk.start > 0 and blk.stop < n:
+                _sham_at_full_rate(read, model, blk, fs_ds, bounds)
     return model
 
 
@@ -628,6 +668,7 @@ def _edges_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: fl
     n = model.n_samples
     tenth = 0.1 * model.fs / blk.freq_hz
     longest = max(_WHOLE_RAMP_CYCLES / blk.freq_hz, _WHOLE_RAMP_S) * model.fs
+    ramps = []
     for rising, foot_name, corner_name in ((True, "start", "ramp_up_stop"), (False, "stop", "ramp_down_start")):
         foot, corner = getattr(blk, foot_name), getattr(blk, corner_name)
         if (foot <= 0) if rising else (foot >= n):
@@ -636,10 +677,232 @@ def _edges_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: fl
                          foot_only=abs(corner - foot) >= longest)
         if ramp is not None and abs(ramp[1] - ramp[0]) >= tenth:
             foot, corner = ramp
+            ramps.append((rising, foot_name, corner_name))
         elif ramp is not None or abs(corner - foot) <= 1:
             foot = corner = _step_sample(read, model, blk, foot if ramp is None else ramp[0], fs_ds, rising=rising)
         setattr(blk, foot_name, foot)
         setattr(blk, corner_name, corner)
+    if ramps:
+        _choose_ramp_shape(read, model, blk, fs_ds, bounds, ramps)
+
+
+def _sham_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: float,
+                       bounds: tuple[int, int]) -> None:
+    """Place a sham block's feet and peak on the full-rate reference, and choose its ramps' shape.
+
+    A sham block ramps up and straight back down: no plateau to learn the
+    cycle from, so the mean cycle is taken over 8 cycles around the peak
+    (its level there only scales it; the amplitude is profiled out). The
+    two feet and the peak are searched together on chunk sums
+    (:func:`_chunk_sums`), for straight and for raised-cosine ramps, on a
+    grid refined around the best; the shape is chosen as for an active
+    block (:func:`_choose_ramp_shape`). From the decimated envelope alone,
+    raised-cosine sham ramps (3 s) began 0.5 s late and 5% of the
+    artifact's peak was left before them.
+    """
+    fs = model.fs
+    cyc = fs / blk.freq_hz
+    s1, p, s2 = blk.start, blk.ramp_up_stop, blk.stop
+    ramp = max(p - s1, s2 - p)
+    if min(p - s1, s2 - p) < 2 * cyc:
+        return
+    reach = int(np.ceil(max(2.5 * cyc, 0.4 * ramp, 3 * fs / fs_ds)))
+    lo, hi = max(s1 - reach, bounds[0], 0), min(s2 + reach, bounds[1], model.n_samples)
+    got = _cycle_template(read, model, blk, max(p - int(4 * cyc), s1), min(p + int(4 * cyc), s2))
+    if got is None or got[3].any():
+        return  # a clipped reference keeps the envelope's sham (see _choose_ramp_shape)
+    centres, tmpl, offset = got[:3]
+    x = np.asarray(read(lo, hi), dtype=np.float64) - offset
+    t = np.interp(np.mod(model.cycles(blk, lo, hi), 1.0), centres, tmpl, period=1.0)
+    h = int(max(1, min(max(round(fs / 1000.0), (hi - lo) // 2000), ramp // 16)))
+    sums = _chunk_sums(x, t, h)
+    m = x.size
+    coarse = np.array([s1 - lo, p - lo, s2 - lo], dtype=np.float64)
+    fits = {}
+    for shape, longer in (("linear", (0.85, 1.2)), ("cosine", (1.0, 1.9))):
+        # the feet move out by up to half the extra length, the peak stays near the envelope's
+        span = np.array([0.5 * (longer[1] - 1.0) + 0.15, 0.15, 0.5 * (longer[1] - 1.0) + 0.15]) * ramp
+        centre = coarse + np.array([-0.5, 0.0, 0.5]) * (longer[0] + longer[1] - 2.0) / 2 * ramp
+        best = None
+        for _ in range(4):
+            axes = [np.linspace(c - w, c + w, 9) for c, w in zip(centre, span)]
+            a, b, c = (g.ravel() for g in np.meshgrid(*axes, indexing="ij"))
+            ok = (a >= 0) & (b - a >= 1) & (c - b >= 1) & (c <= m - 1)
+            if not ok.any():
+                break
+            a, b, c = a[ok], b[ok], c[ok]
+            v = _explained(sums, _sham_levels(sums, a, b, c, shape))
+            k = int(np.argmax(v))
+            if best is None or v[k] > best[3]:
+                best = (float(a[k]), float(b[k]), float(c[k]), float(v[k]))
+            centre, span = np.array(best[:3]), span / 4
+        if best is None or not np.isfinite(best[3]):
+            return
+        fits[shape] = best
+    lv = {sh: _sham_levels(sums, *(np.array([v]) for v in f[:3]), sh) for sh, f in fits.items()}
+    dist = _distance(sums, lv["linear"], lv["cosine"])
+    shape = "cosine" if dist > 0 and fits["cosine"][3] - fits["linear"][3] > _COSINE_EVIDENCE * dist else "linear"
+    a, b, c = (int(round(lo + v)) for v in fits[shape][:3])
+    blk.start, blk.ramp_up_stop, blk.ramp_down_start, blk.stop = a, b, b, c
+    blk.ramp_shape = shape
+
+
+def _sham_levels(sums: tuple, a: np.ndarray, b: np.ndarray, c: np.ndarray, shape: str) -> tuple:
+    """Levels and slopes per chunk of a sham: up from ``a`` to the peak ``b``, down to ``c`` (one row per candidate)."""
+    centre = sums[0][None, :]
+    a, b, c = (np.reshape(v, (-1, 1)).astype(np.float64) for v in (a, b, c))
+    up = (centre - a) / (b - a)
+    down = (c - centre) / (c - b)
+    rising = centre < b
+    tau = np.where(rising, up, down)
+    r = ramp_level(tau, shape)
+    dr = _ramp_slope(tau, shape) * np.where(rising, 1.0 / (b - a), -1.0 / (c - b))
+    return r, dr
+
+
+def _explained(sums: tuple, lv: tuple) -> np.ndarray:
+    """Energy explained by levels ``lv`` times the cycle, the amplitude profiled out (one per candidate)."""
+    _, sB, dB = sums[:3]
+    num = (lv[0] * sB + lv[1] * dB).sum(axis=1)
+    den = _cross(sums, lv, lv)
+    return np.where((num > 0) & (den > 0), num * num / np.maximum(den, 1e-300), -np.inf)
+
+
+def _distance(sums: tuple, one: tuple, two: tuple) -> float:
+    """Energy of the difference between two fitted envelopes (levels of one candidate each), amplitudes included."""
+    _, sB, dB = sums[:3]
+    amp = [float((l[0] * sB + l[1] * dB).sum() / _cross(sums, l, l)[0]) for l in (one, two)]
+    return float(amp[0] ** 2 * _cross(sums, one, one)[0] + amp[1] ** 2 * _cross(sums, two, two)[0]
+                 - 2 * amp[0] * amp[1] * _cross(sums, one, two)[0])
+
+
+def _choose_ramp_shape(read, model: StimulationModel, blk: StimBlock, fs_ds: float, bounds: tuple[int, int],
+                       ramps: list) -> None:
+    """Keep ``blk``'s straight ramps, or make them raised cosines if those clearly explain its ramps better.
+
+    Both shapes are fitted to every ramp of the block (``ramps``: rising
+    flag and the block's attribute names of foot and corner) as in
+    :func:`_ramp_fit` (least squares, the amplitude profiled out), over the
+    whole ramp, from the straight fit's ends: a raised cosine is about 1.37
+    times as long as the straight line that fits it best (computed here),
+    with the same middle. Both shapes have two parameters per ramp; the
+    evidence is the difference of the energies they explain, in units of
+    the energy of the difference between the two fitted ramps: about +1
+    where the ramps are raised cosines, -1 where they are straight, and
+    in between where the LFP near the stimulation frequency is as strong as
+    that difference (a weak artifact, a short ramp). Cosines are kept when
+    the evidence over the block's ramps exceeds :data:`_COSINE_EVIDENCE` and
+    no ramp speaks against them (a stimulator's two ramps share a shape).
+    Straight lines fitted to raised cosines start late and leave up to a
+    tenth of the artifact beside the feet (100-400 uV of a 4 mV artifact,
+    measured on an independent generator); the other way round costs as
+    much, so an unclear case keeps straight ramps, the common kind.
+    """
+    fits, gained, apart = [], 0.0, 0.0
+    for rising, foot_name, corner_name in ramps:
+        foot, corner = getattr(blk, foot_name), getattr(blk, corner_name)
+        win = _ramp_window(read, model, blk, foot, corner, fs_ds, rising, bounds)
+        if win is None or win.c0 - win.f0 < 4 or win.railed:
+            # a clipped reference keeps straight ramps: its envelope flattens early, its corners come
+            # early, and what is left of its ramp near them was measured to lean either way
+            return
+        length = win.c0 - win.f0
+        # chunks of 1 ms, or 1/200 of a long ramp (the level's curvature within a chunk is then a
+        # few 1e-5 of it), and 16 per ramp at least
+        h = int(max(1, min(max(round(model.fs / 1000.0), length // 200), length // 16)))
+        sums = _chunk_sums(win.x, win.t, h)
+        lin = _shape_search(sums, 0.5 * (win.f0 + win.c0), length, (0.8, 1.25), "linear", win.x.size)
+        cos = _shape_search(sums, 0.5 * (win.f0 + win.c0), length, (1.0, 1.9), "cosine", win.x.size)
+        e_lin, e_cos = lin[3], cos[3]
+        dist = _shape_distance(sums, lin, cos)
+        if not (np.isfinite(e_lin) and np.isfinite(e_cos) and dist > 0):
+            return
+        if e_cos <= e_lin:
+            return
+        fits.append((foot_name, corner_name, win.sample(cos[1]), win.sample(cos[2])))
+        gained += e_cos - e_lin
+        apart += dist
+    if gained > _COSINE_EVIDENCE * apart:
+        for foot_name, corner_name, foot, corner in fits:
+            setattr(blk, foot_name, foot)
+            setattr(blk, corner_name, corner)
+        blk.ramp_shape = "cosine"
+
+
+#: evidence for raised-cosine ramps (see :func:`_choose_ramp_shape`): the explained energy they
+#: gain over straight ones, in units of the energy between the two fits; this project's choice
+#: (+1 is a clean cosine, -1 a clean straight ramp)
+_COSINE_EVIDENCE = 0.25
+
+
+def _chunk_sums(x: np.ndarray, t: np.ndarray, h: int) -> tuple:
+    """Per chunk of ``h`` samples: its centre and the sums of ``x t``, ``d x t``, ``t^2``, ``d t^2``, ``d^2 t^2``.
+
+    ``d`` is a sample's distance from its chunk's centre: a ramp level
+    linear within a chunk (first order in ``h`` over the ramp's length) is
+    then exact on the chunk's sums.
+    """
+    m = x.size
+    k = -(-m // h)
+    B = np.zeros(k * h)
+    A = np.zeros(k * h)
+    B[:m] = x * t
+    A[:m] = t * t
+    B, A = B.reshape(k, h), A.reshape(k, h)
+    d = np.arange(h) - 0.5 * (h - 1)
+    return np.arange(k) * h + 0.5 * (h - 1), B.sum(1), B @ d, A.sum(1), A @ d, A @ (d * d)
+
+
+def _levels(sums: tuple, s: np.ndarray, c: np.ndarray, shape: str) -> tuple[np.ndarray, np.ndarray]:
+    """Ramp level and its slope per sample at each chunk's centre, one row per candidate ``(s, c)``."""
+    centre = sums[0]
+    L = np.maximum(np.asarray(c, dtype=np.float64) - s, 1.0).reshape(-1, 1)
+    tau = (centre[None, :] - np.reshape(s, (-1, 1))) / L
+    return ramp_level(tau, shape), _ramp_slope(tau, shape) / L
+
+
+def _cross(sums: tuple, one: tuple, two: tuple) -> np.ndarray:
+    """``sum r1 r2 t^2`` over the window, from the chunk sums, for levels ``one`` and ``two``."""
+    _, _, _, sA, dA, ddA = sums
+    (r1, d1), (r2, d2) = one, two
+    return (r1 * r2 * sA + (r1 * d2 + r2 * d1) * dA + d1 * d2 * ddA).sum(axis=1)
+
+
+def _shape_explained(sums: tuple, s: np.ndarray, c: np.ndarray, shape: str) -> np.ndarray:
+    """Energy a ramp of ``shape`` from ``s`` to ``c`` (window samples), then a plateau, explains (see :func:`_ramp_fit`)."""
+    return _explained(sums, _levels(sums, s, c, shape))
+
+
+def _shape_distance(sums: tuple, one: tuple, two: tuple) -> float:
+    """Energy of the difference between two fitted ramps ``(shape, foot, corner, energy)``, amplitudes included."""
+    return _distance(sums, *(_levels(sums, np.array([f[1]]), np.array([f[2]]), f[0]) for f in (one, two)))
+
+
+def _shape_search(sums: tuple, middle: float, length: float, longer: tuple[float, float], shape: str,
+                  m: int) -> tuple[str, float, float, float]:
+    """Best ramp of ``shape`` near ``middle``, ``longer`` times ``length`` long: ``(shape, foot, corner, energy)``.
+
+    A grid over the middle (within a fifth of ``length``) and the length,
+    refined twice around the best.
+    """
+    mids = (middle - 0.2 * length, middle + 0.2 * length)
+    lens = (longer[0] * length, longer[1] * length)
+    best = (shape, middle - 0.5 * length, middle + 0.5 * length, -np.inf)
+    for _ in range(3):
+        mm, ll = np.meshgrid(np.linspace(*mids, 17), np.linspace(*lens, 17), indexing="ij")
+        s, c = (mm - 0.5 * ll).ravel(), (mm + 0.5 * ll).ravel()
+        ok = (s >= 0) & (c <= m - 1)
+        if not ok.any():
+            break
+        s, c = s[ok], c[ok]
+        v = _shape_explained(sums, s, c, shape)
+        k = int(np.argmax(v))
+        if v[k] > best[3]:
+            best = (shape, float(s[k]), float(c[k]), float(v[k]))
+        mid, ln = 0.5 * (best[1] + best[2]), best[2] - best[1]
+        dm, dl = (mids[1] - mids[0]) / 16, (lens[1] - lens[0]) / 16
+        mids, lens = (mid - 2 * dm, mid + 2 * dm), (max(ln - 2 * dl, 1.0), ln + 2 * dl)
+    return best
 
 
 def nominal_frequencies(stim_freq) -> list[float] | None:
@@ -706,6 +969,7 @@ def _cycle_template(read, model: StimulationModel, blk: StimBlock, a: int, b: in
 
     Returns None where a bin is empty. The offset is the slow LFP under those
     cycles (the mean cycle's own mean), the template the mean cycle less it.
+    Also returns the bins where the reference sat on a rail and the rails' values.
     """
     cyc = model.fs / blk.freq_hz
     x = np.asarray(read(a, b), dtype=np.float64)
@@ -721,11 +985,13 @@ def _cycle_template(read, model: StimulationModel, blk: StimBlock, a: int, b: in
     # phases where the reference sat on a rail: its ramp is unclipped there and the mean cycle is not
     hi, lo = x.max(), x.min()
     railed = np.zeros(n_bins, bool)
+    rails = []
     for v in (hi, lo):
         at = x == v
         if at.mean() > 0.002:
             railed |= np.bincount(k[at], minlength=n_bins) > 0
-    return (np.arange(n_bins) + 0.5) / n_bins, tmpl, offset, railed
+            rails.append(float(v))
+    return (np.arange(n_bins) + 0.5) / n_bins, tmpl, offset, railed, rails
 
 
 def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds: float, rising: bool) -> int:
@@ -750,7 +1016,7 @@ def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds
     got = _cycle_template(read, model, blk, a, b)
     if got is None:
         return int(edge)
-    centres, tmpl, offset, _ = got
+    centres, tmpl, offset = got[:3]
     w = np.asarray(read(lo, hi), dtype=np.float64) - offset
     t = np.interp(np.mod(model.cycles(blk, lo, hi), 1.0), centres, tmpl, period=1.0)
     e = t * t - 2.0 * w * t
@@ -792,6 +1058,74 @@ def _ramp_fit(read, model: StimulationModel, blk: StimBlock, foot: int, corner: 
     (a few per cent) tilt a single line by tens of ms at the corner, where
     the gain follows them anyway, while near the foot the line is short.
     """
+    win = _ramp_window(read, model, blk, foot, corner, fs_ds, rising, bounds, foot_only)
+    if win is None:
+        return None
+    x, t, m, reach, f0, c0 = win.x, win.t, win.x.size, win.reach, win.f0, win.c0
+    cyc = model.fs / blk.freq_hz
+    i = np.arange(m, dtype=np.float64)
+    B, A = x * t, t * t
+
+    def run(v):
+        return np.concatenate(([0.0], np.cumsum(v)))
+
+    sB, siB, sA, siA, siiA = run(B), run(i * B), run(A), run(i * A), run(i * i * A)
+
+    def explained(s, c):
+        # ramp samples s .. c - 1 at (i - s) / (c - s), plateau c .. m - 1 at 1
+        L = np.maximum(c - s, 1.0)
+        si, ci = s.astype(np.int64), np.minimum(c, m).astype(np.int64)  # a fixed corner may lie beyond
+        num = (siB[ci] - siB[si] - s * (sB[ci] - sB[si])) / L + (sB[m] - sB[ci])
+        den = ((siiA[ci] - siiA[si]) - 2 * s * (siA[ci] - siA[si]) + s * s * (sA[ci] - sA[si])) / (L * L) \
+            + (sA[m] - sA[ci])
+        return np.where((num > 0) & (den > 0), num * num / np.maximum(den, 1e-300), -np.inf)
+
+    top = m - int(cyc)  # a cycle of plateau stays in the window
+    s_lo, s_hi = max(0, f0 - reach), min(top, f0 + reach)
+    c_lo, c_hi = max(0, c0 - reach), min(top, c0 + reach)
+    if foot_only:
+        s_lo, s_hi, c_lo, c_hi = max(0, f0 - reach), min(m - 1, f0 + reach, c0 - 1), c0, c0
+    step = max(1, (max(s_hi - s_lo, c_hi - c_lo)) // 192)
+    best = None
+    while True:
+        ss, cc = np.meshgrid(np.arange(s_lo, s_hi + 1, step), np.arange(c_lo, c_hi + 1, step), indexing="ij")
+        ok = cc >= ss
+        if not ok.any():
+            return None
+        ss, cc = ss[ok].astype(np.float64), cc[ok].astype(np.float64)
+        k = int(np.argmax(explained(ss, cc)))
+        best = int(ss[k]), int(cc[k])
+        if step == 1:
+            break
+        s_lo, s_hi = max(0, best[0] - 3 * step), min(s_hi, best[0] + 3 * step)
+        if not foot_only:
+            c_lo, c_hi = max(0, best[1] - 3 * step), min(top, best[1] + 3 * step)
+        step = max(1, step // 8)
+    return win.sample(best[0]), win.sample(best[1])
+
+
+@dataclass
+class _RampWindow:
+    """The samples around a ramp, read as a rising ramp: data less the slow offset, and the plateau's cycle."""
+
+    x: np.ndarray
+    t: np.ndarray
+    lo: int
+    hi: int
+    rising: bool
+    f0: int  # the coarse foot and corner, in window samples
+    c0: int
+    reach: int
+    railed: bool = False  # the reference is clipped on the plateau
+
+    def sample(self, k: float) -> int:
+        """The recording's sample at window position ``k``."""
+        return int(round(self.lo + k)) if self.rising else int(round(self.hi - 1 - k))
+
+
+def _ramp_window(read, model: StimulationModel, blk: StimBlock, foot: int, corner: int, fs_ds: float,
+                 rising: bool, bounds: tuple[int, int | None] = (0, None), foot_only: bool = False):
+    """The window :func:`_ramp_fit` searches (see there), or None without a plateau to learn from."""
     fs, n = model.fs, model.n_samples
     cyc = fs / blk.freq_hz
     reach = int(np.ceil(max(2.5 * cyc, 0.3 * abs(corner - foot), 3 * fs / fs_ds)))
@@ -815,58 +1149,21 @@ def _ramp_fit(read, model: StimulationModel, blk: StimBlock, foot: int, corner: 
     got = _cycle_template(read, model, blk, a, b)
     if got is None:
         return None
-    centres, tmpl, offset, railed = got
+    centres, tmpl, offset, railed, rails = got
     ph = np.mod(model.cycles(blk, lo, hi), 1.0)
     t = np.interp(ph, centres, tmpl, period=1.0)
+    x = np.asarray(read(lo, hi), dtype=np.float64)
     if railed.any():
         n_bins = centres.size
         t[railed[np.minimum((ph * n_bins).astype(np.int64), n_bins - 1)]] = 0.0
-    x = np.asarray(read(lo, hi), dtype=np.float64) - offset
+        # and samples on a rail at other phases (the heartbeat lifts a phase the plateau's cycles
+        # kept clear): clipped near a corner, they round it
+        t[np.isin(x, rails)] = 0.0
+    x -= offset
     if not rising:  # a falling ramp is a rising one read backwards
         x, t = x[::-1], t[::-1]
-    m = x.size
-    i = np.arange(m, dtype=np.float64)
-    B, A = x * t, t * t
-
-    def run(v):
-        return np.concatenate(([0.0], np.cumsum(v)))
-
-    sB, siB, sA, siA, siiA = run(B), run(i * B), run(A), run(i * A), run(i * i * A)
-
-    def explained(s, c):
-        # ramp samples s .. c - 1 at (i - s) / (c - s), plateau c .. m - 1 at 1
-        L = np.maximum(c - s, 1.0)
-        si, ci = s.astype(np.int64), np.minimum(c, m).astype(np.int64)  # a fixed corner may lie beyond
-        num = (siB[ci] - siB[si] - s * (sB[ci] - sB[si])) / L + (sB[m] - sB[ci])
-        den = ((siiA[ci] - siiA[si]) - 2 * s * (siA[ci] - siA[si]) + s * s * (sA[ci] - sA[si])) / (L * L) \
-            + (sA[m] - sA[ci])
-        return np.where((num > 0) & (den > 0), num * num / np.maximum(den, 1e-300), -np.inf)
-
-    # the coarse ends in this (possibly reversed) window
     f0, c0 = (foot - lo, corner - lo) if rising else (hi - 1 - foot, hi - 1 - corner)
-    top = m - int(cyc)  # a cycle of plateau stays in the window
-    s_lo, s_hi = max(0, f0 - reach), min(top, f0 + reach)
-    c_lo, c_hi = max(0, c0 - reach), min(top, c0 + reach)
-    if foot_only:
-        s_lo, s_hi, c_lo, c_hi = max(0, f0 - reach), min(m - 1, f0 + reach, c0 - 1), c0, c0
-    step = max(1, (max(s_hi - s_lo, c_hi - c_lo)) // 192)
-    best = None
-    while True:
-        ss, cc = np.meshgrid(np.arange(s_lo, s_hi + 1, step), np.arange(c_lo, c_hi + 1, step), indexing="ij")
-        ok = cc >= ss
-        if not ok.any():
-            return None
-        ss, cc = ss[ok].astype(np.float64), cc[ok].astype(np.float64)
-        k = int(np.argmax(explained(ss, cc)))
-        best = int(ss[k]), int(cc[k])
-        if step == 1:
-            break
-        s_lo, s_hi = max(0, best[0] - 3 * step), min(s_hi, best[0] + 3 * step)
-        if not foot_only:
-            c_lo, c_hi = max(0, best[1] - 3 * step), min(top, best[1] + 3 * step)
-        step = max(1, step // 8)
-    s, c = best
-    return (lo + s, lo + c) if rising else (hi - 1 - s, hi - 1 - c)
+    return _RampWindow(x, t, lo, hi, rising, int(f0), int(c0), reach, bool(railed.any()))
 
 
 def _from_events(times: np.ndarray, fs: float, n: int, stim_freq) -> StimulationModel:

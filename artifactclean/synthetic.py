@@ -29,6 +29,8 @@ from typing import Sequence
 import numpy as np
 from scipy.special import i0
 
+from .stimulation import ramp_level
+
 __all__ = [
     "ArtifactSpec",
     "BlockSpec",
@@ -56,9 +58,11 @@ class BlockSpec:
     amplitude_scale : float
         Multiplies :attr:`ArtifactSpec.amplitude_uv` in this block.
     ramp_s : float
-        Duration of each linear ramp.
+        Duration of each ramp.
     phase0 : float
         Stimulator phase (rad) at the block start.
+    ramp_shape : {"linear", "cosine"}
+        Straight ramps, or raised cosines (:func:`artifactclean.stimulation.ramp_level`).
     """
 
     start_s: float
@@ -68,6 +72,7 @@ class BlockSpec:
     amplitude_scale: float = 1.0
     ramp_s: float = 1.0
     phase0: float = 0.0
+    ramp_shape: str = "linear"
 
 
 @dataclass
@@ -290,7 +295,7 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
         wave = _harmonic_sum(ph_held, spec.harmonics)
         env = np.ones_like(t)
         if blk.ramp_s > 0:
-            env = np.clip(np.minimum(t_held, dur - t_held) / blk.ramp_s, 0.0, 1.0)
+            env = ramp_level(np.minimum(t_held, dur - t_held) / blk.ramp_s, blk.ramp_shape)
         out[i0_:i1_] = blk.amplitude_scale * env * wave
         quad[i0_:i1_] = blk.amplitude_scale * env * _harmonic_derivative(ph_held, spec.harmonics)
         phase[i0_:i1_] = np.mod(2 * np.pi * f_true * t + blk.phase0, 2 * np.pi)
@@ -300,6 +305,7 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
                 start_s=i0_ / fs,
                 stop_s=i1_ / fs,
                 ramp_s=blk.ramp_s,
+                ramp_shape=blk.ramp_shape,
                 nominal_freq_hz=f_nom,
                 freq_hz=f_true,
                 amplitude_uv=spec.amplitude_uv * blk.amplitude_scale,

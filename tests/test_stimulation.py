@@ -164,6 +164,26 @@ def test_ramps_are_placed_at_the_full_rate(freq, ramp_s):
     assert np.abs(np.array(blk.geometry()) - truth).max() <= 2
 
 
+@pytest.mark.parametrize("freq, ramp_s", [(5.0, 1.0), (20.0, 0.3), (40.0, 1.0)])
+def test_raised_cosine_ramps_are_recognised(freq, ramp_s):
+    """Raised-cosine ramps are fitted as such: the block's envelope within 2% of the generator's
+    everywhere (the 2% heartbeat tilts a short ramp). A straight line fitted to one (0.73 times as
+    long, same middle) is 4-5% off near its feet and corners. Straight ramps stay straight."""
+    from artifactclean.estimators.cycles import trapezoid
+
+    fs = 30000.0
+    t = np.arange(int(9.0 * fs)) / fs
+    tau = np.clip(np.minimum(t - 2.0, 7.0 - t) / ramp_s, 0.0, 1.0)
+    for shape, env in (("cosine", 0.5 - 0.5 * np.cos(np.pi * tau)), ("linear", tau)):
+        rec = simulate_recording(9.0, artifact=ArtifactSpec(freq_hz=freq, drift_ppm=40.0),
+                                 blocks=[BlockSpec(start_s=2.0, duration_s=5.0, ramp_s=ramp_s, ramp_shape=shape)],
+                                 seed=11)
+        (blk,) = fit_stimulation(rec.data, fs, stim_freq=freq).blocks
+        assert blk.ramp_shape == shape
+        assert blk.to_dict(fs)["ramp_shape"] == shape
+        assert np.abs(trapezoid(t.size, blk, 0) - env).max() < 0.02
+
+
 def test_a_recording_that_starts_and_stops_inside_a_block():
     """No ramp is seen at the recording's own ends: the block runs from its first to its last sample."""
     rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=20.0),

@@ -159,3 +159,25 @@ def test_heartbeat_phase_shift_of_the_artifact():
     z0 = flat.artifact[0] * np.exp(-2j * np.pi * f * t)
     lp0 = signal.sosfiltfilt(sos, z0.real) + 1j * signal.sosfiltfilt(sos, z0.imag)
     assert np.ptp(np.degrees(np.unwrap(np.angle(lp0[plateau])))) < 0.01
+
+
+def test_raised_cosine_ramps_follow_a_hann_window():
+    """A raised-cosine ramp of N samples is the rising half of a 2N-sample Hann window
+    (``scipy.signal.windows.hann``), and a straight one a line; the plateau is 1."""
+    fs, ramp_s = 2000.0, 0.5
+    spec = ArtifactSpec(freq_hz=20.0, harmonics=(), heart_depth=0, resp_depth=0, lsb_uv=None, drift_ppm=0.0)
+    n_ramp = int(ramp_s * fs)
+    k = np.arange(int(1.0 * fs), int(1.0 * fs) + n_ramp)
+    expected = {"cosine": signal.windows.hann(2 * n_ramp + 1)[:n_ramp], "linear": np.arange(n_ramp) / n_ramp}
+    for shape, want in expected.items():
+        rec = simulate_recording(4.0, fs=fs, n_channels=1, artifact=spec,
+                                 blocks=[BlockSpec(1.0, 2.0, ramp_s=ramp_s, ramp_shape=shape)], seed=8)
+        wave = np.cos(rec.stim_phase[k])
+        sure = np.abs(wave) > 0.5
+        env = rec.artifact[0, k][sure] / (4000.0 * wave[sure])
+        np.testing.assert_allclose(env, want[sure], atol=2e-3)
+        plateau = np.arange(int(1.6 * fs), int(2.4 * fs))
+        assert np.abs(np.abs(rec.artifact[0, plateau]).max() / 4000.0 - 1.0) < 2e-3
+        assert rec.blocks[0]["ramp_shape"] == shape
+    with pytest.raises(ValueError, match="ramp shape"):
+        simulate_recording(2.0, fs=fs, n_channels=1, artifact=spec, blocks=[BlockSpec(0.5, 1.0, ramp_shape="square")])

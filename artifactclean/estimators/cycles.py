@@ -20,6 +20,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
+from ..stimulation import ramp_level
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle
 from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, step_rate
@@ -77,12 +78,12 @@ def block_key(blk) -> tuple:
 
 
 def trapezoid(n: int, blk, offset: int) -> np.ndarray:
-    """Block envelope on samples ``offset .. offset + n``: linear ramps, plateau 1, 0 outside."""
+    """Block envelope on samples ``offset .. offset + n``: ramps of the block's shape, plateau 1, 0 outside."""
     i = np.arange(offset, offset + n, dtype=np.float64)
     start, up_stop, down_start, stop = blk.geometry()  # the whole block's ramps, in a piece too
     up = (i - start) / max(up_stop - start, 1) if up_stop > start else np.where(i >= start, 1.0, 0.0)
     down = (stop - i) / max(stop - down_start, 1) if stop > down_start else np.where(i < stop, 1.0, 0.0)
-    env = np.clip(np.minimum(up, down), 0.0, 1.0)
+    env = ramp_level(np.minimum(up, down), getattr(blk, "ramp_shape", "linear"))
     # a small floor keeps margin cycles (no artifact expected) from dividing by zero
     return np.maximum(env, 1e-3)
 
@@ -713,7 +714,10 @@ class RowModelEstimator(CycleEstimator):
         else:
             rel = np.where(env < _FOOT, 1.0, g_row / np.maximum(env, 1e-300))
             g_bin = np.interp(at_bins.ravel(), centres, rel).reshape(n_rows, n_bins) * trap_bins
-        ok = g_bin >= _FOOT
+        # a bin below half its row centre's level is filled from its neighbours, not scaled up: scaled
+        # by up to 1 / _FOOT, its noise and LFP swayed the row's fit, which is read back at full level
+        # at the ramp's other end (a 0.3 s raised-cosine ramp at 5 Hz: 27% of the artifact's peak left)
+        ok = g_bin >= np.maximum(_FOOT, 0.5 * g_row[:, None])
         vd = np.where(ok, v * g_row[:, None] / np.where(ok, g_bin, 1.0), 0.0)
         return g_row, vd, w * ok, dict(lead=h, lead_scale=scale, level=level)
 
