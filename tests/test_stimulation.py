@@ -184,6 +184,20 @@ def test_raised_cosine_ramps_are_recognised(freq, ramp_s):
         assert np.abs(trapezoid(t.size, blk, 0) - env).max() < 0.02
 
 
+def test_a_sham_beside_a_stronger_block_is_found(recwarn):
+    """A 2 s sham at 5 Hz beside a 5 s active block: the active block raised the background its
+    search judged against, the sham stayed above the threshold under 8 cycles and was missed (its
+    4 mV left whole), and the search for other frequencies reported it as a second 5 Hz."""
+    rec = simulate_recording(12.0, artifact=ArtifactSpec(freq_hz=5.0, drift_ppm=40.0),
+                             blocks=[BlockSpec(2.0, 5.0, ramp_s=1.0), BlockSpec(9.0, 0.0, kind="sham", ramp_s=1.0)],
+                             seed=5)
+    model = fit_stimulation(rec.data, rec.fs, stim_freq=5.0)
+    assert [b.kind for b in model.blocks] == ["active", "sham"]
+    sham = model.blocks[1]
+    assert abs(sham.start / rec.fs - 9.0) < 0.05 and abs(sham.stop / rec.fs - 11.0) < 0.05
+    assert not [w for w in recwarn if "besides" in str(w.message)]
+
+
 def test_a_recording_that_starts_and_stops_inside_a_block():
     """No ramp is seen at the recording's own ends: the block runs from its first to its last sample."""
     rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=20.0),
