@@ -620,10 +620,15 @@ def fit_decimated(
     model = StimulationModel(fs=fs, n_samples=n, nominal_freq_hz=stim_freq, reference=source)
     scale = fs / fs_ds
     pairs = sorted(((sg, f_guess, nominal) for f_guess, nominal, segs in found for sg in segs), key=lambda p: p[0].start)
+    tones = []
     for sg, f_guess, nominal in pairs:
         # ramps carry phase information too: fit over the whole segment
         a, b = int(max(0, np.ceil(sg.start))), int(min(x_ds.size, np.floor(sg.stop) + 1))
-        f_b, ph_c, amp = estimate_tone(x_ds[a:b], fs_ds, freq_hint=f_guess)
+        tones.append((a, b, *estimate_tone(x_ds[a:b], fs_ds, freq_hint=f_guess)))
+    keep = _one_clock(pairs, tones, x_ds, fs_ds)
+    for (sg, f_guess, nominal), (a, b, f_b, ph_c, amp), kept in zip(pairs, tones, keep):
+        if not kept:
+            continue
         # phase at the segment centre, mapped to the full-rate sample grid
         centre_ds = a + (b - a - 1) / 2.0
         ref_sample = int(round(centre_ds * scale))
@@ -965,6 +970,51 @@ def _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax, free=No
     return found
 
 
+def _one_clock(pairs: list, tones: list, x_ds: np.ndarray, fs_ds: float) -> list[bool]:
+    """Which segments keep their place as blocks: those on the stimulator's clock.
+
+    Blocks searched at one frequency come from one stimulator, whose clock
+    gives them one frequency (to its drift, a few ppm within a session). A
+    segment whose refined frequency is off the longest segment's by more
+    than :data:`_CLOCK_SPREAD` (or 5 standard deviations of the two
+    estimates, Cramér-Rao bound with the segment's own noise: Kay 1993,
+    eq. 3.41) is not stimulation: an oscillation of the LFP near the
+    stimulation frequency, 10 times the background for 8 cycles (alpha at
+    an individual alpha frequency), would otherwise be cleaned away as a
+    sham block. Such stretches are named in a warning and left as recorded.
+    """
+    keep = [True] * len(pairs)
+    groups: dict = {}
+    for i, (sg, f_guess, _) in enumerate(pairs):
+        groups.setdefault(f_guess, []).append(i)
+
+    def spread(i):
+        a, b, f, _, amp = tones[i]
+        noise = np.sqrt(max(float(np.var(x_ds[a:b])) - 0.5 * amp * amp, 1e-12 * amp * amp + 1e-300))
+        return tone_crb(amp, noise, b - a, fs_ds)["freq_hz"]
+
+    dropped = []
+    for f_guess, idx in groups.items():
+        if len(idx) < 2:
+            continue
+        ref = max(idx, key=lambda i: tones[i][1] - tones[i][0])
+        f_ref, s_ref = tones[ref][2], spread(ref)
+        for i in idx:
+            f_i = tones[i][2]
+            if abs(f_i - f_ref) > max(_CLOCK_SPREAD * f_ref, 5.0 * np.hypot(spread(i), s_ref)):
+                keep[i] = False
+                dropped.append(f"{tones[i][0] / fs_ds:.2f}-{tones[i][1] / fs_ds:.2f} s at {f_i:.4g} Hz")
+    if dropped:
+        warnings.warn(f"not stimulation (off the stimulator's frequency {f_ref:.6g} Hz), left as recorded: "
+                      + "; ".join(dropped), stacklevel=4)
+    return keep
+
+
+#: the most a block's frequency may differ from the longest block's at the same nominal frequency
+#: (relative): one stimulator clock; this project's choice, far above the ppm a clock drifts
+_CLOCK_SPREAD = 1e-3
+
+
 def _weaker_blocks(x_ds, fs_ds, f, threshold, min_cycles, free, segs) -> list:
     """``segs`` and the blocks at ``f`` found again on what they leave, against its own background.
 
@@ -974,31 +1024,19 @@ def _weaker_blocks(x_ds, fs_ds, f, threshold, min_cycles, free, segs) -> list:
     fewer than ``min_cycles``: a 2 s sham at 5 Hz beside a 5 s active block
     in a 12 s recording was missed whole (its 4 mV left), and the search for
     other frequencies reported it as a second 5 Hz. Against the quieter
-    background a neural oscillation near ``f`` could pass too: a block
-    found here must share the strongest block's frequency within
-    :data:`_SAME_CLOCK` (one stimulator clock; a 10-cycle block's estimate is
-    good to a few 0.01%).
+    background a neural oscillation near ``f`` could pass too: every block
+    must then be on the stimulator's clock (:func:`_one_clock`).
     """
-    def tone(sg):
-        a, b = max(int(sg.start), 0), min(int(np.ceil(sg.stop)), x_ds.size)
-        return estimate_tone(x_ds[a:b], fs_ds, freq_hint=f)[0] if b - a >= 8 else np.nan
-
-    main = tone(max(segs, key=lambda sg: sg.stop - sg.start))
     for _ in range(3):
         rest = free & _free_of([(f, None, segs)], x_ds.size, fs_ds)
         if rest.sum() < 16:
             break
         more = _find_segments(np.where(rest, x_ds, 0.0), fs_ds, f, threshold, min_cycles, valid=rest)
-        more = [sg for sg in more if abs(tone(sg) - main) <= _SAME_CLOCK * main]
         if not more:
             break
         segs = sorted(segs + more, key=lambda sg: sg.start)
     return segs
 
-
-#: blocks found against a quieter background (:func:`_weaker_blocks`) must share the strongest
-#: block's frequency within this fraction; this project's choice
-_SAME_CLOCK = 0.005
 
 
 def _cycle_template(read, model: StimulationModel, blk: StimBlock, a: int, b: int):

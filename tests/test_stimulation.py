@@ -198,6 +198,18 @@ def test_a_sham_beside_a_stronger_block_is_found(recwarn):
     assert not [w for w in recwarn if "besides" in str(w.message)]
 
 
+def test_an_lfp_oscillation_near_the_stimulation_frequency_is_not_a_block():
+    """A 400 uV, 9.9 Hz oscillation for about 2 s in an off period of a 10 Hz session was taken for
+    a block and would have been cleaned away; its frequency is 1% off the stimulator's clock, which
+    every block shares. It is left as recorded and named in a warning."""
+    rec = simulate_recording(12.0, artifact=ArtifactSpec(freq_hz=10.0), blocks=[BlockSpec(2.0, 5.0, ramp_s=1.0)], seed=5)
+    t = np.arange(rec.n_samples) / rec.fs
+    burst = 400.0 * np.exp(-0.5 * ((t - 9.5) / 0.6) ** 2) * np.cos(2 * np.pi * 9.9 * t)
+    with pytest.warns(UserWarning, match="not stimulation"):
+        model = fit_stimulation(rec.data + burst, rec.fs, stim_freq=10.0)
+    assert len(model.blocks) == 1 and model.blocks[0].kind == "active"
+
+
 def test_a_recording_that_starts_and_stops_inside_a_block():
     """No ramp is seen at the recording's own ends: the block runs from its first to its last sample."""
     rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=20.0),
