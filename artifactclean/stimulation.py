@@ -1027,11 +1027,15 @@ def _weaker_blocks(x_ds, fs_ds, f, threshold, min_cycles, free, segs) -> list:
     background a neural oscillation near ``f`` could pass too: every block
     must then be on the stimulator's clock (:func:`_one_clock`).
     """
+    # a found block's own ramp tails (a raised cosine's soft feet) reach past its segment and its
+    # guard: what is found next to a block, not apart from it, is the block's, not another block
+    apart = 2 * int(np.ceil(2 * fs_ds / f)) + 2 * fs_ds / f
     for _ in range(3):
         rest = free & _free_of([(f, None, segs)], x_ds.size, fs_ds)
         if rest.sum() < 16:
             break
         more = _find_segments(np.where(rest, x_ds, 0.0), fs_ds, f, threshold, min_cycles, valid=rest)
+        more = [sg for sg in more if all(sg.start - old.stop > apart or old.start - sg.stop > apart for old in segs)]
         if not more:
             break
         segs = sorted(segs + more, key=lambda sg: sg.start)

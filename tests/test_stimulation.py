@@ -210,6 +210,17 @@ def test_an_lfp_oscillation_near_the_stimulation_frequency_is_not_a_block():
     assert len(model.blocks) == 1 and model.blocks[0].kind == "active"
 
 
+def test_long_raised_cosine_ramps_are_one_block():
+    """A raised cosine's soft feet lie past the block the envelope finds; searched again against a
+    quieter background they read as two short sham blocks beside it, which then bounded its ramps
+    (3 s ramps at 40 Hz read as straight, 14 uV RMS left near them on the foreign generator)."""
+    rec = simulate_recording(16.0, artifact=ArtifactSpec(freq_hz=40.0, drift_ppm=40.0),
+                             blocks=[BlockSpec(start_s=2.0, duration_s=12.0, ramp_s=3.0, ramp_shape="cosine")], seed=4)
+    (blk,) = fit_stimulation(rec.data, rec.fs, stim_freq=40.0).blocks
+    assert (blk.kind, blk.ramp_shape) == ("active", "cosine")
+    assert abs(blk.start / rec.fs - 2.0) < 0.05 and abs(blk.stop / rec.fs - 14.0) < 0.05
+
+
 def test_a_recording_that_starts_and_stops_inside_a_block():
     """No ramp is seen at the recording's own ends: the block runs from its first to its last sample."""
     rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=20.0),
