@@ -789,9 +789,9 @@ def _choose_ramp_shape(read, model: StimulationModel, blk: StimBlock, fs_ds: flo
     flag and the block's attribute names of foot and corner) as in
     :func:`_ramp_fit` (least squares, the amplitude profiled out), over the
     whole ramp, from the straight fit's ends: a raised cosine is about 1.37
-    times as long as the straight line that fits it best (computed here),
-    with the same middle. Both shapes have two parameters per ramp; the
-    evidence is the difference of the energies they explain, in units of
+    times as long as the straight line that fits it best by least squares
+    (computed for this project), with the same middle. Both shapes have two
+    parameters per ramp; the evidence is the difference of the energies they explain, in units of
     the energy of the difference between the two fitted ramps: about +1
     where the ramps are raised cosines, -1 where they are straight, and
     in between where the LFP near the stimulation frequency is as strong as
@@ -1003,10 +1003,11 @@ def _one_clock(pairs: list, tones: list, x_ds: np.ndarray, fs_ds: float) -> list
             f_i = tones[i][2]
             if abs(f_i - f_ref) > max(_CLOCK_SPREAD * f_ref, 5.0 * np.hypot(spread(i), s_ref)):
                 keep[i] = False
-                dropped.append(f"{tones[i][0] / fs_ds:.2f}-{tones[i][1] / fs_ds:.2f} s at {f_i:.4g} Hz")
+                dropped.append(f"{tones[i][0] / fs_ds:.2f}-{tones[i][1] / fs_ds:.2f} s at {f_i:.4g} Hz "
+                               f"(blocks at {f_ref:.6g} Hz)")
     if dropped:
-        warnings.warn(f"not stimulation (off the stimulator's frequency {f_ref:.6g} Hz), left as recorded: "
-                      + "; ".join(dropped), stacklevel=4)
+        warnings.warn("not stimulation (off the stimulator's frequency), left as recorded: " + "; ".join(dropped),
+                      stacklevel=4)
     return keep
 
 
@@ -1040,7 +1041,6 @@ def _weaker_blocks(x_ds, fs_ds, f, threshold, min_cycles, free, segs) -> list:
             break
         segs = sorted(segs + more, key=lambda sg: sg.start)
     return segs
-
 
 
 def _cycle_template(read, model: StimulationModel, blk: StimBlock, a: int, b: int):
