@@ -728,19 +728,12 @@ def _sham_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: flo
         # the feet move out by up to half the extra length, the peak stays near the envelope's
         span = np.array([0.5 * (longer[1] - 1.0) + 0.15, 0.15, 0.5 * (longer[1] - 1.0) + 0.15]) * ramp
         centre = coarse + np.array([-0.5, 0.0, 0.5]) * (longer[0] + longer[1] - 2.0) / 2 * ramp
-        best = None
-        for _ in range(4):
-            axes = [np.linspace(c - w, c + w, 9) for c, w in zip(centre, span)]
-            a, b, c = (g.ravel() for g in np.meshgrid(*axes, indexing="ij"))
+
+        def score(a, b, c, shape=shape):
             ok = (a >= 0) & (b - a >= 1) & (c - b >= 1) & (c <= m - 1)
-            if not ok.any():
-                break
-            a, b, c = a[ok], b[ok], c[ok]
-            v = _explained(sums, _sham_levels(sums, a, b, c, shape))
-            k = int(np.argmax(v))
-            if best is None or v[k] > best[3]:
-                best = (float(a[k]), float(b[k]), float(c[k]), float(v[k]))
-            centre, span = np.array(best[:3]), span / 4
+            return ok, _explained(sums, _sham_levels(sums, a[ok], b[ok], c[ok], shape))
+
+        best = _grid_refine(score, centre, span, points=9, levels=4)
         if best is None or not np.isfinite(best[3]):
             return
         fits[shape] = best
@@ -888,25 +881,41 @@ def _shape_search(sums: tuple, middle: float, length: float, longer: tuple[float
     """Best ramp of ``shape`` near ``middle``, ``longer`` times ``length`` long: ``(shape, foot, corner, energy)``.
 
     A grid over the middle (within a fifth of ``length``) and the length,
-    refined twice around the best.
+    refined twice around the best (:func:`_grid_refine`).
     """
-    mids = (middle - 0.2 * length, middle + 0.2 * length)
-    lens = (longer[0] * length, longer[1] * length)
-    best = (shape, middle - 0.5 * length, middle + 0.5 * length, -np.inf)
-    for _ in range(3):
-        mm, ll = np.meshgrid(np.linspace(*mids, 17), np.linspace(*lens, 17), indexing="ij")
-        s, c = (mm - 0.5 * ll).ravel(), (mm + 0.5 * ll).ravel()
-        ok = (s >= 0) & (c <= m - 1)
+    def score(mid, ln):
+        s, c = mid - 0.5 * ln, mid + 0.5 * ln
+        ok = (s >= 0) & (c <= m - 1) & (ln >= 1.0)
+        return ok, _shape_explained(sums, s[ok], c[ok], shape)
+
+    centre = np.array([middle, 0.5 * (longer[0] + longer[1]) * length])
+    half = np.array([0.2 * length, 0.5 * (longer[1] - longer[0]) * length])
+    best = _grid_refine(score, centre, half, points=17, levels=3)
+    if best is None:
+        return shape, middle - 0.5 * length, middle + 0.5 * length, -np.inf
+    mid, ln, value = best
+    return shape, mid - 0.5 * ln, mid + 0.5 * ln, value
+
+
+def _grid_refine(score, centre: np.ndarray, half: np.ndarray, points: int, levels: int):
+    """Maximise ``score`` on a grid of ``points`` per parameter within ``centre +- half``, refined ``levels`` times.
+
+    ``score(*params)`` takes one flat array per parameter and returns the
+    valid candidates (bool) and their values. Each level centres the grid
+    on the best so far and shrinks it fourfold (the best lies within two
+    grid steps of it). Returns ``(*params, value)`` of the best, or None.
+    """
+    best = None
+    for _ in range(levels):
+        axes = [np.linspace(c - h, c + h, points) for c, h in zip(centre, half)]
+        grids = [g.ravel() for g in np.meshgrid(*axes, indexing="ij")]
+        ok, v = score(*grids)
         if not ok.any():
             break
-        s, c = s[ok], c[ok]
-        v = _shape_explained(sums, s, c, shape)
         k = int(np.argmax(v))
-        if v[k] > best[3]:
-            best = (shape, float(s[k]), float(c[k]), float(v[k]))
-        mid, ln = 0.5 * (best[1] + best[2]), best[2] - best[1]
-        dm, dl = (mids[1] - mids[0]) / 16, (lens[1] - lens[0]) / 16
-        mids, lens = (mid - 2 * dm, mid + 2 * dm), (max(ln - 2 * dl, 1.0), ln + 2 * dl)
+        if best is None or v[k] > best[-1]:
+            best = (*(float(g[ok][k]) for g in grids), float(v[k]))
+        centre, half = np.array(best[:-1]), np.asarray(half) / 4
     return best
 
 
