@@ -56,6 +56,7 @@ def test_benchmark_prints_ratios():
     ("profile_default.py", ["--seconds", "6", "--top", "5"], "own share"),
     ("acceptance.py", ["--seconds", "6", "--freqs", "40"], "sine"),
     ("pieces.py", ["--seconds", "8", "--max-range", "3", "--method", "template", "comb"], "template"),
+    ("clipping.py", ["--seconds", "6", "--rails", "3600", "--freqs", "40"], "outside rails"),
 ])
 def test_other_benchmarks_run_small(script, args, expect):
     # small sizes: the scripts must keep working; their figures come from full-size runs
