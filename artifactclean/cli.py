@@ -278,8 +278,8 @@ def _clean(args) -> int:
     for p in out["written"]:
         print(f"wrote {p}")
     if out["clipped_stretches"]:
-        print(f"{len(out['clipped_stretches'])} clipped stretch(es) (with the phases next to the rails) "
-              "blanked and listed in the output")
+        print(f"{len(out['clipped_stretches'])} lost stretch(es) (clipped samples, and any phase the cleaning "
+              "could not recover next to them) blanked and listed in the output")
     if out["saturated"]:
         print(f"warning: {out['saturated']} samples exceeded int16 at {out['gain_uv']} uV/bit and were clamped; "
               "pass a larger --gain-uv", file=sys.stderr)

@@ -58,6 +58,9 @@ class BlockPlan(NamedTuple):
         Gain filter response per channel.
     decided : list of dict or None
         The estimator's own choices per channel (:meth:`CycleEstimator._decide`).
+    harmonics : int or None
+        Harmonics the artifact's waveform shows on the strongest unclipped
+        channel (:func:`waveform_harmonics`); None where every channel clips.
     """
 
     ref: int
@@ -65,6 +68,35 @@ class BlockPlan(NamedTuple):
     unlocked: float
     response: GainResponse | None
     decided: list | None
+    harmonics: int | None = None
+
+
+#: harmonics weaker than this share of the fundamental are not counted in a waveform's shape
+#: (this project's choice: 0.3% of a 4 mV artifact is 12 uV, a few times a template bin's noise)
+_WAVEFORM_MIN_RELATIVE = 3e-3
+
+
+def waveform_harmonics(x: np.ndarray, cycles: np.ndarray, fs: float, f: float, below: float | None = None) -> int:
+    """Highest harmonic of the stimulation that stands out in the mean cycle of ``x``.
+
+    The mean cycle over the stretch (``cycles``: the stimulation phase of
+    each sample, in cycles) is taken on bins of the cycle and its DFT
+    compared with its own noise: a harmonic counts when its amplitude
+    exceeds :data:`artifactclean.estimators.template._KEEP` (5) times the
+    median harmonic amplitude and 0.3% of the fundamental's. With ``below``,
+    only harmonics under it count (a DAC's images sit at multiples of its
+    tick rate). At least 1.
+    """
+    n_bins = max(16, int(round(fs / f)))
+    b = np.floor(np.mod(cycles, 1.0) * n_bins).astype(np.int64)
+    cnt = np.bincount(b, minlength=n_bins)[:n_bins]
+    mean = np.bincount(b, x, minlength=n_bins)[:n_bins] / np.maximum(cnt, 1)
+    amp = np.abs(np.fft.rfft(mean - mean.mean()))[1:]
+    k = np.arange(1, amp.size + 1)
+    strong = (amp > 5.0 * np.median(amp)) & (amp > _WAVEFORM_MIN_RELATIVE * amp[0])
+    if below is not None:
+        strong &= k < below
+    return int(k[strong].max()) if strong.any() else 1
 
 
 def array_reader(x: np.ndarray, offset: int = 0):
@@ -153,7 +185,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response, decided = plan
+    ref, grid, unlocked, response, decided, harmonics = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -164,7 +196,7 @@ def _subset_plan(plan, fit: list[int]):
         response = response.rows(rows)
     if decided is not None:
         decided = [decided[i] for i in rows]
-    return BlockPlan(new_ref, grid, unlocked, response, decided)
+    return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics)
 
 
 class CycleEstimator(ArtifactEstimator):
@@ -237,13 +269,13 @@ class CycleEstimator(ArtifactEstimator):
 
         def decide(job):
             i, rows = job
-            _, grid, _, response = stretch[i]
+            _, grid, _, response, _ = stretch[i]
             return self._decide(read, blocks[i], fs, grid, response, bounds[i], rows)
 
         decided: dict[int, list] = {}
         for (i, _), part in zip(jobs, mapper(decide, jobs)):
             decided.setdefault(i, []).extend(part)
-        return [BlockPlan(*stretch[i], decided.get(i)) for i in range(len(blocks))]
+        return [BlockPlan(*stretch[i][:4], decided.get(i), stretch[i][4]) for i in range(len(blocks))]
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
@@ -278,7 +310,7 @@ class CycleEstimator(ArtifactEstimator):
         raise NotImplementedError
 
     def _stretch_plan(self, read, blk, fs):
-        """Reference channel, DAC grid, unlocked step rate and gain response, from the plateau's middle."""
+        """Reference channel, DAC grid, unlocked step rate, gain response and waveform harmonics, from the plateau's middle."""
         f = blk.freq_hz
         n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
         # at most _PLAN_S s, less for many channels (memory), never under a second
@@ -289,7 +321,7 @@ class CycleEstimator(ArtifactEstimator):
         intact = ~find_clipped(x, dilate=0).any(axis=1)
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if b - a < 16:
-            return ref, None, 0.0, None
+            return ref, None, 0.0, None, None
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         response = None
         if self.track_amplitude:
@@ -309,8 +341,11 @@ class CycleEstimator(ArtifactEstimator):
                 # kept only where following it takes artifact off beside the fundamental
                 response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
                                             first=int(np.floor(cycles[0] * per_cycle)))] = 0.0
+        harmonics = None
+        if intact.any():
+            harmonics = waveform_harmonics(x[ref], cycles, fs, f)
         if self.dac != "auto":
-            return ref, None, 0.0, response
+            return ref, None, 0.0, response, harmonics
         grid = find_dac_grid(x[ref], cycles, fs, f)
         # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
         # unless its ticks repeat every few cycles and the estimator models periods of cycles
@@ -325,7 +360,10 @@ class CycleEstimator(ArtifactEstimator):
                 grid = find_dac_clock(strong, cycles, fs, f)  # ticks at any phase: read where they held
             if grid is not None:
                 unlocked = 0.0
-        return ref, grid, unlocked, response
+        if harmonics is not None and grid is not None and getattr(grid, "ticks_per_cycle", None):
+            # the staircase's images sit at multiples of the tick rate: the waveform is below half of it
+            harmonics = min(harmonics, waveform_harmonics(x[ref], cycles, fs, f, below=grid.ticks_per_cycle / 2))
+        return ref, grid, unlocked, response, harmonics
 
     def _validate_params(self) -> None:
         """The parameters every cycle estimator shares (subclasses add their own)."""
@@ -339,18 +377,17 @@ class CycleEstimator(ArtifactEstimator):
             raise ValueError(f"outlier_z must be positive, got {self.outlier_z!r}")
 
     def _block_plan(self, xb, blk, fs, offset):
-        """The block's plan (from :meth:`prepare`, or made from ``xb`` now), warning on an unlocked DAC."""
+        """The block's :class:`BlockPlan` (from :meth:`prepare`, or made from ``xb`` now), warning on an unlocked DAC."""
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
             plan, = self._make_plans(array_reader(xb, offset), [blk], [(offset, offset + xb.shape[1])], fs)
-        ref, grid, unlocked, response, decided = plan
-        if unlocked > _UNLOCKED_STEPS:
+        if plan.unlocked > _UNLOCKED_STEPS:
             warnings.warn(
-                f"a DAC staircase ({unlocked:.0f} steps/s) that is not locked to the {blk.freq_hz:.3f} Hz "
+                f"a DAC staircase ({plan.unlocked:.0f} steps/s) that is not locked to the {blk.freq_hz:.3f} Hz "
                 f"cycle: {type(self).__name__} cannot follow it and a spike-band residual will remain; check "
                 "the result with the validation figures", stacklevel=5)
-        return ref, grid, unlocked, response, decided
+        return plan
 
 
 def _block_means(x, w, cycles, fs, q):
@@ -641,7 +678,7 @@ class RowModelEstimator(CycleEstimator):
         return art, grid, censor, n_out, chosen
 
     def _block(self, xb, wb, u, fs, blk, offset):
-        ref, dac, unlocked, response, decided = self._block_plan(xb, blk, fs, offset)
+        ref, dac, unlocked, response, decided = self._block_plan(xb, blk, fs, offset)[:5]
         art, grid, censor, n_out, chosen = self._passes(xb, wb, u, fs, blk, offset, dac, response, decided)
         for info in chosen:
             del info["decided"]  # arrays: the report says what was chosen in words and counts
