@@ -40,7 +40,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._kernels import HAVE_NUMBA, _jit
-from .cycles import CycleEstimator
+from .cycles import CycleEstimator, waveform_harmonics
 
 __all__ = ["AdaptiveCanceller", "rls_filter", "nlms_filter"]
 
@@ -148,10 +148,9 @@ def nlms_filter(refs: np.ndarray, d: np.ndarray, *, step: float = 0.05, eps: flo
     return y, w
 
 
-#: a harmonic of the mean cycle is modelled when its amplitude exceeds this many times the
-#: median harmonic amplitude (the noise); common practice for a detection threshold
-_KEEP = 5.0
-#: ... and at least this fraction of the fundamental's amplitude (common practice: -60 dB)
+#: a harmonic of the mean cycle is modelled when its amplitude exceeds 5 times the median harmonic
+#: amplitude (the noise; :func:`~artifactclean.estimators.cycles.waveform_harmonics`) and at least
+#: this fraction of the fundamental's amplitude (common practice: -60 dB)
 _MIN_RELATIVE = 1e-3
 
 
@@ -224,15 +223,9 @@ class AdaptiveCanceller(CycleEstimator):
     def _harmonics(self, x, w, u, fs, f) -> int:
         if self.n_harmonics is not None:
             return int(self.n_harmonics)
-        n_bins = max(8, int(round(fs / f)))
-        b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
-        cnt = np.maximum(np.bincount(b, w, n_bins), 1e-12)
-        mean_cycle = np.bincount(b, w * x, n_bins) / cnt
-        amp = np.abs(np.fft.rfft(mean_cycle - mean_cycle.mean()))[1:]
         # out of the noise, and not negligible against the fundamental: each modelled harmonic lets
         # the noise of a band about tracking_hz wide through, so weak ones cost more than they remove
-        strong = np.flatnonzero((amp > _KEEP * np.median(amp)) & (amp > _MIN_RELATIVE * amp[0]))
-        return int(min(self.max_harmonics, strong.max() + 1 if strong.size else 1))
+        return int(min(self.max_harmonics, waveform_harmonics(x, u, fs, f, w=w, min_relative=_MIN_RELATIVE)))
 
     def _refs(self, u, monitor, h):
         if monitor is not None:

@@ -76,27 +76,39 @@ class BlockPlan(NamedTuple):
 _WAVEFORM_MIN_RELATIVE = 3e-3
 
 
-def waveform_harmonics(x: np.ndarray, cycles: np.ndarray, fs: float, f: float, below: float | None = None) -> int:
+def waveform_harmonics(x: np.ndarray, cycles: np.ndarray, fs: float, f: float, *, w: np.ndarray | None = None,
+                       min_relative: float = _WAVEFORM_MIN_RELATIVE, below: float | None = None) -> int:
     """Highest harmonic of the stimulation that stands out in the mean cycle of ``x``.
 
     The mean cycle over the stretch (``cycles``: the stimulation phase of
-    each sample, in cycles) is taken on bins of the cycle and its DFT
-    compared with its own noise: a harmonic counts when its amplitude
-    exceeds :data:`artifactclean.estimators.template._KEEP` (5) times the
-    median harmonic amplitude and 0.3% of the fundamental's. With ``below``,
-    only harmonics under it count (a DAC's images sit at multiples of its
-    tick rate). At least 1.
+    each sample, in cycles; ``w``: sample weights, 0 for lost samples) is
+    taken on bins of the cycle and its DFT compared with its own noise: a
+    harmonic counts when its amplitude exceeds 5 times the median harmonic
+    amplitude (common practice for a detection threshold) and
+    ``min_relative`` of the fundamental's. With ``below``, only harmonics
+    under it count (a DAC's images sit at multiples of its tick rate). At
+    least 1.
     """
-    n_bins = max(16, int(round(fs / f)))
+    n_bins = max(8, int(round(fs / f)))
     b = np.floor(np.mod(cycles, 1.0) * n_bins).astype(np.int64)
-    cnt = np.bincount(b, minlength=n_bins)[:n_bins]
-    mean = np.bincount(b, x, minlength=n_bins)[:n_bins] / np.maximum(cnt, 1)
+    cnt = np.maximum(np.bincount(b, w, n_bins), 1e-12)
+    mean = np.bincount(b, x if w is None else w * x, n_bins) / cnt
     amp = np.abs(np.fft.rfft(mean - mean.mean()))[1:]
     k = np.arange(1, amp.size + 1)
-    strong = (amp > 5.0 * np.median(amp)) & (amp > _WAVEFORM_MIN_RELATIVE * amp[0])
+    strong = (amp > 5.0 * np.median(amp)) & (amp > min_relative * amp[0])
     if below is not None:
         strong &= k < below
     return int(k[strong].max()) if strong.any() else 1
+
+
+def stretch_bounds(u: np.ndarray, span_cycles: float) -> np.ndarray:
+    """Sample indices where stretches of ``span_cycles`` cycles start (counted from absolute cycle numbers), and the end.
+
+    Stretches counted from absolute cycle numbers fall at the same samples in
+    a piece of a block as in the whole block.
+    """
+    stretch = np.floor(u / span_cycles).astype(np.int64)
+    return np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
 
 
 def array_reader(x: np.ndarray, offset: int = 0):
@@ -158,8 +170,7 @@ def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compile
     # lost samples carry no residual (zero), so their edges do not ring into flags
     hp = highpass_residual(sos, x, fit, gain, wb, compiled=compiled)
     bad = np.zeros(hp.shape, dtype=bool)
-    stretch = np.floor(u / span_cycles).astype(np.int64)
-    bounds = np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
+    bounds = stretch_bounds(u, span_cycles)
     for ch in range(hp.shape[0]):
         for a, b in zip(bounds[:-1], bounds[1:]):
             seg, ok = hp[ch, a:b], wb[ch, a:b] > 0

@@ -56,7 +56,7 @@ from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_c
     to_middles
 from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
 from ..staircase import DacClock
-from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, trapezoid
+from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, stretch_bounds, trapezoid
 
 __all__ = ["TemplateSubtraction"]
 
@@ -141,7 +141,7 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, occupied=
     else:
         holes_left = holes
     if failed is not None:
-        failed[...] = unfilled if complete is not None else holes
+        failed[...] = unfilled
     if holes_left.any():
         # bins with no data (phases clipped in every cycle of the window): interpolate
         # along the cycle so that samples next to a lost stretch read a sensible template
@@ -687,8 +687,7 @@ class TemplateSubtraction(CycleEstimator):
         mu_all = gain * t_n
         ok = (wb > 0) & ~at
         e = np.where(ok, xb - mu_all, 0.0)
-        stretch = np.floor(u / span).astype(np.int64)
-        bounds = np.concatenate(([0], np.flatnonzero(np.diff(stretch)) + 1, [u.size]))
+        bounds = stretch_bounds(u, span)
         sig = np.empty(xb.shape)
         for ch in range(xb.shape[0]):
             for a, b in zip(bounds[:-1], bounds[1:]):
