@@ -684,17 +684,17 @@ class TemplateSubtraction(CycleEstimator):
         template moves its clipped phases towards the censored-data fit.
         """
         at, upper, rail = fill
-        mu_all = gain * t_n
-        ok = (wb > 0) & ~at
-        e = np.where(ok, xb - mu_all, 0.0)
-        bounds = stretch_bounds(u, span)
-        sig = np.empty(xb.shape)
-        for ch in range(xb.shape[0]):
-            for a, b in zip(bounds[:-1], bounds[1:]):
-                n_ok = int(ok[ch, a:b].sum())
-                sig[ch, a:b] = np.sqrt(np.sum(e[ch, a:b] ** 2) / n_ok) if n_ok >= 16 else np.inf
-        mu = mu_all[at]
-        s = sig[at]
+        rows = np.flatnonzero(at.any(axis=1))  # only the clipped channels need a residual SD
+        ok = (wb[rows] > 0) & ~at[rows]
+        e = np.where(ok, xb[rows] - gain[rows] * t_n[rows], 0.0)
+        starts = stretch_bounds(u, span)[:-1]
+        # residual SD per clipped channel and stretch, read at each rail sample's stretch
+        n_ok = np.add.reduceat(ok, starts, axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sd = np.where(n_ok >= 16, np.sqrt(np.add.reduceat(e * e, starts, axis=1) / n_ok), np.inf)
+        ch, i = np.nonzero(at)
+        s = sd[np.searchsorted(rows, ch), np.searchsorted(starts, i, side="right") - 1]
+        mu = gain[ch, i] * t_n[ch, i]
         z = np.where(upper, rail - mu, mu - rail) / s  # distance to the rail, towards the censored side
         lam = np.sqrt(2 / np.pi) / special.erfcx(z / np.sqrt(2))
         val = mu + np.where(upper, 1.0, -1.0) * s * lam
