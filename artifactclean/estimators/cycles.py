@@ -352,11 +352,17 @@ class CycleEstimator(ArtifactEstimator):
                 # kept only where following it takes artifact off beside the fundamental
                 response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
                                             first=int(np.floor(cycles[0] * per_cycle)))] = 0.0
-        harmonics = None
-        if intact.any():
-            harmonics = waveform_harmonics(x[ref], cycles, fs, f)
+
+        def harmonics(grid=None):
+            # the waveform's harmonics on an unclipped reference (clipping makes its own); with a DAC
+            # below half the tick count, where the staircase's images start
+            if not intact.any():
+                return None
+            ticks = getattr(grid, "ticks_per_cycle", None)
+            return waveform_harmonics(x[ref], cycles, fs, f, below=ticks / 2 if ticks else None)
+
         if self.dac != "auto":
-            return ref, None, 0.0, response, harmonics
+            return ref, None, 0.0, response, harmonics()
         grid = find_dac_grid(x[ref], cycles, fs, f)
         # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
         # unless its ticks repeat every few cycles and the estimator models periods of cycles
@@ -371,10 +377,7 @@ class CycleEstimator(ArtifactEstimator):
                 grid = find_dac_clock(strong, cycles, fs, f)  # ticks at any phase: read where they held
             if grid is not None:
                 unlocked = 0.0
-        if harmonics is not None and grid is not None and getattr(grid, "ticks_per_cycle", None):
-            # the staircase's images sit at multiples of the tick rate: the waveform is below half of it
-            harmonics = min(harmonics, waveform_harmonics(x[ref], cycles, fs, f, below=grid.ticks_per_cycle / 2))
-        return ref, grid, unlocked, response, harmonics
+        return ref, grid, unlocked, response, harmonics(grid)
 
     def _validate_params(self) -> None:
         """The parameters every cycle estimator shares (subclasses add their own)."""

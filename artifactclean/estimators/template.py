@@ -134,14 +134,10 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, occupied=
     # window (heavily clipped channels), a median over all bins is 0 and no bin would be a hole
     typical = _median_of_positive(g)
     holes = g <= 0.05 * typical
-    unfilled = np.zeros(holes.shape, dtype=bool)
-    if complete is not None and holes.any():
-        unfilled = _complete_holes(t, g, holes, complete, per)
-        holes_left = unfilled
-    else:
-        holes_left = holes
+    # holes left after completion (all of them without it)
+    holes_left = _complete_holes(t, g, holes, complete, per) if complete is not None and holes.any() else holes
     if failed is not None:
-        failed[...] = unfilled
+        failed[...] = holes_left
     if holes_left.any():
         # bins with no data (phases clipped in every cycle of the window): interpolate
         # along the cycle so that samples next to a lost stretch read a sensible template
@@ -156,7 +152,7 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, occupied=
     if complete is not None:
         # completed rows are smooth across their gaps: whole (a row filled linearly is not); this
         # includes the phases a free-running DAC's ticks did not hold, completed the same way
-        whole_rows = ~unfilled.any(axis=-1, keepdims=True)
+        whole_rows = ~holes_left.any(axis=-1, keepdims=True)
     elif occupied is None:
         whole_rows = ~holes.any(axis=-1, keepdims=True)
     else:
