@@ -172,8 +172,11 @@ def piece_task(source, channels: Sequence[int], n_keep: int, lo: int, hi: int, a
     :class:`RecordingSpec` (processes, a cluster), opened here.
     """
     x = source.open().read(lo, hi, list(channels))
-    est.fit(x, fs=fs, stim_model=model, clip_level=clip_level)
-    y = est.transform(x)[:n_keep, a - lo: b - lo].copy()
+    # the piece was read for this task alone: the estimator cleans it in place, without a copy
+    est._adopt_input = True
+    y = est.fit_transform(x, fs=fs, stim_model=model, clip_level=clip_level)
+    del x
+    y = y[:n_keep, a - lo: b - lo].copy()
     lost = est.lost_[:n_keep, a - lo: b - lo].copy()
     return y, lost, est.report_
 

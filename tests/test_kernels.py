@@ -29,6 +29,15 @@ def test_kernels_match_numpy(rng):
     be, al = rng.uniform(size=i0.size), rng.uniform(size=i0.size)
     np.testing.assert_allclose(K.grouped_eval(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al),
                                K.grouped_eval_np(t, 100, i0, i0 + 1, be, b0, (b0 + 1) % 100, al), rtol=1e-12)
+    # the fused tick read-back does the twin's arithmetic operation for operation: equal to the bit,
+    # including keys past the last group centre (held at the end group) and into a given buffer
+    t = rng.standard_normal((3, 6 * 50))
+    key = np.sort(rng.integers(0, 20 * 50, x.shape[1]))
+    twin = K.tick_eval_np(t, key, 50, 3, 6)
+    np.testing.assert_array_equal(K.tick_eval(t, key, 50, 3, 6), twin)
+    buf = np.full(twin.shape, np.nan)
+    assert K.tick_eval(t, key, 50, 3, 6, out=buf) is buf
+    np.testing.assert_array_equal(buf, twin)
     starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
     for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
         np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)

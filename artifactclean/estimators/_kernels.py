@@ -19,7 +19,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
     HAVE_NUMBA = False
 
-__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "segment_stats", "quadrature_sums", "gain_sums",
+__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
            "highpass_residual",
            "lerp_positions", "lerp_rows", "widen_flags"]
 
@@ -87,6 +87,17 @@ def group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
     beta = np.clip(q - i0, 0.0, 1.0)
     i1 = np.minimum(i0 + 1, n_groups - 1)
     return i0, i1, beta
+
+
+def tick_eval_np(t, key, n_bins, stride, n_groups):
+    """Template at DAC tick keys (row * n_bins + tick), interpolated between the two nearest group centres.
+
+    A tick is read at its own bin (no interpolation between bins: its
+    samples share one held value), at the cycle position of the tick's centre.
+    """
+    row, b = np.divmod(key, n_bins)
+    i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
+    return grouped_eval_np(t, n_bins, i0, i1, beta, b, b, np.zeros(key.size))
 
 
 def segment_stats_np(x, w, t, seg_starts, env=None):
@@ -194,6 +205,24 @@ def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
             lo = (1 - a) * t[ch, r0 + b0[i]] + a * t[ch, r0 + b1[i]]
             hi = (1 - a) * t[ch, r1 + b0[i]] + a * t[ch, r1 + b1[i]]
             out[ch, i] = (1 - beta[i]) * lo + beta[i] * hi
+
+
+def _tick_eval_loop(t, key, n_bins, stride, n_groups, out):
+    # tick_eval_np's arithmetic, operation for operation, without its five index arrays of the data's size
+    last = n_groups - 1
+    for i in range(key.size):
+        row = key[i] // n_bins
+        b = key[i] - row * n_bins
+        q = (row + (b + 0.5) / n_bins) / stride - 0.5
+        i0 = min(max(np.int64(np.floor(q)), 0), last)
+        beta = min(max(q - i0, 0.0), 1.0)
+        i1 = min(i0 + 1, last)
+        r0 = i0 * n_bins + b
+        r1 = i1 * n_bins + b
+        for ch in range(t.shape[0]):
+            lo = 1.0 * t[ch, r0] + 0.0 * t[ch, r0]
+            hi = 1.0 * t[ch, r1] + 0.0 * t[ch, r1]
+            out[ch, i] = (1 - beta) * lo + beta * hi
 
 
 def _segment_stats_loop(x, w, t, env, use_env, seg_starts, num, den, full, centre):
@@ -377,6 +406,7 @@ _tick_sums_c = _jit(_tick_sums_loop)
 _segment_stats_c = _jit(_segment_stats_loop)
 _quadrature_sums_c = _jit(_quadrature_sums_loop)
 _grouped_eval_c = _jit(_grouped_eval_loop)
+_tick_eval_c = _jit(_tick_eval_loop)
 
 
 def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, out=None, compiled: bool = True):
@@ -390,6 +420,21 @@ def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, out=None, compiled: 
     if out is None:
         out = np.empty((t.shape[0], i0.size))
     _grouped_eval_c(t, n_bins, i0, i1, beta, b0, b1, alpha, out)
+    return out
+
+
+def tick_eval(t, key, n_bins, stride, n_groups, *, out=None, compiled: bool = True):
+    """Template at DAC tick keys (see :func:`tick_eval_np`), into ``out`` if given."""
+    if not (compiled and HAVE_NUMBA):
+        res = tick_eval_np(t, key, n_bins, stride, n_groups)
+        if out is None:
+            return res
+        out[:] = res
+        return out
+    if out is None:
+        out = np.empty((t.shape[0], key.size))
+    _tick_eval_c(np.ascontiguousarray(t, dtype=np.float64), np.ascontiguousarray(key, dtype=np.int64), int(n_bins),
+                 int(stride), int(n_groups), out)
     return out
 
 

@@ -24,7 +24,7 @@ from ..stimulation import StimulationModel, fit_stimulation
 __all__ = ["ArtifactEstimator", "validate_recording"]
 
 
-def validate_recording(data, fs, *, nan_policy: str = "raise") -> tuple[np.ndarray, float, bool]:
+def validate_recording(data, fs, *, nan_policy: str = "raise", copy: bool = True) -> tuple[np.ndarray, float, bool]:
     """Check a recording array and sampling rate; return a 2-D float64 copy.
 
     Parameters
@@ -33,6 +33,9 @@ def validate_recording(data, fs, *, nan_policy: str = "raise") -> tuple[np.ndarr
     fs : float
     nan_policy : {"raise", "blank"}
         ``"blank"`` treats non-finite samples as lost (like clipped ones).
+    copy : bool
+        False returns ``data`` itself when it already is a 2-D float64 array,
+        for callers that own it and let it be changed.
 
     Returns
     -------
@@ -51,7 +54,7 @@ def validate_recording(data, fs, *, nan_policy: str = "raise") -> tuple[np.ndarr
     if arr.ndim not in (1, 2):
         raise ValueError(f"data must be 1-D (one channel) or 2-D (n_channels, n_samples), got {arr.ndim}-D shape {arr.shape}")
     squeeze = arr.ndim == 1
-    x = np.array(arr, dtype=np.float64, ndmin=2, copy=True)
+    x = np.array(arr, dtype=np.float64, ndmin=2, copy=True if copy else None)
     if x.shape[1] < x.shape[0]:
         raise ValueError(
             f"data has shape {x.shape}: more channels than samples. Pass (n_channels, n_samples); "
@@ -137,7 +140,7 @@ class ArtifactEstimator(BaseEstimator):
         self
         """
         self._validate_params()
-        x, fs, _ = validate_recording(X, fs, nan_policy=nan_policy)
+        x, fs, _ = validate_recording(X, fs, nan_policy=nan_policy, copy=not self._adopt_input)
         lost = ~np.isfinite(x)
         if lost.any():
             x[lost] = 0.0
@@ -192,6 +195,8 @@ class ArtifactEstimator(BaseEstimator):
         return x.reshape(arr.shape) if arr.ndim == 1 else x
 
     _keep_copy = False
+    #: set by a caller that owns ``X`` (a file piece read for one task): fit works in it, without a copy
+    _adopt_input = False
 
     def fit_transform(self, X, y=None, **fit_params) -> np.ndarray:
         """``fit(X, **fit_params)`` then ``transform(X)`` (without a second copy of ``X``)."""

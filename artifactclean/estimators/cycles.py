@@ -182,6 +182,7 @@ def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compile
             med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
             thr = max(outlier_z * 1.4826 * med, q99, 1e-12)
             bad[ch, a:b] = (seg > thr) & ok
+    del hp, seg  # the largest array here: gone before the new weights are made
     half = max(1, int(round(1e-3 * fs)))
     # widen each flag by `half` samples on either side (a running maximum)
     spread = widen_flags(bad, half, compiled=compiled)
@@ -239,13 +240,21 @@ class CycleEstimator(ArtifactEstimator):
         return out
 
     def _estimate(self, x, fs, model, lost):
-        art = np.zeros_like(x)
+        ranges = self.work_ranges(model, fs)
+        # one range over the whole array (a file piece inside a block) is its own artifact array
+        whole = len(ranges) == 1 and ranges[0][:2] == (0, x.shape[1])
+        art = None if whole else np.zeros_like(x)
         extra = np.zeros(x.shape, dtype=bool)
         report = dict(blocks=[])
-        for s, e, b in self.work_ranges(model, fs):
+        for s, e, b in ranges:
             u = model.cycles(b, s, e)
             a, info, cen = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
-            art[:, s:e] = a
+            if whole and a.dtype == np.float64 and a.shape == x.shape and not np.may_share_memory(a, x):
+                art = a
+            else:
+                if art is None:
+                    art = np.zeros_like(x)
+                art[:, s:e] = a
             if cen is not None:
                 extra[:, s:e] |= cen
             report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))

@@ -54,7 +54,8 @@ from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, smooth_gain, \
     to_middles
-from ._kernels import group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_sums
+from ._kernels import (group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_eval,
+                       tick_sums)
 from ..staircase import DacClock
 from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, stretch_bounds, trapezoid
 
@@ -426,6 +427,7 @@ class TemplateSubtraction(CycleEstimator):
             delta = 0.25 * grid.ticks_per_cycle * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
+            del edge  # arrays of the block's length are freed as soon as they are done with (memory)
         if free:
             # a bin must hold many ticks, far apart in time, or it holds the LFP of a few moments:
             # four bins per update (about 16 ticks each over 63 cycles), their means moved to the
@@ -445,7 +447,7 @@ class TemplateSubtraction(CycleEstimator):
             key, bin_off = held_bins(ticks)
         elif grid is not None:
             n_bins = grid.ticks_per_cycle
-            key = ticks
+            key, ticks = ticks, None
         else:
             n_bins = max(4, int(round(fs / f)))
             key = np.floor(u * n_bins).astype(np.int64)
@@ -494,6 +496,7 @@ class TemplateSubtraction(CycleEstimator):
         seg = np.floor(u * per_cycle).astype(np.int64)
         seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
         seg_u = (seg[seg_starts] + 0.5) / per_cycle
+        del seg
         # each segment's first phase, and the phase step per sample (phase is linear in samples)
         seg_first = (u[seg_starts], (u[-1] - u[0]) / max(n - 1, 1), per_cycle)
         # every pass reads the gain at the same phases: place them between segment centres once
@@ -548,7 +551,7 @@ class TemplateSubtraction(CycleEstimator):
                                         key, base_key, amb_lo, amb_hi)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per,
                                            complete=complete, failed=failed)
-                t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups)
+                t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups, out=None if it == 0 else t_n)
             else:
                 tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride,
                                             complete=complete, failed=failed)
@@ -589,43 +592,54 @@ class TemplateSubtraction(CycleEstimator):
         shifted = False
         if self.track_phase and self.track_amplitude and response is not None and n > 64 and any(
                 response.phase_taps(min(ch, response.response.shape[0] - 1)) is not None for ch in range(n_ch)):
-            # the phase shift, where the block's plan found it modulated (heartbeat, respiration)
+            # the phase shift, where the block's plan found it modulated (heartbeat, respiration);
+            # the derivative is read one channel at a time (an array of the data's size fewer)
+            d_tmpl = _phase_derivative(tmpl, n_bins)
             if free:
-                d_tm = read_free(_phase_derivative(tmpl, n_bins), ticks)
+                read_d = lambda ch: read_free(d_tmpl[ch:ch + 1], ticks)[0]  # noqa: E731
             elif sampler is None:
-                d_tm = self._read_ticks(_phase_derivative(tmpl, n_bins), key, n_bins, stride, n_groups)
+                read_d = lambda ch: self._read_ticks(d_tmpl[ch:ch + 1], key, n_bins, stride, n_groups)[0]  # noqa: E731
             else:
-                d_tm = grouped_eval(_phase_derivative(tmpl, n_bins), n_bins, *reader, compiled=self.compiled)
-            t_n += self._phase_term(xb, w, gain, t_n, d_tm, fs, f, seg_starts, seg_u, seg_pos, f * per_cycle,
-                                    response, seg_env)
+                read_d = lambda ch: grouped_eval(d_tmpl[ch:ch + 1], n_bins, *reader, compiled=self.compiled)[0]  # noqa: E731
+            self._add_phase_term(t_n, xb, w, gain, read_d, fs, f, seg_starts, seg_u, seg_pos, f * per_cycle,
+                                 response, seg_env)
             shifted = True
         info["phase_shift_followed"] = shifted
         return np.multiply(gain, t_n, out=t_n), info, censored
 
-    def _phase_term(self, xb, w, gain, t_n, d_n, fs, f, seg_starts, seg_u, seg_pos, seg_rate, response, seg_env):
-        """``eta d_n``: the template's phase derivative times the filtered phase shift (cycles).
+    def _add_phase_term(self, t_n, xb, w, gain, read_d, fs, f, seg_starts, seg_u, seg_pos, seg_rate, response,
+                        seg_env):
+        """Add ``eta d`` to ``t_n``, channel by channel: the template's phase derivative ``d = read_d(ch)``
+        times the filtered phase shift (cycles).
 
         The shift is fitted per gain segment on data and regressors high-passed
         alike (:func:`artifactclean.modulation.phase_shift`) and filtered by the
         block's phase response (its own lines only); it is 0 in the margins.
+        Channels are independent, so one at a time keeps the filtered rows,
+        the derivative and the term to one channel's size.
         """
         sos = phase_highpass(f, fs)
-        keep = (w > 0).astype(np.float64)
-        xh = signal.sosfiltfilt(sos, xb * keep, axis=-1)
-        th = signal.sosfiltfilt(sos, gain * t_n * keep, axis=-1)
-        dh = signal.sosfiltfilt(sos, gain * d_n * keep, axis=-1)
-        eta_seg, ok = phase_shift(xh, th, dh, w, seg_starts, compiled=self.compiled)
-        eta = np.zeros_like(eta_seg)
-        for ch in range(eta.shape[0]):
+        for ch in range(t_n.shape[0]):
             taps = response.phase_taps(min(ch, response.response.shape[0] - 1), seg_rate)
-            # on the plateau and the upper half of the ramps: lower, the shift is a ratio of small numbers
-            use = ok[ch] & (seg_env > 0.5)
-            if taps is None or use.sum() < 2:
+            if taps is None:
                 continue
-            filled = np.interp(seg_u, seg_u[use], eta_seg[ch, use])
-            eta[ch] = ndimage.convolve1d(filled, taps, mode="nearest")
-        eta[:, seg_env <= _FOOT] = 0.0
-        return lerp_rows(eta, *seg_pos, compiled=self.compiled) * d_n
+            d_n = read_d(ch)[None, :]
+            keep = (w[ch:ch + 1] > 0).astype(np.float64)
+            xh = signal.sosfiltfilt(sos, xb[ch:ch + 1] * keep, axis=-1)
+            th = signal.sosfiltfilt(sos, gain[ch:ch + 1] * t_n[ch:ch + 1] * keep, axis=-1)
+            dh = signal.sosfiltfilt(sos, gain[ch:ch + 1] * d_n * keep, axis=-1)
+            eta_seg, ok = phase_shift(xh, th, dh, w[ch:ch + 1], seg_starts, compiled=self.compiled)
+            del xh, th, dh, keep
+            # on the plateau and the upper half of the ramps: lower, the shift is a ratio of small numbers
+            use = ok[0] & (seg_env > 0.5)
+            if use.sum() < 2:
+                continue
+            filled = np.interp(seg_u, seg_u[use], eta_seg[0, use])
+            eta = ndimage.convolve1d(filled, taps, mode="nearest")
+            eta[seg_env <= _FOOT] = 0.0
+            term = lerp_rows(eta[None, :], *seg_pos, compiled=self.compiled)
+            term *= d_n
+            t_n[ch] += term[0]
 
     def _censored(self, wb, sampler, key, reader, n_bins, stride, k_groups, n_groups):
         """Samples whose template comes from phases clipped in many cycles of the window.
@@ -698,11 +712,9 @@ class TemplateSubtraction(CycleEstimator):
         val = np.where(np.isfinite(val), val, rail)
         xb[at] = np.where(upper, np.maximum(val, rail), np.minimum(val, rail))
 
-    def _read_ticks(self, tmpl, key, n_bins, stride, n_groups):
-        """Template at DAC tick keys, interpolated between group centres."""
-        row, b = np.divmod(key, n_bins)
-        i0, i1, beta = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
-        return grouped_eval(tmpl, n_bins, i0, i1, beta, b, b, np.zeros(key.size), compiled=self.compiled)
+    def _read_ticks(self, tmpl, key, n_bins, stride, n_groups, out=None):
+        """Template at DAC tick keys, interpolated between group centres (into ``out`` if given)."""
+        return tick_eval(tmpl, key, n_bins, stride, n_groups, out=out, compiled=self.compiled)
 
     def _tick_template(self, xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per=1, bin_off=None,
                        complete=None, failed=None):
