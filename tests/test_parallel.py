@@ -229,3 +229,30 @@ def test_pieces_with_a_phase_shifting_heartbeat_equal_the_whole_array(tmp_path):
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2
     assert all(r["blocks"][0]["phase_shift_followed"] for r in prov["estimator_report"])
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
+
+
+def test_a_file_piece_is_cleaned_in_the_array_read_for_it(short_dac):
+    """A task cleans the piece it read in place (its largest array, not copied): the same numbers as
+    fit then transform on a copy. Outside tasks the input is never written (test_template)."""
+    from artifactclean.parallel import piece_task
+    from artifactclean.stimulation import fit_stimulation
+
+    x, fs = short_dac
+    model = fit_stimulation(x, fs)
+    read = []
+
+    class Source:
+        def open(self):
+            return self
+
+        def read(self, a, b, channels):
+            read.append(np.array(x[channels, a:b], dtype=np.float64))
+            return read[-1]
+
+    n = x.shape[1]
+    y, lost, _ = piece_task(Source(), [0, 1, 2], 3, 0, n, 0, n, TemplateSubtraction(), model, None, fs)
+    est = TemplateSubtraction().fit(x[:3].copy(), fs=fs, stim_model=model)
+    np.testing.assert_array_equal(y, est.transform(x[:3]))
+    np.testing.assert_array_equal(lost, est.lost_)
+    # the array read for the task now holds the cleaned samples (lost ones at 0): no copy was made
+    np.testing.assert_array_equal(read[0], y)

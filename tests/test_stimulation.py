@@ -265,3 +265,24 @@ def test_mains_hum_is_not_a_block():
     t = np.arange(rec.n_samples) / rec.fs
     model = fit_stimulation(rec.data + 300.0 * np.sin(2 * np.pi * 50.0 * t), rec.fs)
     assert [round(b.freq_hz) for b in model.blocks] == [20]
+
+
+@pytest.mark.parametrize("n_cycles", [1, 4])
+def test_envelope_in_pieces_is_the_box_convolution(monkeypatch, n_cycles):
+    """The block finder's envelope, a running mean taken piece by piece (bounded memory), equals the
+    demodulated signal convolved with a box of whole cycles by ``scipy.signal.fftconvolve``
+    (mode "same", zeros beyond the ends), across piece edges and at both ends."""
+    from scipy import signal
+
+    import artifactclean.stimulation as S
+
+    rng = np.random.default_rng(11)
+    fs, f = 3200.0, 20.0
+    n = 50_001
+    x = 300 * np.sin(2 * np.pi * f * np.arange(n) / fs) * (1 + 0.2 * rng.standard_normal(n)) + rng.standard_normal(n)
+    w = int(round(n_cycles * fs / f))
+    z = x * np.exp(-2j * np.pi * f * np.arange(n) / fs)
+    ref = 2 * np.abs(signal.fftconvolve(z, np.ones(w) / w, mode="same"))
+    monkeypatch.setattr(S, "_ENV_PIECE", 4096)  # many pieces
+    got = S._envelope(x, fs, f, n_cycles=n_cycles)
+    np.testing.assert_allclose(got, ref, rtol=0, atol=1e-9 * ref.max())

@@ -158,8 +158,10 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
     return np.maximum.accumulate(new)  # ticks never run backwards
 
 
-def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compiled=True):
+def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compiled=True, out=None):
     """Zero the weight of spike-band outliers (and 1 ms around them) in ``wb``; return it and the count.
+
+    The new weights go to ``out`` if given (``wb`` itself, for a caller done with it).
 
     Outliers are judged on the residual ``x - gain * fit`` (``gain`` None: 1).
     The threshold is set stretch by stretch (``span_cycles`` cycles, counted
@@ -186,7 +188,7 @@ def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compile
     half = max(1, int(round(1e-3 * fs)))
     # widen each flag by `half` samples on either side (a running maximum)
     spread = widen_flags(bad, half, compiled=compiled)
-    w = wb * ~spread
+    w = np.multiply(wb, ~spread, out=out)
     return w, int(spread.sum())
 
 

@@ -563,8 +563,10 @@ class TemplateSubtraction(CycleEstimator):
                                   trap if relative else None, seg_env, ramp_hz, seg_first, out=gain)
             if self.robust and it == passes - 2:
                 # filled rail samples are not data: judged as lost, then put back
+                # without clipping the block's weights are not needed again: the new ones take their place
                 w, n_out = spike_outliers(xb, t_n, wb if fill is None else wb * ~fill[0], fs, u, max(4, k_half // 2),
-                                          self.outlier_z, gain=gain, compiled=self.compiled)
+                                          self.outlier_z, gain=gain, compiled=self.compiled,
+                                          out=wb if fill is None and censored is None else None)
                 if fill is not None:
                     w[fill[0]] = 1.0
         completed = 0
@@ -623,11 +625,16 @@ class TemplateSubtraction(CycleEstimator):
             taps = response.phase_taps(min(ch, response.response.shape[0] - 1), seg_rate)
             if taps is None:
                 continue
+            keep = w[ch:ch + 1] > 0
+
+            def high_passed(v):
+                v *= keep  # in place: the rows of this loop are the block's largest temporaries
+                return signal.sosfiltfilt(sos, v, axis=-1)
+
+            xh = high_passed(xb[ch:ch + 1].copy())
+            th = high_passed(gain[ch:ch + 1] * t_n[ch:ch + 1])
             d_n = read_d(ch)[None, :]
-            keep = (w[ch:ch + 1] > 0).astype(np.float64)
-            xh = signal.sosfiltfilt(sos, xb[ch:ch + 1] * keep, axis=-1)
-            th = signal.sosfiltfilt(sos, gain[ch:ch + 1] * t_n[ch:ch + 1] * keep, axis=-1)
-            dh = signal.sosfiltfilt(sos, gain[ch:ch + 1] * d_n * keep, axis=-1)
+            dh = high_passed(gain[ch:ch + 1] * d_n)
             eta_seg, ok = phase_shift(xh, th, dh, w[ch:ch + 1], seg_starts, compiled=self.compiled)
             del xh, th, dh, keep
             # on the plateau and the upper half of the ramps: lower, the shift is a ratio of small numbers
