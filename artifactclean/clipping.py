@@ -83,5 +83,6 @@ def find_clipped(
 
 def mask_runs(mask: np.ndarray) -> list[tuple[int, int]]:
     """Half-open ``(start, stop)`` index pairs of the True runs in a 1-D mask."""
-    d = np.diff(np.concatenate(([0], np.asarray(mask, dtype=np.int8), [0])))
+    edge = np.zeros(1, dtype=np.int8)  # int8 throughout: a mask of a long record is not widened to int64
+    d = np.diff(np.concatenate((edge, np.asarray(mask, dtype=np.int8), edge)))
     return list(zip(np.flatnonzero(d == 1).tolist(), np.flatnonzero(d == -1).tolist()))

@@ -261,6 +261,7 @@ def clean_recording(
     chunk = max(1, int(chunk_s * rec.fs * min(1.0, 4 / len(channels))))
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
     model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
+    _release_memory()  # the stimulation fit's spectra grow with the recording: handed back before the cleaning
     names = [rec.channel_names[i] for i in channels]
     if not model.blocks:
         hint = f" near {stim_freq} Hz" if stim_freq else ""
