@@ -1059,7 +1059,7 @@ def _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax, free=No
     for i in range(len(hints) if hints is not None else MAX_FREQUENCIES):
         if free.sum() / fs_ds * 0.5 < 1 or free.sum() < 16:
             break
-        x_left = np.where(free, x_ds, 0.0)
+        x_left = x_ds if free.all() else np.where(free, x_ds, 0.0)  # no copy of the record when nothing is found yet
         if hints is not None:
             f_guess, nominal = hints[i], hints[i]
         else:
