@@ -409,14 +409,18 @@ _grouped_eval_c = _jit(_grouped_eval_loop)
 _tick_eval_c = _jit(_tick_eval_loop)
 
 
+def _into(res: np.ndarray, out: np.ndarray | None) -> np.ndarray:
+    """``res``, or ``res`` copied into the buffer ``out`` when one is given (the numpy twins' ``out=``)."""
+    if out is None:
+        return res
+    out[:] = res
+    return out
+
+
 def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, out=None, compiled: bool = True):
     """Template read back at each sample (see :func:`grouped_eval_np`), into ``out`` if given."""
     if not (compiled and HAVE_NUMBA):
-        res = grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha)
-        if out is None:
-            return res
-        out[:] = res
-        return out
+        return _into(grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha), out)
     if out is None:
         out = np.empty((t.shape[0], i0.size))
     _grouped_eval_c(t, n_bins, i0, i1, beta, b0, b1, alpha, out)
@@ -426,11 +430,7 @@ def grouped_eval(t, n_bins, i0, i1, beta, b0, b1, alpha, *, out=None, compiled: 
 def tick_eval(t, key, n_bins, stride, n_groups, *, out=None, compiled: bool = True):
     """Template at DAC tick keys (see :func:`tick_eval_np`), into ``out`` if given."""
     if not (compiled and HAVE_NUMBA):
-        res = tick_eval_np(t, key, n_bins, stride, n_groups)
-        if out is None:
-            return res
-        out[:] = res
-        return out
+        return _into(tick_eval_np(t, key, n_bins, stride, n_groups), out)
     if out is None:
         out = np.empty((t.shape[0], key.size))
     _tick_eval_c(np.ascontiguousarray(t, dtype=np.float64), np.ascontiguousarray(key, dtype=np.int64), int(n_bins),
