@@ -226,14 +226,24 @@ def tone_crb(amplitude: float, sigma: float, n: int, fs: float = 1.0) -> dict:
     return dict(freq_hz=np.sqrt(var_f) * fs, phase_rad=np.sqrt(var_phi), amplitude=np.sqrt(2 * sigma**2 / n))
 
 
-def _dtft(x: np.ndarray, f_cyc: float, n_centre: float, piece: int = 1 << 16, offset: float = 0.0) -> complex:
-    """``sum (x[n] - offset) exp(-2 pi i f_cyc (n - n_centre))``, summed piece by piece (memory: one piece)."""
+def _dtft(x: np.ndarray, f_cyc: float, n_centre: float, piece: int = 1 << 16, offset: float = 0.0,
+          where: np.ndarray | None = None) -> complex:
+    """``sum (x[n] - offset) exp(-2 pi i f_cyc (n - n_centre))``, summed piece by piece (memory: one piece).
+
+    With ``where``, ``x[n]`` is zero where it is False.
+    """
     out = 0j
     for a in range(0, x.size, piece):
         n = np.arange(a, min(x.size, a + piece)) - n_centre
-        v = x[a:a + piece] if offset == 0.0 else x[a:a + piece] - offset
+        v = _kept(x, where, a, a + piece)
+        v = v if offset == 0.0 else v - offset
         out += np.dot(v, np.exp(-2j * np.pi * f_cyc * n))
     return out
+
+
+def _kept(x: np.ndarray, where: np.ndarray | None, a: int, b: int) -> np.ndarray:
+    """``x[a:b]``, zero where ``where`` is False."""
+    return x[a:b] if where is None else np.where(where[a:b], x[a:b], 0.0)
 
 
 #: samples above which :func:`estimate_tone` works piece by piece (:func:`_estimate_long_tone`);
@@ -250,6 +260,7 @@ def estimate_tone(
     freq_hint: float | None = None,
     fmin: float | None = None,
     fmax: float | None = None,
+    where: np.ndarray | None = None,
 ) -> tuple[float, float, float]:
     """Frequency, phase and amplitude of the strongest tone in ``x``.
 
@@ -269,6 +280,9 @@ def estimate_tone(
         Nominal frequency; the search stays within +-2% of it.
     fmin, fmax : float, optional
         Search band when no hint is given (default 0.5 Hz to fs/2).
+    where : ndarray of bool, shape (n,), optional
+        Samples to use; the others count as zeros (as ``numpy.where(where,
+        x, 0)``, without a copy of a long record).
 
     Returns
     -------
@@ -280,8 +294,12 @@ def estimate_tone(
     n = x.size
     if n < 8:
         raise ValueError("need at least 8 samples to estimate a frequency")
+    if where is not None and np.shape(where) != (n,):
+        raise ValueError(f"where must have the shape of x, ({n},); got {np.shape(where)}")
     if n > _TONE_WHOLE:
-        return _estimate_long_tone(x, fs, freq_hint, fmin, fmax)
+        return _estimate_long_tone(x, fs, freq_hint, fmin, fmax, where)
+    if where is not None:
+        x = np.where(where, x, 0.0)
     x = x - x.mean()
     if freq_hint is not None:
         lo, hi = freq_hint * 0.98, freq_hint * 1.02
@@ -321,7 +339,7 @@ def estimate_tone(
     return f_hat, float(np.angle(z)), float(abs(z) / n)
 
 
-def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax) -> tuple[float, float, float]:
+def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax, where=None) -> tuple[float, float, float]:
     """:func:`estimate_tone` of a long record in memory bounded by a piece.
 
     The whole-record search holds a 4x zero-padded spectrum and an analytic
@@ -329,7 +347,7 @@ def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax) -> tupl
 
     1. without a hint, the band's strongest line of the pieces' summed
        periodograms (4x padded each) is the hint;
-    2. each piece (:data:`_TONE_PIECE` samples) is fitted on its own
+    2. each piece (at most :data:`_TONE_PIECE` samples) is fitted on its own
        (:func:`estimate_tone`, within +-2% of the hint);
     3. the frequency is the pieces' mean, corrected by the slope of their
        unwrapped phases at the piece centres (weighted least squares;
@@ -344,8 +362,10 @@ def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax) -> tupl
     :func:`estimate_tone` gives them (cosine phase at the centre sample).
     """
     n = x.size
-    mean = float(x.mean())
-    k = max(2, int(round(n / _TONE_PIECE)))
+    mean = float(x.mean()) if where is None else sum(float(_kept(x, where, a, a + _TONE_PIECE).sum())
+                                                       for a in range(0, n, _TONE_PIECE)) / n
+    # no piece longer than _TONE_PIECE: its 4x padded FFT doubles in length just above it
+    k = max(2, -(-n // _TONE_PIECE))
     edges = np.linspace(0, n, k + 1).astype(np.int64)
     if freq_hint is None:
         lo = 0.5 if fmin is None else fmin
@@ -353,14 +373,15 @@ def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax) -> tupl
         total = None
         for a, b in zip(edges[:-1], edges[1:]):
             nfft = int(2 ** np.ceil(np.log2(4 * (b - a))))
-            p = np.abs(np.fft.rfft(x[a:b] - mean, nfft)) ** 2
+            p = np.abs(np.fft.rfft(_kept(x, where, a, b) - mean, nfft)) ** 2
             total = p if total is None else total[: p.size] + p[: total.size]
         freqs = np.fft.rfftfreq(2 * (total.size - 1), 1.0 / fs)
         band = (freqs >= lo) & (freqs <= hi)
         if not band.any():
             raise ValueError(f"frequency search band {lo:.3g}-{hi:.3g} Hz holds no FFT bin")
         freq_hint = float(freqs[np.flatnonzero(band)[np.argmax(total[band])]])
-    fits = np.array([estimate_tone(x[a:b], fs, freq_hint=freq_hint) for a, b in zip(edges[:-1], edges[1:])])
+    fits = np.array([estimate_tone(_kept(x, where, a, b), fs, freq_hint=freq_hint)
+                     for a, b in zip(edges[:-1], edges[1:])])
     f_p, ph_p, amp_p = fits.T
     t_p = (edges[:-1] + (np.diff(edges) - 1) / 2.0) / fs  # piece centres (s)
     # pieces in the block's ramps or beyond its ends carry little of the tone: their phases are noise
@@ -375,12 +396,12 @@ def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax) -> tupl
     half = 0.5 * fs / n
 
     def neg_power(f_hz: float) -> float:
-        return -abs(_dtft(x, f_hz / fs, centre, offset=mean)) ** 2
+        return -abs(_dtft(x, f_hz / fs, centre, offset=mean, where=where)) ** 2
 
     res = optimize.minimize_scalar(neg_power, bounds=(f0 - half, f0 + half), method="bounded",
                                    options=dict(xatol=1e-6 * fs / (4 * n)))
     f_hat = float(res.x)
-    z = _dtft(x, f_hat / fs, centre, offset=mean)
+    z = _dtft(x, f_hat / fs, centre, offset=mean, where=where)
     return f_hat, float(np.angle(z)), float(2 * abs(z) / n)
 
 
@@ -405,7 +426,8 @@ def decimate_reader(read, n: int, fs: float, target_fs: float, chunk: int = 2**2
     half = 10 * q  # resample_poly's default filter reaches 10 q input samples each side
     pad = -(-2 * half // q) * q
     step = max(q, (chunk // q) * q)
-    out = []
+    # written in place: a list of pieces and their concatenation held the reference twice
+    out = np.empty(-(-n // q))
     for a in range(0, n, step):
         b = min(n, a + step)
         lo, hi = max(0, a - pad), min(n, b + pad)
@@ -413,8 +435,8 @@ def decimate_reader(read, n: int, fs: float, target_fs: float, chunk: int = 2**2
         y = signal.resample_poly(seg, 1, q, padtype="line")
         k0 = (a - lo) // q
         k1 = k0 + -(-(b - a) // q)
-        out.append(y[k0:k1])
-    return np.concatenate(out), fs / q
+        out[a // q: a // q + k1 - k0] = y[k0:k1]
+    return out, fs / q
 
 
 #: cycles in the envelope's moving mean (even: see _envelope)
@@ -425,7 +447,34 @@ _ENV_CYCLES = 4
 _ENV_PIECE = 1 << 18
 
 
-def _envelope(x: np.ndarray, fs: float, f: float, n_cycles: int = _ENV_CYCLES) -> np.ndarray:
+def _envelope_pieces(x: np.ndarray, fs: float, f: float, n_cycles: int = _ENV_CYCLES, *,
+                     keep: np.ndarray | None = None, span: tuple[int, int] | None = None, stride: int = 1):
+    """Yield ``(a, b, values)``: :func:`_envelope` at samples ``a, a + stride, ... < b``, piece by piece."""
+    n = x.size
+    s0, s1 = (0, n) if span is None else (max(0, span[0]), min(n, span[1]))
+    w = max(1, int(round(n_cycles * fs / f)))
+    step = max(_ENV_PIECE, 4 * w)
+    step = -(-step // stride) * stride
+    # pieces lie on one grid from sample 0 whatever the span, and each starts its running mean w
+    # before the piece: a stretch computed alone equals the whole record's envelope to the bit
+    for a in range((s0 // step) * step, s1, step):
+        b = min(n, a + step)
+        c, d = max(a, s0), min(b, s1)
+        if c >= d:
+            continue
+        c += (-c) % stride
+        # the box reaches w // 2 samples either way: w of context leaves every output sample whole
+        # (uniform_filter1d's running sum goes left to right, so stopping at d + w changes nothing before d)
+        lo, hi = max(0, a - w), min(n, d + w)
+        seg = x[lo:hi] if keep is None else np.where(keep[lo:hi], x[lo:hi], 0.0)
+        ang = (2 * np.pi * f) * (np.arange(lo, hi) / fs)
+        re = ndimage.uniform_filter1d(seg * np.cos(ang), w, mode="constant")
+        im = ndimage.uniform_filter1d(seg * np.sin(ang), w, mode="constant")
+        yield c, d, 2 * np.hypot(re[c - lo: d - lo: stride], im[c - lo: d - lo: stride])
+
+
+def _envelope(x: np.ndarray, fs: float, f: float, n_cycles: int = _ENV_CYCLES, *,
+              keep: np.ndarray | None = None, span: tuple[int, int] | None = None, stride: int = 1) -> np.ndarray:
     """Amplitude at frequency ``f``: demodulation and a moving mean over whole cycles.
 
     A mean over an even number of cycles nulls every other harmonic and the
@@ -435,23 +484,47 @@ def _envelope(x: np.ndarray, fs: float, f: float, n_cycles: int = _ENV_CYCLES) -
     piece, so the memory is the output's and not that of complex FFT buffers
     of the whole recording (190 MB for 8 minutes at 3.2 kHz, growing with the
     recording's length).
+
+    ``keep`` (boolean, the record's length) counts the other samples as
+    zeros; ``span=(a, b)`` returns samples ``a..b`` only (equal to the same
+    samples of the whole record's envelope); ``stride`` keeps every
+    ``stride``-th sample (of the record, from sample 0).
     """
     n = x.size
-    w = max(1, int(round(n_cycles * fs / f)))
-    out = np.empty(n)
-    step = max(_ENV_PIECE, 4 * w)
-    for a in range(0, n, step):
-        b = min(n, a + step)
-        # the box reaches w // 2 samples either way: w of context leaves every output sample whole
-        lo, hi = max(0, a - w), min(n, b + w)
-        ang = (2 * np.pi * f) * (np.arange(lo, hi) / fs)
-        re = ndimage.uniform_filter1d(x[lo:hi] * np.cos(ang), w, mode="constant")
-        im = ndimage.uniform_filter1d(x[lo:hi] * np.sin(ang), w, mode="constant")
-        out[a:b] = 2 * np.hypot(re, im)[a - lo: b - lo]
+    s0, s1 = (0, n) if span is None else (max(0, span[0]), min(n, span[1]))
+    out = np.empty(max(0, -(-s1 // stride) - -(-s0 // stride)))
+    first = -(-s0 // stride)
+    for a, b, v in _envelope_pieces(x, fs, f, n_cycles, keep=keep, span=(s0, s1), stride=stride):
+        k = a // stride - first
+        out[k:k + v.size] = v
     return out
 
 
-def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float, smear: float = 0.0) -> tuple[float, float, float, float]:
+#: the most envelope samples the block finder takes a background median over: a longer record's
+#: envelope is subsampled to this many (2**21 is 11 minutes at 3.2 kHz; the envelope is a moving mean
+#: over cycles, so an hour subsampled to every sixth sample loses nothing of its median)
+_FIND_WHOLE = 1 << 21
+
+
+def _background(x: np.ndarray, fs: float, f: float, keep: np.ndarray | None) -> float:
+    """Median envelope at ``f`` over the kept samples (subsampled to at most :data:`_FIND_WHOLE`)."""
+    stride = -(-x.size // _FIND_WHOLE)
+    env = _envelope(x, fs, f, keep=keep, stride=stride)
+    return float(np.median(env if keep is None else env[keep[::stride]]))
+
+
+def _abs_max(x: np.ndarray, keep: np.ndarray | None, piece: int = 1 << 20) -> float:
+    """``max |x|`` over the kept samples (the others count as zeros), piece by piece."""
+    top = 0.0
+    for a in range(0, x.size, piece):
+        v = x[a:a + piece] if keep is None else x[a:a + piece][keep[a:a + piece]]
+        if v.size:
+            top = max(top, float(v.max()), -float(v.min()))
+    return top
+
+
+def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float, smear: float = 0.0, *, origin: int = 0,
+                n: int | None = None) -> tuple[float, float, float, float]:
     """Start, plateau start, plateau stop and stop (decimated samples) of one envelope segment.
 
     Each ramp is a straight line fitted to the envelope between 20% and 80%
@@ -467,13 +540,18 @@ def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float, smear: float = 
     leaves it straight between, so the line is fitted again on the straight
     part (at 5 Hz a 4-cycle mean reaches 0.4 s, past the 20% point of a 1 s
     ramp, and the ends came out 20-40 ms wide).
+
+    ``env`` may be a stretch of the record's envelope starting at sample
+    ``origin`` (it must cover ``lo - 1 .. hi``); positions are the record's,
+    ``n`` its length (default: ``origin + env.size``).
     """
-    seg = env[lo:hi]
+    n = origin + env.size if n is None else n
+    seg = env[lo - origin:hi - origin]
     top = np.flatnonzero(seg >= 0.9 * level)
     p0, p1 = (lo + top[0], lo + top[-1]) if top.size else (lo, hi)
 
     def line(idx: np.ndarray) -> tuple[float, float] | None:
-        vals = env[idx]
+        vals = env[idx - origin]
         keep = (vals > 0.2 * level) & (vals < 0.8 * level)
         if keep.sum() < 3:
             return None
@@ -492,7 +570,7 @@ def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float, smear: float = 
         return None if abs(slope) < 1e-12 else (slope, icpt)
 
     up = line(np.arange(max(0, lo - 1), p0 + 1))
-    down = line(np.arange(p1, min(env.size, hi + 1)))
+    down = line(np.arange(p1, min(n, hi + 1)))
     start = lo if up is None else -up[1] / up[0]
     stop = hi if down is None else -down[1] / down[0]
     start = min(max(start, lo - (p0 - lo) - 2), lo)
@@ -500,7 +578,7 @@ def _ramp_edges(env: np.ndarray, lo: int, hi: int, level: float, smear: float = 
     # corners: where each ramp reaches the plateau's typical level (its maximum is raised by the
     # heartbeat), between the 90% point and 1/9 of the ramp beyond it (the most a linear ramp's
     # 90% point can be early)
-    mid = float(np.median(env[p0:p1 + 1])) if p1 > p0 else level
+    mid = float(np.median(env[p0 - origin:p1 + 1 - origin])) if p1 > p0 else level
     c0 = float(p0) if up is None else float(np.clip((mid - up[1]) / up[0], p0, p0 + (p0 - start) / 9.0))
     c1 = float(p1) if down is None else float(np.clip((mid - down[1]) / down[0], p1 - (stop - p1) / 9.0, p1))
     if up is not None and down is not None and up[0] > 0 > down[0]:
@@ -524,16 +602,30 @@ class _Segment:
 
 
 def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, min_cycles: float,
-                   valid: np.ndarray | None = None) -> list:
-    env = _envelope(x_ds, fs_ds, f)
-    # the background from the samples still in play (blocks found at other frequencies are zeros)
-    sel = slice(None) if valid is None else valid
-    bg = np.sqrt(np.median(_envelope(x_ds, fs_ds, 0.5 * f)[sel]) * np.median(_envelope(x_ds, fs_ds, 1.5 * f)[sel]))
-    bg = max(bg, 1e-12 * max(1.0, float(np.max(np.abs(x_ds)))))
-    on = env > threshold * bg
+                   keep: np.ndarray | None = None) -> list:
+    """Stretches where the amplitude at ``f`` exceeds ``threshold`` times the background.
+
+    ``keep`` (boolean) leaves out blocks found already (their samples count
+    as zeros and their envelope is not part of the background). The memory
+    does not grow with the record beyond a boolean mask of it: the envelope
+    is compared with the threshold piece by piece and computed again around
+    each stretch found (:func:`_envelope` of a span equals the whole
+    record's), and long records take their background medians from a
+    subsample (:func:`_background`).
+    """
+    n = x_ds.size
+    bg = np.sqrt(_background(x_ds, fs_ds, 0.5 * f, keep) * _background(x_ds, fs_ds, 1.5 * f, keep))
+    bg = max(bg, 1e-12 * max(1.0, _abs_max(x_ds, keep)))
+    # the runs above the threshold, piece by piece, joined across piece edges
+    runs: list[list[int]] = []
+    for a, b, v in _envelope_pieces(x_ds, fs_ds, f, keep=keep):
+        for r0, r1 in mask_runs(v > threshold * bg):
+            if runs and runs[-1][1] == a + r0:
+                runs[-1][1] = a + r1
+            else:
+                runs.append([a + r0, a + r1])
     # bridge short dropouts (a few cycles) inside one block
     gap = int(round(2 * fs_ds / f))
-    runs = mask_runs(on)
     merged: list[list[int]] = []
     for a, b in runs:
         if merged and a - merged[-1][1] <= gap:
@@ -545,16 +637,25 @@ def _find_segments(x_ds: np.ndarray, fs_ds: float, f: float, threshold: float, m
     for a, b in merged:
         if b - a < min_len:
             continue
-        level = float(np.max(signal.medfilt(env[a:b], 2 * (int(fs_ds / f) // 2) + 1))) if b - a > 3 else float(env[a:b].max())
-        s, p0, p1, e = _ramp_edges(env, a, b, level, smear=_ENV_CYCLES / 2 * fs_ds / f)
+        lo = max(0, a - 1)
+        env = _envelope(x_ds, fs_ds, f, keep=keep, span=(lo, b + 1))
+        run = env[a - lo:b - lo]
+        level = float(np.max(signal.medfilt(run, 2 * (int(fs_ds / f) // 2) + 1))) if b - a > 3 else float(run.max())
+        s, p0, p1, e = _ramp_edges(env, a, b, level, smear=_ENV_CYCLES / 2 * fs_ds / f, origin=lo, n=n)
         cycle = fs_ds / f
         if min(p0 - s, e - p1) < 1.25 * _ENV_CYCLES * cycle:
-            s, p0, p1, e = _sharpen_edges(x_ds, fs_ds, f, (s, p0, p1, e), a, b, level)
+            s, p0, p1, e = _sharpen_edges(x_ds, fs_ds, f, (s, p0, p1, e), a, b, level, keep=keep)
         segs.append(_Segment(s, p0, p1, e, level))
     return segs
 
 
-def _sharpen_edges(x_ds, fs_ds, f, edges, a, b, level):
+#: cycles either side of a stretch over which :func:`_sharpen_edges` looks for its crossings (a ramp
+#: it sharpens is under 1.25 * _ENV_CYCLES cycles long; the coarse envelope's threshold crossing lies
+#: within a few cycles of its foot)
+_SHARPEN_REACH = 4 * _ENV_CYCLES
+
+
+def _sharpen_edges(x_ds, fs_ds, f, edges, a, b, level, keep=None):
     """Ramps shorter than the envelope's moving mean, found again on a one-cycle envelope.
 
     The moving mean over :data:`_ENV_CYCLES` cycles turns a step (a block
@@ -563,44 +664,51 @@ def _sharpen_edges(x_ds, fs_ds, f, edges, a, b, level):
     left at the block's edges. A ramp that the coarse envelope cannot
     resolve is fitted again on a one-cycle mean (which nulls the harmonics
     as well); one still no longer than that mean's own smear is a step, put
-    where that envelope crosses half the plateau level.
+    where that envelope crosses half the plateau level. The one-cycle
+    envelope is computed over the stretch and :data:`_SHARPEN_REACH` cycles
+    either side only.
     """
     cycle = fs_ds / f
     unresolved = 1.25 * _ENV_CYCLES * cycle
-    fine = _envelope(x_ds, fs_ds, f, n_cycles=1)
-    s2, q0, q1, e2 = _ramp_edges(fine, a, b, level, smear=0.5 * cycle)
-    s, p0, p1, e = edges
     n = x_ds.size
+    reach = int(np.ceil(_SHARPEN_REACH * cycle)) + 2
+    lo = max(0, a - reach)
+    fine = _envelope(x_ds, fs_ds, f, n_cycles=1, keep=keep, span=(lo, b + reach))
+    s2, q0, q1, e2 = _ramp_edges(fine, a, b, level, smear=0.5 * cycle, origin=lo, n=n)
+    s, p0, p1, e = edges
     if p0 - s < unresolved:
         s, p0 = s2, q0
         if a == 0:
             s = p0 = 0.0  # the recording starts inside the block: no ramp to see
-        elif _rise(fine, a, level, True) < 1.2 * cycle:
-            s = p0 = _crossing(fine, a, 0.5 * level, rising=True)
+        elif _rise(fine, a, level, True, origin=lo) < 1.2 * cycle:
+            s = p0 = _crossing(fine, a, 0.5 * level, rising=True, origin=lo)
     if e - p1 < unresolved:
         p1, e = q1, e2
         if b >= n:
             p1 = e = float(n)  # the recording stops inside the block
-        elif _rise(fine, b, level, False) < 1.2 * cycle:
-            p1 = e = _crossing(fine, b, 0.5 * level, rising=False)
+        elif _rise(fine, b, level, False, origin=lo) < 1.2 * cycle:
+            p1 = e = _crossing(fine, b, 0.5 * level, rising=False, origin=lo)
     return s, min(p0, p1), max(p0, p1), e
 
 
-def _rise(env: np.ndarray, near: int, level: float, rising: bool) -> float:
+def _rise(env: np.ndarray, near: int, level: float, rising: bool, origin: int = 0) -> float:
     """Samples between the 10% and 90% crossings of ``level`` nearest ``near`` (a one-cycle mean of
     a step rises over about 0.85 cycle, a ramp of L cycles over about 0.8 L)."""
-    return abs(_crossing(env, near, 0.9 * level, rising) - _crossing(env, near, 0.1 * level, rising))
+    return abs(_crossing(env, near, 0.9 * level, rising, origin) - _crossing(env, near, 0.1 * level, rising, origin))
 
 
-def _crossing(env: np.ndarray, near: int, value: float, rising: bool) -> float:
-    """Where ``env`` crosses ``value`` (upwards if ``rising``) nearest sample ``near``, to a fraction of a sample."""
+def _crossing(env: np.ndarray, near: int, value: float, rising: bool, origin: int = 0) -> float:
+    """Where ``env`` crosses ``value`` (upwards if ``rising``) nearest sample ``near``, to a fraction of a sample.
+
+    ``env`` may be a stretch of the record's envelope starting at sample ``origin``.
+    """
     above = env >= value
     cross = np.flatnonzero(above[1:] != above[:-1])
     cross = cross[(above[cross + 1] if rising else above[cross])]
     if cross.size == 0:
         return float(near)
-    i = int(cross[np.argmin(np.abs(cross - near))])
-    return i + (value - env[i]) / (env[i + 1] - env[i])
+    i = int(cross[np.argmin(np.abs(cross - (near - origin)))])
+    return (i + origin) + (value - env[i]) / (env[i + 1] - env[i])
 
 
 def fit_stimulation(
@@ -1059,12 +1167,12 @@ def _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax, free=No
     for i in range(len(hints) if hints is not None else MAX_FREQUENCIES):
         if free.sum() / fs_ds * 0.5 < 1 or free.sum() < 16:
             break
-        x_left = x_ds if free.all() else np.where(free, x_ds, 0.0)  # no copy of the record when nothing is found yet
+        keep = None if free.all() else free  # found blocks count as zeros (no copy of the record)
         if hints is not None:
             f_guess, nominal = hints[i], hints[i]
         else:
-            f_guess, nominal = estimate_tone(x_left, fs_ds, fmin=0.5, fmax=min(fmax, 0.45 * fs_ds))[0], None
-        segs = _find_segments(x_left, fs_ds, f_guess, threshold, min_cycles, valid=free)
+            f_guess, nominal = estimate_tone(x_ds, fs_ds, fmin=0.5, fmax=min(fmax, 0.45 * fs_ds), where=keep)[0], None
+        segs = _find_segments(x_ds, fs_ds, f_guess, threshold, min_cycles, keep=keep)
         if hints is None and (found or not first_free):
             covered = sum(min(sg.stop, free.size) - max(sg.start, 0) for sg in segs)
             repeated = any(abs(f_guess - f) < 0.02 * f for f, _, _ in found)
@@ -1097,7 +1205,7 @@ def _one_clock(pairs: list, tones: list, x_ds: np.ndarray, fs_ds: float) -> list
 
     def spread(i):
         a, b, f, _, amp = tones[i]
-        noise = np.sqrt(max(float(np.var(x_ds[a:b])) - 0.5 * amp * amp, 1e-12 * amp * amp + 1e-300))
+        noise = np.sqrt(max(_variance(x_ds[a:b]) - 0.5 * amp * amp, 1e-12 * amp * amp + 1e-300))
         return tone_crb(amp, noise, b - a, fs_ds)["freq_hz"]
 
     dropped = []
@@ -1116,6 +1224,15 @@ def _one_clock(pairs: list, tones: list, x_ds: np.ndarray, fs_ds: float) -> list
         warnings.warn("not stimulation (off the stimulator's frequency), left as recorded: " + "; ".join(dropped),
                       stacklevel=4)
     return keep
+
+
+def _variance(x: np.ndarray) -> float:
+    """``numpy.var(x)``; above :data:`_FIND_WHOLE` samples in two passes over pieces (no copy of ``x``)."""
+    if x.size <= _FIND_WHOLE:
+        return float(np.var(x))
+    piece = 1 << 20
+    mean = sum(float(x[a:a + piece].sum()) for a in range(0, x.size, piece)) / x.size
+    return sum(float(np.sum((x[a:a + piece] - mean) ** 2)) for a in range(0, x.size, piece)) / x.size
 
 
 #: the most a block's frequency may differ from the longest block's at the same nominal frequency
@@ -1142,7 +1259,7 @@ def _weaker_blocks(x_ds, fs_ds, f, threshold, min_cycles, free, segs) -> list:
         rest = free & _free_of([(f, None, segs)], x_ds.size, fs_ds)
         if rest.sum() < 16:
             break
-        more = _find_segments(np.where(rest, x_ds, 0.0), fs_ds, f, threshold, min_cycles, valid=rest)
+        more = _find_segments(x_ds, fs_ds, f, threshold, min_cycles, keep=rest)
         more = [sg for sg in more if all(sg.start - old.stop > apart or old.start - sg.stop > apart for old in segs)]
         if not more:
             break

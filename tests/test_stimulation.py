@@ -76,6 +76,101 @@ def test_long_records_are_fitted_in_pieces_like_the_whole(monkeypatch):
         assert parts[2] == pytest.approx(whole[2], rel=1e-3)
 
 
+def test_envelope_of_a_span_equals_the_records(monkeypatch):
+    """The block finder computes its envelope again around each stretch it found (bounded memory):
+    a span, a subsample and a masked record equal the whole record's envelope of the zeroed signal."""
+    import artifactclean.stimulation as S
+
+    rng = np.random.default_rng(12)
+    fs, f, n = 3200.0, 20.0, 40_000
+    x = 500 * np.sin(2 * np.pi * f * np.arange(n) / fs) * (1 + 0.1 * rng.standard_normal(n)) + rng.standard_normal(n)
+    keep = np.ones(n, dtype=bool)
+    keep[9_000:15_500] = False
+    monkeypatch.setattr(S, "_ENV_PIECE", 4096)  # spans cross many pieces
+    for n_cycles in (1, 4):
+        whole = S._envelope(np.where(keep, x, 0.0), fs, f, n_cycles=n_cycles)
+        np.testing.assert_array_equal(S._envelope(x, fs, f, n_cycles=n_cycles, keep=keep), whole)
+        for a, b in [(0, 100), (4_000, 9_000), (8_190, 8_200), (12_345, n), (n - 3, n + 10)]:
+            np.testing.assert_array_equal(S._envelope(x, fs, f, n_cycles=n_cycles, keep=keep, span=(a, b)), whole[a:b])
+        # a subsample starts its pieces elsewhere: the running sums round differently
+        np.testing.assert_allclose(S._envelope(x, fs, f, n_cycles=n_cycles, keep=keep, stride=7), whole[::7],
+                                   rtol=0, atol=1e-9 * whole.max())
+
+
+def test_estimate_tone_where_is_a_zeroed_record(monkeypatch):
+    """``where=`` equals the record with the other samples set to zero, on the whole-record and the piece paths."""
+    import artifactclean.stimulation as S
+
+    rng = np.random.default_rng(13)
+    fs, n = 3200.0, 120_000
+    t = np.arange(n) / fs
+    x = 800 * np.cos(2 * np.pi * 20.0006 * t + 0.3) + 600 * np.cos(2 * np.pi * 41.0 * t) * (t > 20) + 20 * rng.standard_normal(n)
+    where = t <= 20  # the 41 Hz tone is left out, so the 20 Hz one is the strongest
+    zeroed = np.where(where, x, 0.0)
+    for kw in (dict(freq_hint=20.0), dict(fmin=0.5, fmax=200.0)):
+        assert estimate_tone(x, fs, where=where, **kw) == estimate_tone(zeroed, fs, **kw)
+        monkeypatch.setattr(S, "_TONE_WHOLE", 50_000)
+        monkeypatch.setattr(S, "_TONE_PIECE", 16_384)
+        got, ref = estimate_tone(x, fs, where=where, **kw), estimate_tone(zeroed, fs, **kw)
+        monkeypatch.undo()
+        assert got[0] == pytest.approx(20.0006, abs=1e-3)
+        np.testing.assert_allclose(got, ref, rtol=1e-9)
+    with pytest.raises(ValueError, match="where must have the shape of x"):
+        estimate_tone(x, fs, where=where[:-1])
+
+
+def _long_session(fs_ds: float, minutes: float, seed: int = 3) -> np.ndarray:
+    """A decimated reference: 100 s blocks at 20 Hz every 4 minutes (1 s ramps), white noise."""
+    n = int(fs_ds * 60 * minutes)
+    t = np.arange(n) / fs_ds
+    x = 50 * np.random.default_rng(seed).standard_normal(n)
+    for s in np.arange(20.0, t[-1] - 150, 240.0):
+        x += 2000 * np.clip((t - s) / 1.0, 0, 1) * np.clip((s + 100 - t) / 1.0, 0, 1) * np.cos(2 * np.pi * 20.0008 * t)
+    return x
+
+
+def test_long_records_find_the_same_blocks(monkeypatch):
+    """Above _FIND_WHOLE samples the background medians come from a subsample of the envelope and a
+    block's variance from two passes over pieces: the blocks are those of the exact path."""
+    import artifactclean.stimulation as S
+
+    sham = [BlockSpec(1.0, 5.0, ramp_s=0.5), BlockSpec(7.0, 0.0, kind="sham", ramp_s=1.0),
+            BlockSpec(10.0, 3.0, freq_hz=40.0, ramp_s=0.0)]
+    rec = simulate_recording(14.0, fs=10000.0, n_channels=1, artifact=ArtifactSpec(freq_hz=10.0), blocks=sham, seed=2)
+    exact = fit_stimulation(rec.data, rec.fs)
+    monkeypatch.setattr(S, "_FIND_WHOLE", 1000)
+    subsampled = fit_stimulation(rec.data, rec.fs)
+    assert [b.kind for b in subsampled.blocks] == [b.kind for b in exact.blocks] == ["active", "sham", "active"]
+    for got, ref in zip(subsampled.blocks, exact.blocks):
+        for key in ("start", "ramp_up_stop", "ramp_down_start", "stop"):
+            assert abs(getattr(got, key) - getattr(ref, key)) <= 0.002 * rec.fs, key  # 2 ms
+        assert got.freq_hz == pytest.approx(ref.freq_hz, rel=1e-9)
+
+
+def test_block_finding_memory_does_not_follow_the_record(monkeypatch):
+    """The stimulation fit of a 4x longer decimated reference takes at most 0.5x the reference's extra
+    bytes of extra memory (``tracemalloc`` peaks; boolean masks of the record remain: 0.25x here). Before
+    the block finder streamed its envelopes, the growth was 3.9x."""
+    import tracemalloc
+
+    import artifactclean.stimulation as S
+
+    # pieces far shorter than the record, as in an hour-long one (the defaults would need 20 minutes here)
+    for name, value in (("_ENV_PIECE", 4096), ("_FIND_WHOLE", 20_000), ("_TONE_WHOLE", 20_000), ("_TONE_PIECE", 8192)):
+        monkeypatch.setattr(S, name, value)
+    fs_ds = 1000.0
+    peaks, sizes = [], []
+    for minutes in (3, 12):
+        x = _long_session(fs_ds, minutes)
+        tracemalloc.start()
+        model = S.fit_decimated(x, fs_ds, 10 * fs_ds, 10 * x.size, stim_freq=20.0)
+        peaks.append(tracemalloc.get_traced_memory()[1])
+        tracemalloc.stop()
+        sizes.append(x.nbytes)
+        assert len(model.blocks) == round((minutes * 60 - 170) / 240 + 0.5)
+    assert peaks[1] - peaks[0] < 0.5 * (sizes[1] - sizes[0]), (peaks, sizes)
+
+
 def test_blocks_kinds_and_edges():
     blocks = [BlockSpec(1.0, 8.0, ramp_s=1.0), BlockSpec(11.0, 0.0, kind="sham", ramp_s=2.0)]
     rec = simulate_recording(16.0, artifact=ArtifactSpec(freq_hz=20.0, drift_ppm=-30.0), blocks=blocks, seed=3)
