@@ -27,7 +27,8 @@ from scipy import ndimage, signal
 from .estimators._kernels import gain_sums, quadrature_sums, segment_stats
 
 __all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
-           "phase_highpass", "phase_shift", "segment_gain", "segment_phase", "segments_per_cycle", "smooth_gain",
+           "phase_highpass", "phase_shift", "segment_gain", "segment_phase", "segments_per_cycle", "sideband_support",
+           "smooth_gain",
            "to_middles", "cycle_slope"]
 
 #: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
@@ -395,6 +396,113 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     resp[:, freqs <= min(follow_hz, max_hz)] = 1.0
     resp[:, freqs > max_hz] = 0.0
     return GainResponse(freqs, resp, rate)
+
+
+#: ratio of a pair's weaker sideband to its stronger (each beyond its floor) from which a gain line
+#: passes whole, and below which it does not pass (this project's choice: a line of a modulation plus a
+#: rhythm of twice its size on one side, ratio 1/3, is followed whole; one of three times, ratio 1/4, at
+#: two thirds)
+_PAIR_FULL = 1.0 / 3.0
+_PAIR_NONE = 0.1
+
+
+#: distance (Hz) from another harmonic's carrier (demodulated to a multiple of f) within which a
+#: sideband is not judged: the carrier's main lobe (about 1 Hz for 4 s Blackman-Harris segments) and
+#: a little of its respiration lines
+_CARRIER_GUARD = 1.25
+#: relative scatter of a Welch estimate over a few segments (this project's choice, about 1.3 SD of an
+#: average of 7 periodograms): an excess below this fraction of its floor may be the floor's own
+_SCATTER = 0.5
+
+
+def _shown(p_other: np.ndarray, f_other: np.ndarray, line: np.ndarray) -> np.ndarray:
+    """What the other side shows against what a pair would put there: its floor plus the line."""
+    return p_other / np.maximum(f_other + np.maximum(line, 0.0), 1e-300)
+
+
+def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float, f: float, freqs: np.ndarray, *,
+                     above_hz: float, floor_hz: float = 2.0) -> np.ndarray:
+    """How surely a change of the artifact at each of ``freqs`` shows on both sides of the fundamental.
+
+    A change of the artifact's amplitude at ``d`` Hz puts a pair of sidebands
+    at ``f - d`` and ``f + d`` of equal size (its phase changing in step with
+    it keeps them equal: ``(1 + m) cos(wt + p)`` with ``p`` proportional to
+    ``m`` has sidebands of ``sqrt(m^2 + p^2) / 2`` on each side, a textbook
+    identity). A neural rhythm near the fundamental is one line, at
+    ``f - d`` (or ``f + d``) only: projected on the artifact's cycle it looks
+    like a modulation at ``d`` too, and a gain that follows it takes part of
+    the rhythm off and puts its mirror image at ``f + d`` (a 6.75 Hz rhythm
+    beside 13 Hz stimulation: 0.3-0.46 of it followed, its image at 19.25 Hz
+    up to 0.8 of the neural power there).
+
+    The data are demodulated at the stimulation phase (``z = x exp(-2 pi i
+    u)``, block means of a stretch), and the two-sided spectrum of ``z``
+    (``scipy.signal.welch``, 4 s Blackman-Harris segments, whose sidelobes
+    keep the carrier out beyond 1 Hz) is read at ``+d`` and ``-d`` (the
+    larger of each line's bin and its neighbours: lines wander), each side
+    against its own floor ``F`` (its running median over ``floor_hz``:
+    below the fundamental the LFP's floor is far higher). What one side
+    holds beyond its floor and that floor's scatter (:data:`_SCATTER`), ``E``,
+    a pair would put on the other side too: there it shows ``F_o + E``, and
+    one line leaves ``F_o``. The smaller of the two sides' ratios of what
+    they show to what a pair would put there is about 1 for a pair and
+    ``F_o / (F_o + E)`` for one line: a side buried in its floor (a
+    heartbeat harmonic's lower sideband within the LFP below a 5-10 Hz
+    fundamental) says little either way, one clear of it decides. The line
+    passes whole from a ratio of :data:`_PAIR_FULL` and not at all below
+    :data:`_PAIR_NONE` (the 6.75 Hz rhythm beside 13 Hz: about 0.05). A
+    side near another harmonic (``d`` within :data:`_CARRIER_GUARD` of a
+    multiple of ``f``) is not judged. The line's own strength is judged by
+    :func:`design_gain_response`.
+
+    Parameters
+    ----------
+    xd, wd : ndarray, shape (n_channels, n)
+        Samples (block means) and their weights (0 for lost samples).
+    ud : ndarray, shape (n,)
+        Stimulation phase (cycles, unwrapped) of each sample.
+    fsd : float
+        Their rate (Hz).
+    f : float
+        Stimulation frequency (Hz).
+    freqs : ndarray
+        Modulation frequencies (Hz) to judge (a :class:`GainResponse`'s).
+    above_hz : float
+        At and below this, 1 (the gain always passes there; see :func:`follow_below`).
+
+    Returns
+    -------
+    ndarray, shape (n_channels, freqs.size)
+        Between 0 and 1.
+    """
+    out = np.ones((xd.shape[0], freqs.size))
+    nper = min(xd.shape[1], int(4 * fsd))
+    judged = freqs > above_hz
+    if nper < 16 or not judged.any() or 1.0 / (nper / fsd) > 0.5:
+        return out  # too short to tell lines apart (under about 2 s)
+    z = xd * (wd > 0) * np.exp(-2j * np.pi * ud)[None]
+    fz, p = signal.welch(z, fs=fsd, window="blackmanharris", nperseg=nper, return_onesided=False, axis=-1)
+    order = np.argsort(fz)
+    fz, p = fz[order], p[:, order]
+    width = max(3, int(round(floor_hz / (fz[1] - fz[0]))) | 1)
+    floor = ndimage.median_filter(p, size=(1, width), mode="nearest")
+    peak = ndimage.maximum_filter1d(p, 3, axis=-1)
+    # the other harmonics demodulate to multiples of f: a side within _CARRIER_GUARD of one holds
+    # that carrier's leakage and its own sidebands, and says nothing about this pair
+    carriers = f * np.concatenate((np.arange(1, int(fsd / 2 / f) + 1), -np.arange(1, int(fsd / 2 / f) + 1)))
+    clear = lambda hz: np.all(np.abs(hz - carriers) > _CARRIER_GUARD)  # noqa: E731
+    for k in np.flatnonzero(judged):
+        if not (clear(freqs[k]) and clear(-freqs[k])):
+            continue
+        up = int(np.argmin(np.abs(fz - freqs[k])))
+        dn = int(np.argmin(np.abs(fz + freqs[k])))
+        p_up, p_dn, f_up, f_dn = peak[:, up], peak[:, dn], floor[:, up], floor[:, dn]
+        # either side may hold the line; what it holds beyond its floor and that floor's scatter is what a
+        # pair would put on the other side too (the floors differ: the LFP's 1/f^2 below the fundamental)
+        ratio = np.minimum(_shown(p_dn, f_dn, p_up - (1 + _SCATTER) * f_up),
+                           _shown(p_up, f_up, p_dn - (1 + _SCATTER) * f_dn))
+        out[:, k] = np.clip((ratio - _PAIR_NONE) / (_PAIR_FULL - _PAIR_NONE), 0.0, 1.0)
+    return out
 
 
 def follow_below(f: float) -> float:

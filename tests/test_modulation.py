@@ -4,7 +4,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, design_gain_response, ramp_cutoff, segment_gain, smooth_gain
+from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, design_gain_response, ramp_cutoff, segment_gain, \
+    sideband_support, smooth_gain
 
 
 def _gain_series(rng, rate=40.0, seconds=20.0, lines=((2.0, 0.02), (4.0, 0.01))):
@@ -189,3 +190,30 @@ def test_everything_below_the_follow_band_passes(rng):
         f, r = resp.freqs, resp.response[0]
         assert np.all(r[f <= follow] == 1.0)
         assert r[np.argmin(np.abs(f - 2.0))] == (1.0 if follow > 2.0 else 0.0)
+
+
+def test_sideband_support_tells_a_modulation_from_a_rhythm(rng):
+    """A heartbeat changing the artifact's amplitude (and its phase in step) puts equal sidebands on both
+    sides of the fundamental; a neural rhythm near it is one line. Both look like a modulation in the
+    gain. The support passes the pair and stops the single line, and a pair whose lower sideband is
+    buried in a strong LFP floor is not taken for a single line."""
+    f, fsd, seconds = 13.0, 416.0, 20.0
+    t = np.arange(int(fsd * seconds)) / fsd
+    u = f * t  # stimulation phase, cycles
+    heart = 0.02 * np.cos(2 * np.pi * 4.0 * t + 0.4)
+    # amplitude and phase modulated in step: sidebands of sqrt(m^2 + p^2) / 2 on each side
+    x = 4000 * (1 + heart) * np.cos(2 * np.pi * u + 0.5 * heart)
+    wander = np.cumsum(0.02 * rng.standard_normal(t.size))  # a rhythm's phase drifts
+    x += 15 * np.sin(2 * np.pi * 6.75 * t + wander)  # at f - 6.25 Hz only
+    x += 2.0 * rng.standard_normal(t.size)
+    # a second pair at 8 Hz whose lower sideband (5 Hz) lies under a strong, broad LFP band
+    x += 4000 * 0.002 * np.cos(2 * np.pi * 8.0 * t) * np.cos(2 * np.pi * u)
+    b, a = signal.butter(2, [3.5, 6.5], btype="band", fs=fsd)
+    x += signal.lfilter(b, a, 150 * rng.standard_normal(t.size))
+    freqs = np.arange(0, 13.0, 0.25)
+    s = sideband_support(x[None], np.ones((1, t.size)), u, fsd, f, freqs, above_hz=FOLLOW_HZ)[0]
+    at = lambda hz: s[np.argmin(np.abs(freqs - hz))]  # noqa: E731
+    assert np.all(s[freqs <= FOLLOW_HZ] == 1.0)
+    assert at(4.0) == 1.0
+    assert at(6.25) == 0.0
+    assert at(8.0) > 0.9

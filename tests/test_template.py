@@ -290,6 +290,30 @@ def test_lfp_away_from_the_harmonics_with_a_sinusoidal_heartbeat(freq):
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
 
 
+@pytest.mark.parametrize("seed", [1, 2])
+def test_a_rhythm_beside_the_fundamental_leaves_no_mirror_image(seed):
+    """A 7 Hz neural oscillation beside 13 Hz stimulation projects on the artifact's cycle as a change
+    at 6 Hz; the gain used to follow a third of it, which took part of the rhythm off and put its
+    mirror image at 2 f - 7 = 19 Hz, up to 0.9 of the neural power there (LFP error away from the
+    harmonics 0.07; now 0.015, the image 0.03). The gain now passes a line only as far as both its
+    sidebands show (artifactclean.modulation.sideband_support)."""
+    art = ArtifactSpec(freq_hz=13.0, amplitude_uv=4000.0, heart_depth=0.02, heart_harmonics=(), resp_depth=0.01,
+                       drift_ppm=40.0, channel_gains=(1.0, -0.7, 0.45, -1.2))
+    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=units4(), oscillation_hz=7.0,
+                                                                   oscillation_uv=15.0), seed=seed)
+    y = clean(rec.data, rec.fs)
+    s = score_cleaning(rec, y)
+    assert max(s["lfp_error_away"]) <= 0.05, s["lfp_error_away"]
+    # the mirror image: residual power near 19 Hz against the neural power there (scipy.signal.welch)
+    from scipy import signal
+
+    fr, pr = signal.welch(y - rec.neural, rec.fs, nperseg=int(4 * rec.fs))
+    _, pn = signal.welch(rec.neural, rec.fs, nperseg=int(4 * rec.fs))
+    near = (fr >= 18.5) & (fr <= 20.0)
+    ratio = pr[:, near].sum(axis=1) / pn[:, near].sum(axis=1)
+    assert ratio.max() < 0.1, ratio
+
+
 @pytest.mark.parametrize("freq, heart_hz", [(20.0, 1.2), (40.0, 1.0)])
 def test_a_resting_human_heartbeat_leaves_no_sidebands(freq, heart_hz):
     """Issue 3's +-3 Hz figure (<= 2x the neural power) with a person's resting heart rate: the

@@ -22,7 +22,8 @@ from scipy import ndimage, signal
 from ..clipping import find_clipped
 from ..stimulation import ramp_level
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
-    lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle
+    lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
+    sideband_support
 from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
@@ -351,15 +352,20 @@ class CycleEstimator(ArtifactEstimator):
             usable = (~find_clipped(x)).astype(np.float64)
             raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
             response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
+            # means over ~1/32 cycle (modulations and the shift live in the first harmonics)
+            xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
+            # a line of the gain passes only as far as both its sidebands show: a neural rhythm near the
+            # fundamental is one line, and following it would put its mirror image beside the fundamental
+            both = sideband_support(xd, wd, ud, fsd, f, response.freqs, above_hz=follow_below(f))
+            response.response = np.minimum(response.response, both)
             if getattr(self, "track_phase", False) and (b - a) * f / fs >= 40:  # a shift needs seconds of cycles
                 # the phase shift's own lines pass, nothing always does: without a phase modulation
-                # the shift is the neural floor, which the derivative would copy onto every harmonic;
-                # measured on means over ~1/32 cycle (the shift lives in the first harmonics)
-                xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
+                # the shift is the neural floor, which the derivative would copy onto every harmonic
                 eta, _ = segment_phase(xd, wd, ud, fsd, f, per_cycle,
                                        segments=(int(np.floor(cycles[0] * per_cycle)), raw.shape[1]))
-                response.phase = design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f),
-                                                      over_subtraction=4.0).response
+                response.phase = np.minimum(
+                    design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f),
+                                         over_subtraction=4.0).response, both)
                 # kept only where following it takes artifact off beside the fundamental
                 response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
                                             first=int(np.floor(cycles[0] * per_cycle)))] = 0.0
