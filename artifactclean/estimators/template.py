@@ -156,6 +156,12 @@ def _shape(s, g, n_bins, k_groups, denoise, stride, per=1, s_off=None, occupied=
         whole_rows = ~holes_left.any(axis=-1, keepdims=True)
     elif occupied is None:
         whole_rows = ~holes.any(axis=-1, keepdims=True)
+        if per > 1:
+            # rows of a DAC period hold one bin per tick, each from few samples: a few ticks emptied by
+            # spike outliers (a locked unit flags the same ticks period after period) are filled along
+            # the row, which is then whole; kept raw it took the LFP periodic by chance with it (LFP
+            # error 0.11-0.15 on that channel)
+            whole_rows |= holes.sum(axis=-1, keepdims=True) <= max(1, n_bins // 50)
     else:
         # held phases: a bin without usable weight may be one no tick of the window held, or one held
         # only on a ramp's foot; both are gaps in the sampling, filled along the cycle. A row is
