@@ -398,10 +398,10 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
     return GainResponse(freqs, resp, rate)
 
 
-#: ratio of a pair's weaker sideband to its stronger (each beyond its floor) from which a gain line
-#: passes whole, and below which it does not pass (this project's choice: a line of a modulation plus a
-#: rhythm of twice its size on one side, ratio 1/3, is followed whole; one of three times, ratio 1/4, at
-#: two thirds)
+#: the ratio of what a side shows to what a pair would put there (:func:`sideband_support`) from which
+#: a gain line passes whole, and below which it does not pass (this project's choice: a pair scatters
+#: to a ratio of about 0.6 at worst over a few Welch segments; one line clear of the other side's
+#: floor gives a few hundredths)
 _PAIR_FULL = 1.0 / 3.0
 _PAIR_NONE = 0.1
 
@@ -433,7 +433,7 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
     like a modulation at ``d`` too, and a gain that follows it takes part of
     the rhythm off and puts its mirror image at ``f + d`` (a 6.75 Hz rhythm
     beside 13 Hz stimulation: 0.3-0.46 of it followed, its image at 19.25 Hz
-    up to 0.8 of the neural power there).
+    up to 0.9 of the neural power there).
 
     The data are demodulated at the stimulation phase (``z = x exp(-2 pi i
     u)``, block means of a stretch), and the two-sided spectrum of ``z``

@@ -403,11 +403,11 @@ def _noise_sd(q: np.ndarray, d: np.ndarray) -> float:
     """Robust SD of the step statistic's noise: its MAD, or the first differences' where steps crowd.
 
     A step touches three consecutive windows of the statistic. With ticks a
-    few samples apart (a 5 or 7.5 kHz DAC sampled at 30 kHz: six or four
-    samples a tick) most windows hold one, and their MAD is the steps' size
-    rather than the noise's (51 and 72 against 22 uV at 40 Hz): no step
-    stood out, no grid was found and the staircase stayed in the spike band
-    (0.6x and 0.3x the noise). Within a tick the staircase is flat, so most
+    few samples apart (a 5 kHz DAC sampled at 30 kHz: six samples a tick)
+    half the windows hold one, and their MAD is the steps' size rather than
+    the noise's (51 against 22 uV at 40 Hz): only the steepest steps stood
+    out, no grid was found and the staircase stayed in the spike band (0.6x
+    the noise). Within a tick the staircase is flat, so most
     first differences are noise alone; where the statistic's MAD exceeds
     1.5 times what they give, theirs is taken. Sparse steps (a 1 kHz DAC, or
     a smooth waveform whose slope fills the differences) keep the MAD.
