@@ -1,8 +1,8 @@
 """The estimator issue's acceptance figures on synthetic truth, one row per trace.
 
 For each stimulation frequency (5, 10, 20, 40 Hz by default; any other
-takes the same artifact at that frequency), with and without a 1 kHz DAC
-staircase, and for a pulsatile and a sinusoidal
+takes the same artifact at that frequency), with and without a DAC
+staircase (1 kHz unless ``--dac-rate``), and for a pulsatile and a sinusoidal
 heartbeat: a 4 mV artifact with harmonics, 2% heartbeat and 1% respiration
 modulation, 40 ppm drift, 1 s ramps, 4 channels of different gains and
 signs and a unit locked to the stimulation (von Mises kappa = 1). Prints
@@ -12,6 +12,7 @@ ratio, worst/best sixth, delta PPC and the locked unit's PLV and phase
 errors. Figures, not seconds: nothing here is timed.
 
     python benchmarks/acceptance.py [--method template] [--seconds 20] [--seeds 1 3] [--freqs 5 10 20 40]
+                                    [--dac-rate 1000]
 """
 
 from __future__ import annotations
@@ -32,9 +33,13 @@ def main(argv=None) -> list[dict]:
     ap.add_argument("--seconds", type=float, default=20.0)
     ap.add_argument("--seeds", type=int, nargs="+", default=[1])
     ap.add_argument("--freqs", type=float, nargs="+", default=[5, 10, 20, 40])
+    ap.add_argument("--dac-rate", type=float, default=1000.0, help="updates per second of the DAC rows (Hz)")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore")
-    print(f"{args.method!r}, {args.seconds:g} s traces, seeds {args.seeds}; worst channel")
+    if not args.dac_rate > 0:
+        ap.error(f"--dac-rate must be positive, got {args.dac_rate:g}")
+    print(f"{args.method!r}, {args.seconds:g} s traces, seeds {args.seeds}, DAC rows at {args.dac_rate:g} Hz; "
+          "worst channel")
     print(f"{'heartbeat':<10} {'Hz':>3} {'DAC':>4} {'seed':>4} {'spike-band':>10} {'+-3 Hz':>7} {'away':>6} "
           f"{'recall':>7} {'sixth':>6} {'dPPC':>9} {'PLV err':>8} {'phase':>6}")
     rows = []
@@ -43,7 +48,7 @@ def main(argv=None) -> list[dict]:
             for dac in ("", "_dac"):
                 # the built-in modulated scenarios, at any frequency (5, 10, 20 and 40 Hz are theirs)
                 art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=f,
-                                          dac_rate_hz=1000.0 if dac else None)
+                                          dac_rate_hz=args.dac_rate if dac else None)
                 if heart == "sine":
                     art = dataclasses.replace(art, heart_harmonics=())
                 for seed in args.seeds:
