@@ -16,7 +16,10 @@ cycle is not a whole number of updates (13 Hz or 6 Hz from a 1 kHz DAC:
 (:func:`find_dac_period`).
 
 Steps are found with a four-sample step detector, and ``M`` and ``c`` by
-folding the step positions on the stimulation phase.
+folding the step positions on the stimulation phase. A fast DAC's steps
+(a few samples a tick) are each too small to find; its update rate shows
+in the power of the first differences, and its edges where that power
+falls between two samples (:func:`find_fast_dac`).
 """
 
 from __future__ import annotations
@@ -24,10 +27,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import signal
 
 from .clipping import find_clipped
 
-__all__ = ["DacClock", "DacGrid", "find_dac_clock", "find_dac_grid", "find_dac_period", "step_rate"]
+__all__ = ["DacClock", "DacGrid", "find_dac_clock", "find_dac_grid", "find_dac_period", "find_fast_dac", "step_rate"]
 
 
 @dataclass(frozen=True)
@@ -53,6 +57,11 @@ class DacGrid:
     cycles_per_period : int
         Stimulation cycles (``q``) after which the ticks fall on the same
         phases again: 1 when a cycle is a whole number of updates.
+    settle_width : float
+        Samples closer than this (in samples) to a tick edge are assigned
+        to a tick by the data rather than by the grid: a grid from a few
+        thousand steps places its edges to about a quarter of a sample; one
+        from every sample's difference (:func:`find_fast_dac`) far better.
     """
 
     ticks_per_cycle: int
@@ -61,6 +70,7 @@ class DacGrid:
     n_steps: int
     offset_track: tuple = ()
     cycles_per_period: int = 1
+    settle_width: float = 0.25
 
     def _position(self, cycles: np.ndarray) -> np.ndarray:
         periods = cycles / self.cycles_per_period if self.cycles_per_period != 1 else cycles
@@ -108,6 +118,8 @@ class DacClock:
 
     #: the template's rows are cycles
     cycles_per_period = 1
+    #: samples within a quarter sample of a tick edge are assigned by the data (see DacGrid)
+    settle_width = 0.25
 
     def tick_index(self, cycles: np.ndarray) -> np.ndarray:
         """Global tick number of each sample with unwrapped phase ``cycles``."""
@@ -245,14 +257,18 @@ def find_dac_grid(
         centres.append(0.5 * (lo + hi))
         # keep each local offset within half a tick of the global one
         offs.append(c + (np.mod(cw - c + 0.5, 1.0) - 0.5))
-    track = ()
-    if len(centres) >= 3:
-        # a straight line through the local offsets absorbs a residual frequency error
-        centres, offs = np.asarray(centres), np.asarray(offs)
-        coef = np.polyfit(centres - centres.mean(), offs, 1)
-        ends = np.array([u_all[0] - 1e6, u_all[-1] + 1e6])
-        track = (ends, np.polyval(coef, ends - centres.mean()))
+    track = _offset_line(centres, offs, u_all[0], u_all[-1])
     return DacGrid(m, c, float(r[best]), int(big.size), track, int(cycles_per_period))
+
+
+def _offset_line(centres: list, offs: list, first: float, last: float) -> tuple:
+    """A straight line through local offsets (it absorbs a residual frequency error), or () for fewer than 3."""
+    if len(centres) < 3:
+        return ()
+    centres, offs = np.asarray(centres), np.asarray(offs)
+    coef = np.polyfit(centres - centres.mean(), offs, 1)
+    ends = np.array([first - 1e6, last + 1e6])
+    return ends, np.polyval(coef, ends - centres.mean())
 
 
 def find_dac_period(
@@ -296,6 +312,229 @@ def find_dac_period(
             if grid is not None:
                 return grid
     return None
+
+
+def find_fast_dac(
+    x: np.ndarray,
+    cycles: np.ndarray,
+    fs: float,
+    freq: float,
+    *,
+    max_samples_per_tick: float = 8.0,
+    max_period: int = 24,
+    min_z: float = 20.0,
+    min_prominence: float = 10.0,
+    min_edge_power: float = 2.0,
+    window_s: float = 2.0,
+) -> DacGrid | None:
+    """Look for a DAC too fast for its single steps to show (a few samples a tick).
+
+    A 10 kHz DAC sampled at 30 kHz holds each value for three samples; at
+    40 Hz and 4 mV its steps are 0-100 uV, under the step statistic's noise
+    (every window of it holds a step), so :func:`find_dac_grid` finds none.
+    Pooled, they show: within a tick the staircase is flat, so the power of
+    the first differences ``d[n] = x[n+1] - x[n]`` is the noise's except
+    where a tick edge falls between the two samples.
+
+    - The update rate ``R`` is the strongest line of ``d**2`` between
+      ``fs / max_samples_per_tick`` and ``fs / 2`` (a Hann-windowed FFT of
+      2**16 pairs), at least ``min_prominence`` times the band's median,
+      placed by a zoom FFT of the whole stretch; it gives ``rho = R / freq``
+      updates per cycle. Its alias ``fs - R`` (a DAC faster than ``fs / 2``)
+      is tried too, and the grid that folds better is kept.
+    - Each ``q <= max_period`` with ``q * rho`` within 0.05 of a whole number
+      ``M`` is scored by folding the pairs' power on ``M`` ticks per ``q``
+      cycles: ``|sum(w exp(2 pi i M u / q))| / sqrt(sum(w**2))``, whose
+      square is about exponentially distributed with mean 1 when the power
+      is not locked to the ticks. The best (the shortest period among
+      equals) must reach ``min_z`` (the DACs here give 70-260, smooth
+      waveforms under 3).
+    - The pairs the grid puts a tick edge between must hold on average
+      ``min_edge_power`` times the power of the others (a DAC faster than
+      ``fs / 2`` aliases into the band, and its grid fails this).
+    - The tick offset is where most of that power lies between two samples:
+      each pair votes with its power for the phases between its two
+      samples, in windows of about ``window_s`` seconds (at least four, none
+      under half a second), and a line through the windows' offsets follows
+      a residual error of the frequency; ticks that drift more than 0.005 of
+      a tick per period only nearly repeat (a free-running DAC), and are
+      refused.
+
+    The edges are placed to about 1e-4 of a tick here (synthetic 40 Hz, 10
+    kHz DAC), so only the samples within a few thousandths of a sample of
+    an edge are left for the data to assign (``settle_width``; a quarter of
+    a sample for a grid from single steps; here a quarter sample's
+    ambiguous samples, misassigned by the noise, left 0.04-0.1 x the noise
+    in the spike band).
+
+    Parameters
+    ----------
+    x : ndarray, shape (n,)
+        One channel during stimulation (the strongest).
+    cycles : ndarray, shape (n,)
+        Unwrapped stimulation phase of each sample, in cycles.
+    fs, freq : float
+        Sampling and stimulation frequency (Hz).
+    max_samples_per_tick : float
+        Slowest DAC looked for, in samples per tick (slower ones show
+        single steps).
+    max_period : int
+        Longest period of cycles after which the ticks fall on the same
+        phases again.
+    min_z, min_prominence, min_edge_power : float
+        Acceptance thresholds (above).
+    window_s : float
+        Length of the windows whose offsets the line goes through (s).
+
+    Returns
+    -------
+    DacGrid or None
+        None when no such staircase is found.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    if x.size < 4096:
+        return None
+    lost = find_clipped(x[None, :])[0]
+    d = np.diff(x)
+    w = d * d
+    w[lost[:-1] | lost[1:]] = 0.0  # a rail's edges are steps of its own
+    w = np.minimum(w, 25.0 * np.median(w[::7]))  # a spike's edges: a few pairs, not a rhythm
+    if not np.any(w > 0):
+        return None
+    # the rate from the middle of the stretch (clear of ramps), 2**16 pairs: bins of 0.5 Hz at 30 kHz
+    n_fft = min(w.size, 1 << 16)
+    mid = w[(w.size - n_fft) // 2:][:n_fft]
+    nfft = 4 * (1 << int(np.ceil(np.log2(n_fft))))
+    spec = np.abs(np.fft.rfft((mid - mid.mean()) * np.hanning(n_fft), nfft))
+    lo = int(np.ceil(fs / max_samples_per_tick * nfft / fs))
+    hi = nfft // 2 - 2
+    if hi <= lo + 2:
+        return None
+    k = lo + 1 + int(np.argmax(spec[lo + 1:hi]))
+    # a line, not the largest of ~10**5 noise bins (about 4-5 times their median); the DACs here stand
+    # 19-390 times above it. Spares the folds below on every recording without a DAC
+    if spec[k] < min_prominence * np.median(spec[lo:hi]):
+        return None
+    a, b, c = np.log(spec[k - 1:k + 2] + 1e-300)
+    curv = a - 2 * b + c
+    # the peak between bins from a parabola through the log magnitudes (common practice)
+    k_peak = k + (0.5 * (a - c) / curv if curv < 0 else 0.0)
+    rate = _refine_line(w, fs, k_peak * fs / nfft, 4.0 * fs / n_fft)
+    # a DAC faster than fs / 2 shows at its alias fs - R (25 kHz sampled at 30 kHz: a line at 5 kHz; a
+    # tick still spans a sample or more, so its grid holds); the better fold of the two is the DAC's (15
+    # kHz with 40 ppm shows at 14999.4 Hz, whose 1499.88 ticks a 10 Hz cycle fit 25498 per 17 cycles,
+    # but 15000.6 Hz fits 1500 per cycle better)
+    # A DAC in the band (locked or not) explains the pairs' power by ticks at that rate in time, and then
+    # its alias is not looked at: that of a free-running 10 kHz DAC (13.37 Hz) folds as well as its line
+    # and came within 0.05 of 7479 ticks every 5 cycles
+    rates = (rate, fs - rate)
+    if abs(rate - 0.5 * fs) > 0.01 * fs and _edge_power(mid, np.arange(n_fft) * (rate / fs), 1) >= min_edge_power:
+        rates = (rate,)
+    found = [_grid_at_rate(w, cycles, fs, freq, r, max_period=max_period, min_z=min_z,
+                           min_edge_power=min_edge_power, window_s=window_s) for r in rates]
+    found = [g for g in found if g is not None]
+    return max(found, key=lambda g: g.concentration) if found else None
+
+
+def _refine_line(w: np.ndarray, fs: float, rate: float, span: float) -> float:
+    """The frequency of the line near ``rate`` (within ``span`` Hz) in all of ``w``, to ~1/8 of its resolution.
+
+    The 2**16 pairs of the search place a line to ~0.05 Hz, too coarse to tell a period of 24 cycles
+    at 5 Hz; and next to fs / 2 its mirror image pulls the peak (15 kHz sampled at 30 kHz read 1.2 Hz
+    low). A zoom FFT (``scipy.signal.zoom_fft``) of the whole Hann-windowed stretch does neither.
+    """
+    lo, hi = max(rate - span, 1.0), min(rate + span, 0.5 * fs)
+    step = fs / w.size / 8.0
+    n_pts = max(3, int((hi - lo) / step))
+    spec = np.abs(signal.zoom_fft((w - w.mean()) * np.hanning(w.size), [lo, hi], n_pts, fs=fs))
+    k = int(np.clip(np.argmax(spec), 1, n_pts - 2))
+    a, b, c = np.log(spec[k - 1:k + 2] + 1e-300)
+    curv = a - 2 * b + c
+    return float(lo + (k + (0.5 * (a - c) / curv if curv < 0 else 0.0)) * (hi - lo) / n_pts)
+
+
+def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rate: float, *, max_period: int,
+                  min_z: float, min_edge_power: float, window_s: float, max_drift: float = 0.005) -> DacGrid | None:
+    """The grid of ticks at about ``rate`` per second from the pairs' power ``w`` (see :func:`find_fast_dac`), or None."""
+    rho = rate / freq
+    # each period of q cycles holding about a whole number of ticks is scored by the fold of the same
+    # pairs on it: the rate is known to ~1e-5, too coarse to tell q at 5 Hz, the fold is not. A fold
+    # on 2q cycles is the same fold (the ticks repeat every q), so a longer period must score higher
+    u_mid = 0.5 * (cycles[:-1] + cycles[1:])
+    norm = float(np.sqrt(np.sum(w * w)))
+
+    def fold(m, q):
+        return float(np.abs(np.sum(w * np.exp(2j * np.pi * (m / q) * u_mid)))) / norm
+
+    best, tried = None, []
+    for q in range(1, max_period + 1):
+        m = round(q * rho)
+        if m < 3 or abs(q * rho - m) > 0.05 or any(q % p == 0 and m * p == mp * q for p, mp in tried):
+            continue  # (a period of 2q cycles on the ticks of q is the same fold)
+        tried.append((q, m))
+        score = fold(m, q)
+        if best is None or score > 1.05 * best[0]:
+            best = (score, q, m)
+    if best is None or best[0] < min_z:
+        return None
+    score, q, m = best
+    # a slower DAC's steps the single-step search missed put their rate's harmonics in the band (a
+    # 1 kHz DAC: lines at 4, 5, ... kHz), whose folds hold every tick too: the slowest rate (down to
+    # 200 Hz) whose fold keeps half the score is the DAC's (every other tick's power cancels in a
+    # fold on half the true rate)
+    for j in range(min(64, int(rate // 200.0)), 1, -1):
+        if m % j == 0 and m // j >= 3 and fold(m // j, q) >= 0.5 * score:
+            m //= j
+            break
+    u = cycles / q if q != 1 else cycles
+    conc = fold(m, q) * norm / w.sum()
+    c0 = _vote_offset(m, u[:-1], u[1:], w)
+    # at least four windows, none under half a second
+    n_win = max(4, int(w.size // (window_s * fs)))
+    bounds = np.linspace(0, w.size, n_win + 1).astype(np.int64) if w.size >= n_win * 0.5 * fs else []
+    centres, offs = [], []
+    for i, j in zip(bounds[:-1], bounds[1:]):
+        cw = _vote_offset(m, u[i:j], u[i + 1:j + 1], w[i:j])
+        centres.append(float(u[i:j].mean()))
+        offs.append(c0 + (np.mod(cw - c0 + 0.5, 1.0) - 0.5))
+    track = _offset_line(centres, offs, u[0], u[-1])
+    if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > max_drift:
+        # ticks that only nearly repeat every q cycles (13.37 Hz from 1 kHz: 373.97 every 5 cycles;
+        # they repeat every 1337) fold well over seconds, the line taking up their drift of 0.03 ticks
+        # a period; an error of the frequency moves them by ~1e-5 (a free-running DAC: find_dac_clock)
+        return None
+    # the data assign the samples closer to an edge than the offsets scatter (four SDs about their
+    # line), and never fewer than those within 0.003 samples: the edges are placed to about 1e-4
+    # ticks here, and a sample that close to one, misassigned, leaves a whole step (130 uV) as a spike
+    settle = 0.25
+    if track:
+        scatter = float(np.std(np.asarray(offs) - np.interp(centres, *track)))
+        settle = float(np.clip(4.0 * scatter * fs * q / (m * freq), 0.003, 0.25))
+    # the staircase is flat within a tick: the pairs the grid puts an edge between must hold more power
+    # than the rest. A DAC faster than fs / 2 aliases to a line in the band whose grid does not (20 and
+    # 25 kHz sampled at 30 kHz, taken at their alias: 1.1-1.5 times; the DACs found here 2.6-19)
+    if _edge_power(w, u, m, (track, c0)) < min_edge_power:
+        return None
+    return DacGrid(int(m), c0, conc, int(w.size), track, int(q), settle_width=settle)
+
+
+def _edge_power(w: np.ndarray, u: np.ndarray, m: int, offset=None) -> float:
+    """Mean power of the pairs a grid of ``m`` ticks per unit of ``u`` puts an edge between, over the rest's.
+
+    ``offset`` is ``(track, c)`` as a grid has them; by default the pairs' weighted vote. 0 when
+    every pair or none straddles an edge.
+    """
+    if offset is None:
+        c = _vote_offset(m, u[:-1], u[1:], w[: u.size - 1])
+        pos = m * u - c
+    else:
+        track, c = offset
+        pos = m * u - (np.interp(u, *track) if track else c)
+    edge = np.diff(np.floor(pos)) != 0
+    w = w[: edge.size]
+    if edge.all() or not edge.any():
+        return 0.0
+    return float(w[edge].mean() / max(w[~edge].mean(), 1e-300))
 
 
 def _tick_period(x: np.ndarray, z_threshold: float) -> float | None:
@@ -444,18 +683,22 @@ def _step_positions(q: np.ndarray, level: float) -> np.ndarray:
     return big[(qa[big] >= left) & (qa[big] > right)]
 
 
-def _vote_offset(m: int, u_lo: np.ndarray, u_hi: np.ndarray, nb: int = 65536) -> float:
-    """Tick offset consistent with most steps: each lies in ``(M u_lo, M u_hi]`` mod 1."""
+def _vote_offset(m: int, u_lo: np.ndarray, u_hi: np.ndarray, weights: np.ndarray | None = None,
+                 nb: int = 65536) -> float:
+    """Tick offset consistent with most steps: each lies in ``(M u_lo, M u_hi]`` mod 1.
+
+    With ``weights`` each interval votes with its weight (a pair of samples
+    with the power of its difference).
+    """
     a = np.mod(m * u_lo, 1.0)
     w = m * (u_hi - u_lo)
     start = np.floor(a * nb).astype(int)
     width = np.maximum(1, np.round(w * nb).astype(int))
-    votes = np.zeros(2 * nb + 1)
-    np.add.at(votes, start, 1.0)
-    np.add.at(votes, np.minimum(start + width, 2 * nb), -1.0)
+    stop = np.minimum(start + width, 2 * nb)
+    votes = np.bincount(start, weights, minlength=2 * nb + 1) - np.bincount(stop, weights, minlength=2 * nb + 1)
     votes = np.cumsum(votes)[: 2 * nb]
     votes = votes[:nb] + votes[nb:]
-    top = np.flatnonzero(votes >= votes.max() - 0.5)
+    top = np.flatnonzero(votes >= votes.max() - (0.5 if weights is None else 1e-9 * abs(votes.max())))
     # centre of the densest run on the circle
     ang = np.angle(np.mean(np.exp(2j * np.pi * (top + 0.5) / nb)))
     return float(np.mod(ang / (2 * np.pi), 1.0))

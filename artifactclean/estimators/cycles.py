@@ -24,7 +24,7 @@ from ..stimulation import ramp_level
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
-from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, step_rate
+from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
 
@@ -143,16 +143,31 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
     The phase model locates an edge to a fraction of a sample; the held
     levels on either side tell where the edge actually fell. The neural
     signal is slow next to a step, so each candidate is judged against the
-    residual two samples away on either side. ``read(keys, samples)`` gives the
-    template (of this channel) at those tick keys.
+    residual two samples away on either side, or the nearest sample within
+    four that is not itself next to an edge: with two samples a tick (a 15
+    kHz DAC at 30 kHz) every other sample is, for a few dozen ticks around
+    each tick of one sample, and judged against those the candidates kept
+    whole steps (25-35 uV). ``read(keys, samples)`` gives the template (of
+    this channel) at those tick keys.
     """
     n = x.size
     hi = base_key.max()
     new = base_key.copy()
+    unsure = np.zeros(n, dtype=bool)
+    unsure[amb_lo] = True
+    unsure[amb_hi] = True
+
+    def sure_neighbour(amb, side):
+        at = np.clip(amb + 2 * side, 0, n - 1)
+        for k in (1, 3, 4):
+            alt = np.clip(amb + k * side, 0, n - 1)
+            at = np.where(unsure[at] & ~unsure[alt], alt, at)
+        return at
+
     for amb, step in ((amb_lo, -1), (amb_hi, 1)):
         if amb.size == 0:
             continue
-        around = np.concatenate([np.maximum(amb - 2, 0), np.minimum(amb + 2, n - 1)])
+        around = np.concatenate([sure_neighbour(amb, -1), sure_neighbour(amb, 1)])
         r = x[around] - g[around] * read(key[around], around)
         base = 0.5 * (r[: amb.size] + r[amb.size:])
         k0 = base_key[amb]
@@ -385,6 +400,12 @@ class CycleEstimator(ArtifactEstimator):
         if self.dac != "auto":
             return ref, None, 0.0, response, harmonics()
         grid = find_dac_grid(x[ref], cycles, fs, f)
+        # a few samples a tick: no single step stands out, their rate and edges do when pooled; and
+        # where both find the same ticks, the edges from every pair's difference are the sharper
+        pooled = find_fast_dac(x[ref], cycles, fs, f, max_period=24 if self._dac_periods else 1)
+        if grid is None or (pooled is not None and (pooled.ticks_per_cycle, pooled.cycles_per_period)
+                            == (grid.ticks_per_cycle, grid.cycles_per_period)):
+            grid = pooled
         # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
         # unless its ticks repeat every few cycles and the estimator models periods of cycles
         # the four strongest channels (one DAC drives them all: a weaker reference shows few steps;
@@ -485,7 +506,7 @@ class CycleGrid:
             self.n_bins = int(dac.ticks_per_cycle)
             key = dac.tick_index(u)
             edge = dac.edge_distance(u)
-            delta = 0.25 * self.n_bins * f / fs
+            delta = dac.settle_width * self.n_bins * f / fs
             self.amb_lo = np.flatnonzero(edge < delta)
             self.amb_hi = np.flatnonzero(edge > 1 - delta)
         else:

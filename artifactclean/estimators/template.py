@@ -428,9 +428,10 @@ class TemplateSubtraction(CycleEstimator):
         free = isinstance(grid, DacClock)
         if grid is not None:
             ticks = grid.tick_index(u)
-            # samples within a quarter sample of a tick edge are assigned by the data
+            # samples next to a tick edge (within a quarter sample, for a grid from single steps)
+            # are assigned by the data
             edge = grid.edge_distance(u)
-            delta = 0.25 * grid.ticks_per_cycle * f / (per * fs)
+            delta = grid.settle_width * grid.ticks_per_cycle * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
             del edge  # arrays of the block's length are freed as soon as they are done with (memory)
