@@ -326,6 +326,7 @@ def find_fast_dac(
     min_prominence: float = 10.0,
     min_edge_power: float = 2.0,
     window_s: float = 2.0,
+    ticks: tuple | None = None,
 ) -> DacGrid | None:
     """Look for a DAC too fast for its single steps to show (a few samples a tick).
 
@@ -354,8 +355,8 @@ def find_fast_dac(
       ``fs / 2`` aliases into the band, and its grid fails this).
     - The tick offset is where most of that power lies between two samples:
       each pair votes with its power for the phases between its two
-      samples, in windows of about ``window_s`` seconds (at least four, none
-      under half a second), and a line through the windows' offsets follows
+      samples, in windows of about ``window_s`` seconds (at least eight,
+      none under a quarter second), and a line through the windows' offsets follows
       a residual error of the frequency; ticks that drift more than 0.005 of
       a tick per period only nearly repeat (a free-running DAC), and are
       refused.
@@ -385,6 +386,9 @@ def find_fast_dac(
         Acceptance thresholds (above).
     window_s : float
         Length of the windows whose offsets the line goes through (s).
+    ticks : (int, int), optional
+        ``(M, q)`` when the ticks are known (from :func:`find_dac_grid`): the
+        search is skipped, and only their edges are placed and checked.
 
     Returns
     -------
@@ -401,6 +405,9 @@ def find_fast_dac(
     w = np.minimum(w, 25.0 * np.median(w[::7]))  # a spike's edges: a few pairs, not a rhythm
     if not np.any(w > 0):
         return None
+    if ticks is not None:
+        return _grid_at_rate(w, cycles, fs, freq, None, max_period=max_period, min_z=min_z,
+                             min_edge_power=min_edge_power, window_s=window_s, ticks=ticks)
     # the rate from the middle of the stretch (clear of ramps), 2**16 pairs: bins of 0.5 Hz at 30 kHz
     n_fft = min(w.size, 1 << 16)
     mid = w[(w.size - n_fft) // 2:][:n_fft]
@@ -441,8 +448,10 @@ def _refine_line(w: np.ndarray, fs: float, rate: float, span: float) -> float:
 
     The 2**16 pairs of the search place a line to ~0.05 Hz, too coarse to tell a period of 24 cycles
     at 5 Hz; and next to fs / 2 its mirror image pulls the peak (15 kHz sampled at 30 kHz read 1.2 Hz
-    low). A zoom FFT (``scipy.signal.zoom_fft``) of the whole Hann-windowed stretch does neither.
+    low). A zoom FFT (``scipy.signal.zoom_fft``) of up to 2**18 Hann-windowed pairs does neither.
     """
+    first = max(0, (w.size - (1 << 18)) // 2)  # the middle 8.7 s at 30 kHz: ~2 mHz here
+    w = w[first:first + (1 << 18)]
     lo, hi = max(rate - span, 1.0), min(rate + span, 0.5 * fs)
     step = fs / w.size / 8.0
     n_pts = max(3, int((hi - lo) / step))
@@ -453,45 +462,35 @@ def _refine_line(w: np.ndarray, fs: float, rate: float, span: float) -> float:
     return float(lo + (k + (0.5 * (a - c) / curv if curv < 0 else 0.0)) * (hi - lo) / n_pts)
 
 
-def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rate: float, *, max_period: int,
-                  min_z: float, min_edge_power: float, window_s: float, max_drift: float = 0.005) -> DacGrid | None:
-    """The grid of ticks at about ``rate`` per second from the pairs' power ``w`` (see :func:`find_fast_dac`), or None."""
-    rho = rate / freq
-    # each period of q cycles holding about a whole number of ticks is scored by the fold of the same
-    # pairs on it: the rate is known to ~1e-5, too coarse to tell q at 5 Hz, the fold is not. A fold
-    # on 2q cycles is the same fold (the ticks repeat every q), so a longer period must score higher
-    u_mid = 0.5 * (cycles[:-1] + cycles[1:])
-    norm = float(np.sqrt(np.sum(w * w)))
+def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rate: float | None, *,
+                  max_period: int, min_z: float, min_edge_power: float, window_s: float, max_drift: float = 0.005,
+                  ticks: tuple | None = None) -> DacGrid | None:
+    """The grid of ticks at about ``rate`` per second from the pairs' power ``w`` (see :func:`find_fast_dac`), or None.
+
+    With ``ticks`` (``M``, ``q``) the ticks are known, and only their edges are placed and checked.
+    """
+    # folds on the middle 2**17 pairs (4.4 s at 30 kHz; the DACs here score 35-130 there): a fold is an
+    # exponential per pair, and a block's search tries up to a dozen
+    first = max(0, (w.size - (1 << 17)) // 2)
+    w_fold = w[first:first + (1 << 17)]
+    u_mid = 0.5 * (cycles[first:first + w_fold.size] + cycles[first + 1:first + w_fold.size + 1])
+    norm = float(np.sqrt(np.sum(w_fold * w_fold)))
 
     def fold(m, q):
-        return float(np.abs(np.sum(w * np.exp(2j * np.pi * (m / q) * u_mid)))) / norm
+        return float(np.abs(np.sum(w_fold * np.exp(2j * np.pi * (m / q) * u_mid)))) / norm
 
-    best, tried = None, []
-    for q in range(1, max_period + 1):
-        m = round(q * rho)
-        if m < 3 or abs(q * rho - m) > 0.05 or any(q % p == 0 and m * p == mp * q for p, mp in tried):
-            continue  # (a period of 2q cycles on the ticks of q is the same fold)
-        tried.append((q, m))
-        score = fold(m, q)
-        if best is None or score > 1.05 * best[0]:
-            best = (score, q, m)
-    if best is None or best[0] < min_z:
-        return None
-    score, q, m = best
-    # a slower DAC's steps the single-step search missed put their rate's harmonics in the band (a
-    # 1 kHz DAC: lines at 4, 5, ... kHz), whose folds hold every tick too: the slowest rate (down to
-    # 200 Hz) whose fold keeps half the score is the DAC's (every other tick's power cancels in a
-    # fold on half the true rate)
-    for j in range(min(64, int(rate // 200.0)), 1, -1):
-        if m % j == 0 and m // j >= 3 and fold(m // j, q) >= 0.5 * score:
-            m //= j
-            break
+    if ticks is not None:
+        m, q = (int(v) for v in ticks)
+    else:
+        m, q = _ticks_of_rate(fold, rate, freq, max_period, min_z)
+        if m is None:
+            return None
     u = cycles / q if q != 1 else cycles
-    conc = fold(m, q) * norm / w.sum()
+    conc = fold(m, q) * norm / w_fold.sum()
     c0 = _vote_offset(m, u[:-1], u[1:], w)
-    # at least four windows, none under half a second
-    n_win = max(4, int(w.size // (window_s * fs)))
-    bounds = np.linspace(0, w.size, n_win + 1).astype(np.int64) if w.size >= n_win * 0.5 * fs else []
+    # at least eight windows (their scatter about the line sets the settle width), none under a quarter second
+    n_win = max(8, int(w.size // (window_s * fs)))
+    bounds = np.linspace(0, w.size, n_win + 1).astype(np.int64) if w.size >= n_win * 0.25 * fs else []
     centres, offs = [], []
     for i, j in zip(bounds[:-1], bounds[1:]):
         cw = _vote_offset(m, u[i:j], u[i + 1:j + 1], w[i:j])
@@ -516,6 +515,35 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     if _edge_power(w, u, m, (track, c0)) < min_edge_power:
         return None
     return DacGrid(int(m), c0, conc, int(w.size), track, int(q), settle_width=settle)
+
+
+def _ticks_of_rate(fold, rate: float, freq: float, max_period: int, min_z: float) -> tuple:
+    """``(M, q)``: ``M`` ticks every ``q`` cycles at about ``rate`` per second, the best ``fold``; ``(None, None)``."""
+    rho = rate / freq
+    # each period of q cycles holding about a whole number of ticks is scored by the fold of the pairs
+    # on it (the rate alone cannot tell q at 5 Hz). A fold on 2q cycles is the same fold (the ticks
+    # repeat every q), so a longer period must score higher
+    best, tried = None, []
+    for q in range(1, max_period + 1):
+        m = round(q * rho)
+        if m < 3 or abs(q * rho - m) > 0.05 or any(q % p == 0 and m * p == mp * q for p, mp in tried):
+            continue  # (a period of 2q cycles on the ticks of q is the same fold)
+        tried.append((q, m))
+        score = fold(m, q)
+        if best is None or score > 1.05 * best[0]:
+            best = (score, q, m)
+    if best is None or best[0] < min_z:
+        return None, None
+    score, q, m = best
+    # a slower DAC's steps the single-step search missed put their rate's harmonics in the band (a
+    # 1 kHz DAC: lines at 4, 5, ... kHz), whose folds hold every tick too: the slowest rate (down to
+    # 200 Hz) whose fold keeps half the score is the DAC's (every other tick's power cancels in a
+    # fold on half the true rate)
+    for j in range(min(64, int(rate // 200.0)), 1, -1):
+        if m % j == 0 and m // j >= 3 and fold(m // j, q) >= 0.5 * score:
+            m //= j
+            break
+    return m, q
 
 
 def _edge_power(w: np.ndarray, u: np.ndarray, m: int, offset=None) -> float:

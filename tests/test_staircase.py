@@ -105,7 +105,8 @@ def test_a_dac_of_a_few_samples_a_tick_is_found_from_the_differences(freq, dac, 
     fits a 10 Hz cycle only approximately; 25 kHz (faster than fs / 2) shows at its alias, 5 kHz; a
     1 kHz DAC's harmonics fill the band, and its grid is the slowest that folds them."""
     # (steps of at most 17 uV at 10 Hz from 15 kHz and 4 mV: under the 10 uV noise's differences; 10 mV)
-    x, cycles, fs, f, number = _held_sine(freq, dac, ticks=True, amplitude=10000.0 if dac == 15000.0 else 4000.0)
+    x, cycles, fs, f, number = _held_sine(freq, dac, ticks=True, amplitude=10000.0 if dac == 15000.0 else 4000.0,
+                                          seconds=16.0)  # eight windows of 2 s: their scatter sets the settle width
     if dac == 10000.0 and freq == 40.0:
         assert find_dac_grid(x, cycles, fs, f) is None
     grid = find_fast_dac(x, cycles, fs, f)

@@ -401,10 +401,10 @@ class CycleEstimator(ArtifactEstimator):
             return ref, None, 0.0, response, harmonics()
         grid = find_dac_grid(x[ref], cycles, fs, f)
         # a few samples a tick: no single step stands out, their rate and edges do when pooled; and
-        # where both find the same ticks, the edges from every pair's difference are the sharper
-        pooled = find_fast_dac(x[ref], cycles, fs, f, max_period=24 if self._dac_periods else 1)
-        if grid is None or (pooled is not None and (pooled.ticks_per_cycle, pooled.cycles_per_period)
-                            == (grid.ticks_per_cycle, grid.cycles_per_period)):
+        # where the steps give the ticks, the edges from every pair's difference are the sharper
+        pooled = find_fast_dac(x[ref], cycles, fs, f, max_period=24 if self._dac_periods else 1,
+                               ticks=None if grid is None else (grid.ticks_per_cycle, grid.cycles_per_period))
+        if grid is None or pooled is not None:
             grid = pooled
         # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
         # unless its ticks repeat every few cycles and the estimator models periods of cycles
