@@ -322,7 +322,7 @@ def find_fast_dac(
     *,
     max_samples_per_tick: float = 8.0,
     max_period: int = 24,
-    min_z: float = 20.0,
+    min_z: float = 10.0,
     min_prominence: float = 10.0,
     min_edge_power: float = 2.0,
     window_s: float = 2.0,
@@ -340,16 +340,17 @@ def find_fast_dac(
     - The update rate ``R`` is the strongest line of ``d**2`` between
       ``fs / max_samples_per_tick`` and ``fs / 2`` (a Hann-windowed FFT of
       2**16 pairs), at least ``min_prominence`` times the band's median,
-      placed by a zoom FFT of the whole stretch; it gives ``rho = R / freq``
-      updates per cycle. Its alias ``fs - R`` (a DAC faster than ``fs / 2``)
-      is tried too, and the grid that folds better is kept.
+      placed by a zoom FFT of up to 2**18 pairs; it gives ``rho = R /
+      freq`` updates per cycle. Its alias ``fs - R`` (a DAC faster than
+      ``fs / 2``) is tried too when ticks at ``R`` do not hold the power or
+      ``R`` is next to ``fs / 2``, and the grid that folds better is kept.
     - Each ``q <= max_period`` with ``q * rho`` within 0.05 of a whole number
       ``M`` is scored by folding the pairs' power on ``M`` ticks per ``q``
       cycles: ``|sum(w exp(2 pi i M u / q))| / sqrt(sum(w**2))``, whose
       square is about exponentially distributed with mean 1 when the power
       is not locked to the ticks. The best (the shortest period among
-      equals) must reach ``min_z`` (the DACs here give 70-260, smooth
-      waveforms under 3).
+      equals) must reach ``min_z``: on the middle 2**17 pairs the DACs
+      here give 19-142, smooth waveforms and noise at most 2.5.
     - The pairs the grid puts a tick edge between must hold on average
       ``min_edge_power`` times the power of the others (a DAC faster than
       ``fs / 2`` aliases into the band, and its grid fails this).
@@ -427,13 +428,12 @@ def find_fast_dac(
     # the peak between bins from a parabola through the log magnitudes (common practice)
     k_peak = k + (0.5 * (a - c) / curv if curv < 0 else 0.0)
     rate = _refine_line(w, fs, k_peak * fs / nfft, 4.0 * fs / n_fft)
-    # a DAC faster than fs / 2 shows at its alias fs - R (25 kHz sampled at 30 kHz: a line at 5 kHz; a
-    # tick still spans a sample or more, so its grid holds); the better fold of the two is the DAC's (15
-    # kHz with 40 ppm shows at 14999.4 Hz, whose 1499.88 ticks a 10 Hz cycle fit 25498 per 17 cycles,
-    # but 15000.6 Hz fits 1500 per cycle better)
-    # A DAC in the band (locked or not) explains the pairs' power by ticks at that rate in time, and then
-    # its alias is not looked at: that of a free-running 10 kHz DAC (13.37 Hz) folds as well as its line
-    # and came within 0.05 of 7479 ticks every 5 cycles
+    # A DAC faster than fs / 2 shows at its alias fs - R (25 kHz sampled at 30 kHz: a line at 5 kHz; a
+    # tick still spans a sample or more, so its grid holds). A DAC in the band, locked or not, explains
+    # the pairs' power by ticks at R in time, and then the alias is not tried: that of a free-running
+    # 10 kHz DAC (13.37 Hz) folds as well as its line, and came within 0.05 of 7479 ticks every 5
+    # cycles. Next to fs / 2 both are tried and the better fold kept (15 kHz with 40 ppm shows at
+    # 14999.4 Hz, whose 1499.88 ticks a 10 Hz cycle fit 25498 per 17 cycles; 15000.6 Hz fits 1500)
     rates = (rate, fs - rate)
     if abs(rate - 0.5 * fs) > 0.01 * fs and _edge_power(mid, np.arange(n_fft) * (rate / fs), 1) >= min_edge_power:
         rates = (rate,)
@@ -469,7 +469,7 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
 
     With ``ticks`` (``M``, ``q``) the ticks are known, and only their edges are placed and checked.
     """
-    # folds on the middle 2**17 pairs (4.4 s at 30 kHz; the DACs here score 35-130 there): a fold is an
+    # folds on the middle 2**17 pairs (4.4 s at 30 kHz; the DACs here score 19-142 there): a fold is an
     # exponential per pair, and a block's search tries up to a dozen
     first = max(0, (w.size - (1 << 17)) // 2)
     w_fold = w[first:first + (1 << 17)]
