@@ -423,11 +423,7 @@ def find_fast_dac(
     # 19-390 times above it. Spares the folds below on every recording without a DAC
     if spec[k] < min_prominence * np.median(spec[lo:hi]):
         return None
-    a, b, c = np.log(spec[k - 1:k + 2] + 1e-300)
-    curv = a - 2 * b + c
-    # the peak between bins from a parabola through the log magnitudes (common practice)
-    k_peak = k + (0.5 * (a - c) / curv if curv < 0 else 0.0)
-    rate = _refine_line(w, fs, k_peak * fs / nfft, 4.0 * fs / n_fft)
+    rate = _refine_line(w, fs, (k + _between_bins(spec, k)) * fs / nfft, 4.0 * fs / n_fft)
     # A DAC faster than fs / 2 shows at its alias fs - R (25 kHz sampled at 30 kHz: a line at 5 kHz; a
     # tick still spans a sample or more, so its grid holds). A DAC in the band, locked or not, explains
     # the pairs' power by ticks at R in time, and then the alias is not tried: that of a free-running
@@ -444,7 +440,7 @@ def find_fast_dac(
 
 
 def _refine_line(w: np.ndarray, fs: float, rate: float, span: float) -> float:
-    """The frequency of the line near ``rate`` (within ``span`` Hz) in all of ``w``, to ~1/8 of its resolution.
+    """The frequency of the line near ``rate`` (within ``span`` Hz) in the middle of ``w``, to ~1/8 of its resolution.
 
     The 2**16 pairs of the search place a line to ~0.05 Hz, too coarse to tell a period of 24 cycles
     at 5 Hz; and next to fs / 2 its mirror image pulls the peak (15 kHz sampled at 30 kHz read 1.2 Hz
@@ -457,9 +453,14 @@ def _refine_line(w: np.ndarray, fs: float, rate: float, span: float) -> float:
     n_pts = max(3, int((hi - lo) / step))
     spec = np.abs(signal.zoom_fft((w - w.mean()) * np.hanning(w.size), [lo, hi], n_pts, fs=fs))
     k = int(np.clip(np.argmax(spec), 1, n_pts - 2))
+    return float(lo + (k + _between_bins(spec, k)) * (hi - lo) / n_pts)
+
+
+def _between_bins(spec: np.ndarray, k: int) -> float:
+    """Offset (bins, within +-0.5) of the peak near bin ``k`` from a parabola through the log magnitudes (common practice)."""
     a, b, c = np.log(spec[k - 1:k + 2] + 1e-300)
     curv = a - 2 * b + c
-    return float(lo + (k + (0.5 * (a - c) / curv if curv < 0 else 0.0)) * (hi - lo) / n_pts)
+    return float(0.5 * (a - c) / curv) if curv < 0 else 0.0
 
 
 def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rate: float | None, *,
