@@ -13,7 +13,9 @@ cycle is not a whole number of updates (13 Hz or 6 Hz from a 1 kHz DAC:
 76.9 and 166.7 updates per cycle) the ticks fall on the same phases every
 ``q`` cycles (13 and 3), ``M`` updates per period of ``q`` cycles (1000 and
 500): the same grid, on the period instead of the cycle
-(:func:`find_dac_period`).
+(:func:`find_dac_period`). A DAC on a clock of its own ticks at any rate
+(:func:`find_dac_clock`); a few ppm from a whole number per cycle, that is a
+grid whose offset moves along a line (:func:`clock_as_grid`).
 
 Steps are found with a four-sample step detector, and ``M`` and ``c`` by
 folding the step positions on the stimulation phase. A fast DAC's steps
@@ -31,7 +33,7 @@ from scipy import signal
 
 from .clipping import find_clipped
 
-__all__ = ["DacClock", "DacGrid", "find_dac_clock", "find_dac_grid", "find_dac_period", "find_fast_dac", "step_rate"]
+__all__ = ["DacClock", "DacGrid", "clock_as_grid", "find_dac_clock", "find_dac_grid", "find_dac_period", "find_fast_dac", "step_rate"]
 
 
 @dataclass(frozen=True)
@@ -162,6 +164,45 @@ def find_dac_clock(x: np.ndarray, cycles: np.ndarray, fs: float, freq: float, *,
     if conc < min_concentration:
         return None
     return DacClock(float(rho), offset, conc, int(t.size))
+
+
+def clock_as_grid(clock: DacClock, *, max_period: int = 24, tolerance: float = 0.03) -> DacGrid | None:
+    """A free-running DAC clock as a period grid whose offset moves along a line, where that is close.
+
+    A DAC clocked apart from the waveform (a stimulator whose frequency is
+    set with finite resolution, or ticks on another clock) gives ``rho``
+    updates per cycle a few ppm from a whole number ``M / q``. Binned by the
+    phase each tick held (:class:`DacClock`), those phases cluster within
+    the template's window and most bins stay empty. The same ticks are,
+    exactly, ``M`` slots per ``q`` cycles whose offset moves by
+    ``M - q * rho`` ticks a period: a :class:`DacGrid` with a straight
+    ``offset_track``, on which each slot holds one tick of every period and
+    its held phase moves only a little from one period to the next.
+
+    Parameters
+    ----------
+    clock : DacClock
+    max_period : int
+        Longest period tried, in cycles (the smallest ``q`` that fits wins).
+    tolerance : float
+        Largest ``|q * rho - M|``, in ticks a period.
+
+    Returns
+    -------
+    DacGrid or None
+        None when no ``q <= max_period`` brings ``q * rho`` that close to a whole number.
+    """
+    rho = float(clock.ticks_per_cycle)
+    for q in range(1, max_period + 1):
+        m = int(round(q * rho))
+        drift = m - q * rho
+        if m >= 3 and abs(drift) <= tolerance:
+            # M p - c(p) = rho u - offset with p = u / q: c(p) = (M - q rho) p + offset, a line; its ends lie far
+            # beyond any recording (1e9 periods) so that interpolation never clamps
+            at = np.array([-1e9, 1e9])
+            return DacGrid(m, float(clock.offset), clock.concentration, clock.n_steps,
+                           (at, drift * at + clock.offset), q)
+    return None
 
 
 def find_dac_grid(
@@ -435,8 +476,32 @@ def find_fast_dac(
         rates = (rate,)
     found = [_grid_at_rate(w, cycles, fs, freq, r, max_period=max_period, min_z=min_z,
                            min_edge_power=min_edge_power, window_s=window_s) for r in rates]
-    found = [g for g in found if g is not None]
+    # a slower DAC the step search missed shows its rate's harmonics in the band, and a grid on them must
+    # find an edge at every tick (7.3 Hz from 1 kHz: the line at 4 kHz folded as 9863 ticks every 18
+    # cycles, which only nearly repeat, one in four of them with an edge; the ticks repeat every 73
+    # cycles, which the step search's clock models)
+    found = [g for g in found if g is not None and not _edges_skip_ticks(w, cycles, g, int(rate // 200.0))]
     return max(found, key=lambda g: g.concentration) if found else None
+
+
+def _edges_skip_ticks(w: np.ndarray, cycles: np.ndarray, grid: DacGrid, max_j: int) -> bool:
+    """Whether the power of the pairs ``w`` at ``grid``'s edges falls at one tick in ``j`` (``2 <= j <= max_j``).
+
+    Each pair with an edge between its samples gives its power beyond the median to that tick; a DAC
+    ``j`` times slower than the grid puts it on one residue of the tick number modulo ``j`` (the rest
+    near none), a DAC at the grid's rate on all of them alike.
+    """
+    k = np.floor(grid._position(cycles)).astype(np.int64)
+    at = np.flatnonzero(k[1:] != k[:-1])
+    excess = np.maximum(w[at] - np.median(w), 0.0)
+    total = excess.sum()
+    if total <= 0:
+        return False
+    for j in range(2, max(2, max_j) + 1):
+        share = np.bincount(np.mod(k[at + 1], j), excess, j).max() / total
+        if share >= min(0.9, 2.0 / j):
+            return True
+    return False
 
 
 def _refine_line(w: np.ndarray, fs: float, rate: float, span: float) -> float:

@@ -89,6 +89,11 @@ class ArtifactSpec:
     ``heart_phase_deg`` is the peak phase shift the pulse puts on the
     artifact (the electrode-tissue interface is partly capacitive), to first
     order: the waveform's phase derivative, held like it, times the shift.
+    ``dac_clock_ppm`` puts the DAC on a clock of its own, that many ppm from
+    the amplifier's (``None``: the stimulator's clock, ``drift_ppm``, which
+    also sets the waveform's frequency, so a cycle holds a fixed number of
+    updates); a waveform synthesised at a frequency the DAC's rate does not
+    divide (finite frequency resolution) is the same case.
     """
 
     freq_hz: float = 20.0
@@ -103,6 +108,7 @@ class ArtifactSpec:
     heart_phase_deg: float = 0.0
     drift_ppm: float = 40.0
     dac_rate_hz: float | None = None
+    dac_clock_ppm: float | None = None
     clip_uv: float | None = None
     lsb_uv: float | None = 0.195
 
@@ -286,7 +292,8 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
         if spec.dac_rate_hz:
             # the DAC samples the waveform on the stimulator clock and holds it; its ticks
             # fall between the amplifier's samples at an offset set by the two clocks
-            tick = 1.0 / (spec.dac_rate_hz * clock)
+            dac_clock = clock if spec.dac_clock_ppm is None else 1.0 + spec.dac_clock_ppm * 1e-6
+            tick = 1.0 / (spec.dac_rate_hz * dac_clock)
             t_held = (np.floor(t / tick + tick_offset) - tick_offset) * tick
         else:
             t_held = t

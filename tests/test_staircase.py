@@ -70,6 +70,40 @@ def test_a_free_running_dac_clock_is_found(freq):
     assert np.sqrt(np.mean((x - held)[inner] ** 2)) < 12.0  # the white noise (10 uV), no steps left
 
 
+@pytest.mark.parametrize("rho, ticks, period", [(49.998, 50, 1), (136.986, 137, 1), (99.01 / 2, 99, 2),
+                                                (74.794, None, None)])
+def test_a_clock_with_nearly_whole_updates_is_the_same_ticks_as_a_period_grid(rho, ticks, period):
+    """A clock of ``rho`` updates per cycle and the grid of ``M`` slots per ``q`` cycles whose offset moves
+    along a line give every sample the same tick and edge distance; no ``q <= 3`` fits 74.794."""
+    from artifactclean.staircase import DacClock, clock_as_grid
+
+    clock = DacClock(rho, 0.37, 0.99, 1000)
+    grid = clock_as_grid(clock, max_period=3)
+    if ticks is None:
+        assert grid is None
+        return
+    assert (grid.ticks_per_cycle, grid.cycles_per_period) == (ticks, period)
+    u = np.linspace(-3.0, 1200.0, 2_000_003)  # a minute at 20 Hz, from before the offset's reference
+    d = clock.edge_distance(u)
+    clear = (d > 1e-8) & (d < 1 - 1e-8)  # rounding decides the few samples on an edge to 1e-10
+    assert clear.mean() > 0.9999
+    np.testing.assert_array_equal(grid.tick_index(u)[clear], clock.tick_index(u)[clear])
+    np.testing.assert_allclose(grid.edge_distance(u)[clear], d[clear], atol=1e-8)
+
+
+def test_a_slower_dacs_harmonic_is_not_taken_for_a_fast_dac():
+    """7.3 Hz from a 1 kHz DAC repeats every 73 cycles; its fourth harmonic (a line at 4 kHz) folded as
+    9863 ticks every 18 cycles, with an edge at one tick in four. The search must leave it alone."""
+    from artifactclean.synthetic import ArtifactSpec, NeuralSpec, simulate_recording
+
+    art = ArtifactSpec(freq_hz=7.3, amplitude_uv=4000.0, heart_harmonics=(), dac_rate_hz=1000.0,
+                       channel_gains=(1.0, -0.7, 0.45, -1.2))
+    rec = simulate_recording(16.0, artifact=art, neural=NeuralSpec(units=[]), seed=1)
+    a, b = int(6 * rec.fs), int(10 * rec.fs)  # the plateau's middle, as a block plan reads it
+    cycles = np.unwrap(rec.stim_phase[a:b]) / (2 * np.pi)
+    assert find_fast_dac(rec.data[3, a:b], cycles, rec.fs, rec.blocks[0]["freq_hz"]) is None
+
+
 @pytest.mark.parametrize("freq, dac, ticks, crowded", [(40.0, 5000.0, 125, True), (20.0, 5000.0, 250, False),
                                                       (40.0, 1000.0, 25, False)])
 def test_ticks_a_few_samples_apart_are_found(freq, dac, ticks, crowded):

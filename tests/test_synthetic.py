@@ -181,3 +181,20 @@ def test_raised_cosine_ramps_follow_a_hann_window():
         assert rec.blocks[0]["ramp_shape"] == shape
     with pytest.raises(ValueError, match="ramp shape"):
         simulate_recording(2.0, fs=fs, n_channels=1, artifact=spec, blocks=[BlockSpec(0.5, 1.0, ramp_shape="square")])
+
+
+@pytest.mark.parametrize("dac_clock_ppm, spacing", [(None, 30.0 / (1 + 40e-6)), (0.0, 30.0), (-25.0, 30.0 / (1 - 25e-6))])
+def test_the_dac_ticks_on_the_clock_it_is_given(dac_clock_ppm, spacing):
+    """A 1 kHz DAC at 30 kHz steps every 30 samples of its own clock: the stimulator's (40 ppm fast, the
+    waveform's too) by default, or one ``dac_clock_ppm`` from the amplifier's."""
+    art = ArtifactSpec(freq_hz=20.0, heart_depth=0.0, resp_depth=0.0, drift_ppm=40.0, dac_rate_hz=1000.0,
+                       dac_clock_ppm=dac_clock_ppm, lsb_uv=None)
+    rec = simulate_recording(40.0, n_channels=1, artifact=art, neural=NeuralSpec(units=[]),
+                             blocks=[BlockSpec(1.0, 38.0, ramp_s=1.0)], seed=4)
+    steps = np.flatnonzero(np.diff(rec.artifact[0]) != 0)
+    steps = steps[(steps > 2.5 * rec.fs) & (steps < 37.5 * rec.fs)]  # the plateau
+    assert np.all(np.isin(np.diff(steps), (29, 30, 31)))
+    # a line through the step samples against tick numbers (35000 ticks of whole samples)
+    assert np.polyfit(np.arange(steps.size), steps, 1)[0] == pytest.approx(spacing, abs=1e-5)
+    if dac_clock_ppm == 0.0:
+        assert np.all(np.diff(steps) == 30)  # on the amplifier's clock the edges never cross a sample

@@ -397,6 +397,31 @@ def test_a_dac_whose_ticks_repeat_every_few_cycles(freq, ticks, cycles):
     assert max(s["lfp_band_ratio"]) <= 2.0
 
 
+@pytest.mark.parametrize("freq, dac_clock_ppm, seed, band", [(20.0, 0.0, 3, 2.0), (40.0, -20.0, 1, 10.0),
+                                                              (7.3, None, 1, 2.0)])
+def test_nearly_whole_updates_per_cycle_are_a_grid_whose_offset_moves(freq, dac_clock_ppm, seed, band):
+    """A DAC on a clock of its own, the waveform 40 ppm off (a stimulator that sets its frequency with
+    finite resolution): 49.998 updates per 20 Hz cycle. Binned by the phase each tick held, those phases
+    form one cluster per tick in the template's window: spike band 0.2-1.8x the noise and 50-500x the
+    neural power within +-3 Hz before (an independent generator's traces). 7.3 Hz from a 1 kHz DAC on the
+    stimulator's clock (136.99 a cycle, repeating every 73 cycles): the fast-DAC search took the DAC's
+    fourth harmonic as 9863 ticks every 18 cycles, 4x the noise and recall 0.38. The same ticks are 50
+    (137) slots a cycle whose offset moves along a line (``staircase.clock_as_grid``). At 40 Hz with
+    the DAC 60 ppm from the waveform (24.9985 a cycle) the spike band is clean, but within +-3 Hz of the
+    harmonics 7-8x the neural power is left (21-101x before): above the goal, and open."""
+    art = ArtifactSpec(freq_hz=freq, amplitude_uv=4000.0, heart_depth=0.02, heart_harmonics=(), resp_depth=0.01,
+                       drift_ppm=40.0, dac_rate_hz=1000.0, dac_clock_ppm=dac_clock_ppm,
+                       channel_gains=(1.0, -0.7, 0.45, -1.2))
+    rec = simulate_recording(16.0, artifact=art, neural=NeuralSpec(units=units4(kappa0=1.0)), seed=seed)
+    est = TemplateSubtraction().fit(rec.data, fs=rec.fs)
+    info = est.report_["blocks"][0]
+    assert not info["dac_free_running"] and info["dac_ticks_per_cycle"] == round(1000 / freq)
+    s = score_cleaning(rec, est.transform(rec.data), lost=est.lost_)
+    assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
+    assert max(s["lfp_band_ratio"]) <= band, s["lfp_band_ratio"]
+    assert s["recall_ratio"] >= 0.99 and s["sixth_recall_min_over_max"] >= 0.95
+
+
 def test_a_free_running_dac_is_found_when_the_strongest_channels_are_clipped():
     """The DAC search pools the steps of the four strongest channels, between their rails: the
     unclipped reference (0.7 of the strongest) alone showed too few steps above the noise, and a

@@ -24,7 +24,7 @@ from ..stimulation import ramp_level
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
-from ..staircase import DacGrid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
+from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import grouped_eval, highpass_residual, widen_flags
 from .base import ArtifactEstimator
 
@@ -422,6 +422,11 @@ class CycleEstimator(ArtifactEstimator):
             grid = find_dac_period(strong, cycles, fs, f)
             if grid is None:
                 grid = find_dac_clock(strong, cycles, fs, f)  # ticks at any phase: read where they held
+                # nearly whole updates per cycle or two or three (a DAC on a clock of its own, ppm from the
+                # waveform's): the held phases form a cluster or two in each tick and most of the clock's
+                # bins stay empty; the same ticks are a period grid whose offset moves along a line.
+                # Longer periods spread their held phases over the tick, and the clock bins them well
+                grid = (grid and clock_as_grid(grid, max_period=3)) or grid
             if grid is not None:
                 unlocked = 0.0
         return ref, grid, unlocked, response, harmonics(grid)
