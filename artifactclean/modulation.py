@@ -401,9 +401,10 @@ def design_gain_response(gain: np.ndarray, rate: float, *, max_hz: float, floor_
 #: the ratio of what a side shows to what a pair would put there (:func:`sideband_support`) from which
 #: a gain line passes whole, and below which it does not pass (this project's choice: a pair scatters
 #: to a ratio of about 0.6 at worst over a few Welch segments; one line clear of the other side's
-#: floor gives a few hundredths)
-_PAIR_FULL = 1.0 / 3.0
-_PAIR_NONE = 0.1
+#: floor gives a few hundredths, and a line ten times its floor 0.1-0.2: with 0.1 and 1/3 until
+#: session 14, a 15 Hz rhythm beside 10 Hz stimulation was half followed, its image at 5 Hz)
+_PAIR_FULL = 0.5
+_PAIR_NONE = 0.25
 
 
 #: distance (Hz) from another harmonic's carrier (demodulated to a multiple of f) within which a
@@ -421,7 +422,7 @@ def _shown(p_other: np.ndarray, f_other: np.ndarray, line: np.ndarray) -> np.nda
 
 
 def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float, f: float, freqs: np.ndarray, *,
-                     above_hz: float, floor_hz: float = 2.0) -> np.ndarray:
+                     above_hz: float, floor_hz: float = 5.0) -> np.ndarray:
     """How surely a change of the artifact at each of ``freqs`` shows on both sides of the fundamental.
 
     A change of the artifact's amplitude at ``d`` Hz puts a pair of sidebands
@@ -440,8 +441,9 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
     (``scipy.signal.welch``, 4 s Blackman-Harris segments, whose sidelobes
     keep the carrier out beyond 1 Hz) is read at ``+d`` and ``-d`` (the
     larger of each line's bin and its neighbours: lines wander), each side
-    against its own floor ``F`` (its running median over ``floor_hz``:
-    below the fundamental the LFP's floor is far higher). What one side
+    against its own floor ``F`` (its running median over ``floor_hz``, more
+    than twice a line's main lobe: below the fundamental the LFP's floor is
+    far higher). What one side
     holds beyond its floor and that floor's scatter (:data:`_SCATTER`), ``E``,
     a pair would put on the other side too: there it shows ``F_o + E``, and
     one line leaves ``F_o``. The smaller of the two sides' ratios of what
@@ -484,6 +486,9 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
     fz, p = signal.welch(z, fs=fsd, window="blackmanharris", nperseg=nper, return_onesided=False, axis=-1)
     order = np.argsort(fz)
     fz, p = fz[order], p[:, order]
+    # a median over more than twice a line's main lobe (+-1 Hz in 4 s Blackman-Harris segments): over 2 Hz
+    # the lobe filled it and doubled the line's floor (a 15 Hz rhythm beside 10 Hz stimulation stood 2.2
+    # times above its floor); a broad band of the LFP (3 Hz) still fills it, and stays floor
     width = max(3, int(round(floor_hz / (fz[1] - fz[0]))) | 1)
     floor = ndimage.median_filter(p, size=(1, width), mode="nearest")
     peak = ndimage.maximum_filter1d(p, 3, axis=-1)
