@@ -414,6 +414,11 @@ _CARRIER_GUARD = 1.25
 #: relative scatter of a Welch estimate over a few segments (this project's choice, about 1.3 SD of an
 #: average of 7 periodograms): an excess below this fraction of its floor may be the floor's own
 _SCATTER = 0.5
+#: a line of the raw gain standing this far beyond its floor and its scatter (in floors) must show beside the
+#: fundamental, at least :data:`_GAIN_SHOWN` times as far, on one side (this project's choice: a neural rhythm's
+#: slope read as a gain line shows nothing there; with 0.05 real heartbeat lines were cut in one of the tests)
+_GAIN_LINE = 1.0
+_GAIN_SHOWN = 0.02
 
 
 def _shown(p_other: np.ndarray, f_other: np.ndarray, line: np.ndarray) -> np.ndarray:
@@ -422,7 +427,8 @@ def _shown(p_other: np.ndarray, f_other: np.ndarray, line: np.ndarray) -> np.nda
 
 
 def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float, f: float, freqs: np.ndarray, *,
-                     above_hz: float, floor_hz: float = 5.0) -> np.ndarray:
+                     above_hz: float, floor_hz: float = 5.0, gain: np.ndarray | None = None,
+                     gain_rate: float | None = None) -> np.ndarray:
     """How surely a change of the artifact at each of ``freqs`` shows on both sides of the fundamental.
 
     A change of the artifact's amplitude at ``d`` Hz puts a pair of sidebands
@@ -454,7 +460,15 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
     passes whole from a ratio of :data:`_PAIR_FULL` and not at all below
     :data:`_PAIR_NONE` (the 6.75 Hz rhythm beside 13 Hz: about 0.05). A
     side near another harmonic (``d`` within :data:`_CARRIER_GUARD` of a
-    multiple of ``f``) is not judged. The line's own strength is judged by
+    multiple of ``f``) is not judged. With ``gain`` (the raw gain the
+    response is designed from, at ``gain_rate`` per second) a line that
+    stands out in it (:data:`_GAIN_LINE`) but on neither side of the
+    fundamental (under :data:`_GAIN_SHOWN` of its excess) does not pass
+    either: that is neural signal the segments took for a change of gain (a
+    6 Hz rhythm's slope over a third of a 10 Hz cycle), which the pair test
+    passed as a pair of nothing. Give it only for unclipped stretches
+    without a DAC: a DAC's period and a rail's edges put lines of their own
+    in the raw gain. The line's own strength is judged by
     :func:`design_gain_response`.
 
     Parameters
@@ -496,6 +510,15 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
     # that carrier's leakage and its own sidebands, and says nothing about this pair
     carriers = f * np.concatenate((np.arange(1, int(fsd / 2 / f) + 1), -np.arange(1, int(fsd / 2 / f) + 1)))
     clear = lambda hz: np.all(np.abs(hz - carriers) > _CARRIER_GUARD)  # noqa: E731
+    gain_line = None
+    if gain is not None:
+        gain = np.atleast_2d(gain)
+        nper_g = min(gain.shape[1], int(4 * gain_rate)) // 2 * 2
+        if nper_g >= 8:
+            fg, pg = signal.welch(gain, fs=gain_rate, nperseg=nper_g, detrend="linear", axis=-1)
+            gfloor = ndimage.median_filter(pg, size=(1, max(3, int(round(2.0 / fg[1])) | 1)), mode="nearest")
+            excess_g = ndimage.maximum_filter1d(pg, 3, axis=-1) / np.maximum(gfloor, 1e-300) - (1 + _SCATTER)
+            gain_line = lambda d: excess_g[:, int(np.argmin(np.abs(fg - d)))]  # noqa: E731
     for k in np.flatnonzero(judged):
         if not (clear(freqs[k]) and clear(-freqs[k])):
             continue
@@ -507,6 +530,15 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
         ratio = np.minimum(_shown(p_dn, f_dn, p_up - (1 + _SCATTER) * f_up),
                            _shown(p_up, f_up, p_dn - (1 + _SCATTER) * f_dn))
         out[:, k] = np.clip((ratio - _PAIR_NONE) / (_PAIR_FULL - _PAIR_NONE), 0.0, 1.0)
+        if gain_line is not None:
+            # a change of the artifact stands out beside the fundamental about as far as it does in the gain
+            # (both are the same lines over the same neural floor); a line of the gain that neither side
+            # shows is neural signal the segments took for a change (a 6 Hz rhythm's slope over a third of
+            # a 10 Hz cycle: a 6 Hz gain line 3.7 times its floor, nothing at 4 or 16 Hz)
+            g_ex = gain_line(freqs[k])
+            side = (np.maximum(p_up - (1 + _SCATTER) * f_up, 0.0) + np.maximum(p_dn - (1 + _SCATTER) * f_dn, 0.0)) \
+                / np.maximum(f_up + f_dn, 1e-300)
+            out[:, k] *= np.where((g_ex >= _GAIN_LINE) & (side <= _GAIN_SHOWN * g_ex), 0.0, 1.0)
     return out
 
 

@@ -217,3 +217,26 @@ def test_sideband_support_tells_a_modulation_from_a_rhythm(rng):
     assert at(4.0) == 1.0
     assert at(6.25) == 0.0
     assert at(8.0) > 0.9
+
+
+def test_a_gain_line_that_neither_side_shows_is_not_followed(rng):
+    """A neural rhythm's slope over part of a cycle reads as a line of the raw gain (a 6 Hz rhythm under
+    a third of a 10 Hz cycle) with nothing at f +- 6 Hz; the pair test alone passed it, as a pair of
+    nothing, and the gain put a pair at 4 and 16 Hz. A real modulation with the same gain line shows
+    beside the fundamental and passes."""
+    f, fsd, seconds, rate = 10.0, 320.0, 20.0, 30.0
+    t = np.arange(int(fsd * seconds)) / fsd
+    u = f * t
+    tg = np.arange(int(rate * seconds)) / rate
+    gain = 1.0 + 0.002 * np.cos(2 * np.pi * 6.0 * tg) + 2e-4 * rng.standard_normal(tg.size)
+    freqs = np.arange(0, 10.01, 0.25)
+    for modulated in (False, True):
+        m = 0.002 * np.cos(2 * np.pi * 6.0 * t) if modulated else 0.0
+        x = 4000 * (1 + m) * np.cos(2 * np.pi * u) + 2.0 * rng.standard_normal(t.size)
+        s = sideband_support(x[None], np.ones((1, t.size)), u, fsd, f, freqs, above_hz=FOLLOW_HZ,
+                             gain=gain[None], gain_rate=rate)[0]
+        plain = sideband_support(x[None], np.ones((1, t.size)), u, fsd, f, freqs, above_hz=FOLLOW_HZ)[0]
+        at = lambda v, hz: v[np.argmin(np.abs(freqs - hz))]  # noqa: E731
+        assert at(plain, 6.0) == 1.0  # a pair of nothing, or a pair: the pair test passes both
+        assert at(s, 6.0) == (1.0 if modulated else 0.0)
+        assert np.all(s[freqs <= FOLLOW_HZ] == 1.0)

@@ -365,8 +365,11 @@ class CycleEstimator(ArtifactEstimator):
         if b - a < 16:
             return ref, None, 0.0, None, None
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        response = None
-        if self.track_amplitude:
+        def make_response(plain: bool):
+            """The gain response; with ``plain`` false its lines must stand beside the fundamental about as
+            far as in the raw gain (a DAC's period or a rail's edges put lines of their own in the raw gain)."""
+            if not self.track_amplitude:
+                return None
             per_cycle = segments_per_cycle(self.tracking_hz, f)
             usable = (~find_clipped(x)).astype(np.float64)
             raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
@@ -375,7 +378,9 @@ class CycleEstimator(ArtifactEstimator):
             xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
             # a line of the gain passes only as far as both its sidebands show: a neural rhythm near the
             # fundamental is one line, and following it would put its mirror image beside the fundamental
-            both = sideband_support(xd, wd, ud, fsd, f, response.freqs, above_hz=follow_below(f))
+            check = None if plain or not usable.all() else raw
+            both = sideband_support(xd, wd, ud, fsd, f, response.freqs, above_hz=follow_below(f), gain=check,
+                                    gain_rate=rate)
             response.response = np.minimum(response.response, both)
             if getattr(self, "track_phase", False) and (b - a) * f / fs >= 40:  # a shift needs seconds of cycles
                 # the phase shift's own lines pass, nothing always does: without a phase modulation
@@ -388,6 +393,7 @@ class CycleEstimator(ArtifactEstimator):
                 # kept only where following it takes artifact off beside the fundamental
                 response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
                                             first=int(np.floor(cycles[0] * per_cycle)))] = 0.0
+            return response
 
         def harmonics(grid=None):
             # the waveform's harmonics on an unclipped reference (clipping makes its own); with a DAC
@@ -398,7 +404,7 @@ class CycleEstimator(ArtifactEstimator):
             return waveform_harmonics(x[ref], cycles, fs, f, below=ticks / 2 if ticks else None)
 
         if self.dac != "auto":
-            return ref, None, 0.0, response, harmonics()
+            return ref, None, 0.0, make_response(plain=True), harmonics()
         grid = find_dac_grid(x[ref], cycles, fs, f)
         # a few samples a tick: no single step stands out, their rate and edges do when pooled; and
         # where the steps give the ticks, the edges from every pair's difference are the sharper
@@ -429,7 +435,7 @@ class CycleEstimator(ArtifactEstimator):
                 grid = (grid and clock_as_grid(grid, max_period=3)) or grid
             if grid is not None:
                 unlocked = 0.0
-        return ref, grid, unlocked, response, harmonics(grid)
+        return ref, grid, unlocked, make_response(plain=grid is not None or unlocked > 0), harmonics(grid)
 
     def _validate_params(self) -> None:
         """The parameters every cycle estimator shares (subclasses add their own)."""
