@@ -531,10 +531,10 @@ def sideband_support(xd: np.ndarray, wd: np.ndarray, ud: np.ndarray, fsd: float,
                            _shown(p_up, f_up, p_dn - (1 + _SCATTER) * f_dn))
         out[:, k] = np.clip((ratio - _PAIR_NONE) / (_PAIR_FULL - _PAIR_NONE), 0.0, 1.0)
         if gain_line is not None:
-            # a change of the artifact stands out beside the fundamental about as far as it does in the gain
-            # (both are the same lines over the same neural floor); a line of the gain that neither side
-            # shows is neural signal the segments took for a change (a 6 Hz rhythm's slope over a third of
-            # a 10 Hz cycle: a 6 Hz gain line 3.7 times its floor, nothing at 4 or 16 Hz)
+            # a change of the artifact shows beside the fundamental too, if less clearly than in the gain; a
+            # line of the gain that neither side shows is neural signal the segments took for a change (a
+            # 6 Hz rhythm's slope over a third of a 10 Hz cycle: a 6 Hz gain line 3.7 times its floor,
+            # nothing at 4 or 16 Hz)
             g_ex = gain_line(freqs[k])
             side = (np.maximum(p_up - (1 + _SCATTER) * f_up, 0.0) + np.maximum(p_dn - (1 + _SCATTER) * f_dn, 0.0)) \
                 / np.maximum(f_up + f_dn, 1e-300)

@@ -365,9 +365,11 @@ class CycleEstimator(ArtifactEstimator):
         if b - a < 16:
             return ref, None, 0.0, None, None
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+
         def make_response(plain: bool):
-            """The gain response; with ``plain`` false its lines must stand beside the fundamental about as
-            far as in the raw gain (a DAC's period or a rail's edges put lines of their own in the raw gain)."""
+            """The gain response; unless ``plain``, a line of the raw gain must also show beside the
+            fundamental (not with a DAC or on clipped data: a DAC's period or a rail's edges put lines of
+            their own in the raw gain)."""
             if not self.track_amplitude:
                 return None
             per_cycle = segments_per_cycle(self.tracking_hz, f)
