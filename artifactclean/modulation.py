@@ -69,17 +69,22 @@ class GainResponse:
     phase : ndarray, shape (n_channels, n_freqs), optional
         The response for the artifact's phase shift (:func:`segment_phase`),
         designed from its own spectrum with nothing always passed.
+    pulse : PulseModel, optional
+        The heartbeat's harmonics (:mod:`artifactclean.pulse`), modelled
+        instead of passed: the response was designed without them.
     """
 
     freqs: np.ndarray
     response: np.ndarray
     rate: float
     phase: np.ndarray | None = None
+    pulse: object | None = None
 
     def rows(self, rows) -> "GainResponse":
         """The responses of channels ``rows`` only."""
         return GainResponse(self.freqs, self.response[rows], self.rate,
-                            None if self.phase is None else self.phase[rows])
+                            None if self.phase is None else self.phase[rows],
+                            None if self.pulse is None else self.pulse.rows(rows))
 
     def phase_taps(self, ch: int, rate: float | None = None) -> np.ndarray | None:
         """Zero-phase FIR taps for channel ``ch``'s phase shift; None where nothing passes.
@@ -585,7 +590,7 @@ def lowpass_taps(cutoff_hz: float, rate: float) -> np.ndarray:
 
 
 def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-                     max_hz: float | None = None, scale: float | None = None) -> np.ndarray:
+                     max_hz: float | None = None, scale: float | None = None, pulse=None) -> np.ndarray:
     """Filter sequences (rows of ``seq``, sampled at ``rate``) by ``taps``, zero phase, edges held.
 
     With ``envelope`` (the block's ramps per sample of the sequences, 1 on
@@ -596,6 +601,10 @@ def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: n
     linear one of the block model is followed there (the response's lines
     still pass: the heartbeat does not stop during a ramp); where the envelope
     is below 2 % (margins, ramp feet) only the envelope part is kept.
+
+    ``pulse``, the heartbeat's harmonics in ``seq`` as fitted and as they
+    must be carried (:meth:`artifactclean.pulse.PulseModel.parts`), takes
+    the first out before the filter and puts the second back.
     ``max_hz`` is best set from the ramps' length (:func:`ramp_cutoff`): a
     higher one lets the neural floor through the gain beside every harmonic
     for the whole ramp.
@@ -609,6 +618,12 @@ def filter_sequences(seq: np.ndarray, taps: np.ndarray, rate: float, envelope: n
     it does not).
     """
     seq = np.atleast_2d(seq)
+    if pulse is not None:
+        # the harmonics come out before the filter and go back whole; the level is the sequence's own
+        fitted, whole = (np.atleast_2d(a) for a in pulse)
+        if envelope is not None and scale is None:
+            scale = plateau_level(seq, envelope)
+        return filter_sequences(seq - fitted, taps, rate, envelope, max_hz, scale) + whole
     if envelope is None:
         return ndimage.convolve1d(seq, taps, axis=-1, mode="nearest")
     plateau = envelope > _PLATEAU
@@ -644,7 +659,9 @@ def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
                 scale: float | None = None) -> np.ndarray:
     """Filter each channel's gain sequence by its ``response`` (see :func:`filter_sequences`)."""
     out = np.empty_like(gain)
+    parts = None if response.pulse is None else response.pulse.parts(gain, rate, envelope, scale)
     for ch in range(gain.shape[0]):
-        taps = response.taps(min(ch, response.response.shape[0] - 1), rate)
-        out[ch] = filter_sequences(gain[ch:ch + 1], taps, rate, envelope, max_hz, scale)[0]
+        row = min(ch, response.response.shape[0] - 1)
+        out[ch] = filter_sequences(gain[ch:ch + 1], response.taps(row, rate), rate, envelope, max_hz, scale,
+                                   pulse=None if parts is None else (parts[0][ch], parts[1][ch]))[0]
     return out

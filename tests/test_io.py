@@ -219,10 +219,11 @@ def test_memory_bounded_by_piece_not_length(tmp_path):
 
 
 def test_long_block_cleaned_in_pieces_equals_array(tmp_path):
-    # a 66 s block is longer than one piece: the file path cleans it in pieces, the array path
-    # at once; block-level decisions and enough context make them agree to the int16 step
-    rec = simulate_recording(70.0, artifact=ArtifactSpec(freq_hz=10.0, dac_rate_hz=1000.0, clip_uv=3800.0),
-                             neural=NeuralSpec(units=units4()), blocks=[BlockSpec(2.0, 66.0, ramp_s=1.0)], seed=45)
+    # an 84 s block is longer than one piece: the file path cleans it in pieces, the array path
+    # at once; block-level decisions and enough context make them agree to the int16 step (with a
+    # pulsatile heartbeat's harmonics modelled, a 10 Hz piece holds 22 s of context on each side)
+    rec = simulate_recording(88.0, artifact=ArtifactSpec(freq_hz=10.0, dac_rate_hz=1000.0, clip_uv=3800.0),
+                             neural=NeuralSpec(units=units4()), blocks=[BlockSpec(2.0, 84.0, ramp_s=1.0)], seed=45)
     root = write_openephys_binary(tmp_path / "long", rec.data, rec.fs)
     r = open_recording(root)
     from artifactclean.io import clean_recording

@@ -161,13 +161,15 @@ def _pieces_and_whole(rec, path, method=None, **kwargs):
 def test_file_pieces_equal_the_whole_array(method, tmp_path):
     """Pieces with each estimator's declared context give the whole-array result: written as
     float32 NIX, within 1e-6 of the data's range (float32 itself holds 6e-8). Regression and PCA
-    make their choices once per block, here (a 47 s block) on the middle of its plateau: while they
+    make their choices once per block, here (a 54 s block) on the middle of its plateau: while they
     chose per piece, pieces differed by 3.7e-3 (27 uV) and 4.1e-2 (294 uV) of the range."""
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
-    rec = simulate_recording(50.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, heart_depth=0.02,
+    # a 54 s block: longer than one piece with the template's context (13 s at 20 Hz with the
+    # heartbeat's harmonics modelled; a piece holds four contexts)
+    rec = simulate_recording(56.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, heart_depth=0.02,
                                                          resp_depth=0.01, drift_ppm=40.0, clip_uv=3600.0),
-                             blocks=[BlockSpec(1.0, 48.0, ramp_s=1.0)], seed=6)
+                             blocks=[BlockSpec(1.0, 54.0, ramp_s=1.0)], seed=6)
     prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", method=method, max_range_s=9.0, workers=2)
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2  # cleaned in pieces of time
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
@@ -178,12 +180,13 @@ def test_pieces_that_start_inside_a_long_ramp_equal_the_whole_array(tmp_path):
     must still see the block's ramp, not the part it holds (1.4 uV next to the ramp before)."""
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
-    rec = simulate_recording(44.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0),
-                             blocks=[BlockSpec(1.0, 42.0, ramp_s=10.0)], seed=6)
+    rec = simulate_recording(60.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0),
+                             blocks=[BlockSpec(1.0, 58.0, ramp_s=10.0)], seed=6)
     prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=6.0)
     starts = sorted({r["start_s"] for r in prov["estimator_report"]})
-    # a piece boundary within a context (~6 s) of a ramp: one piece reads part of that ramp only
-    assert any(1.0 < a < 17.0 or 27.0 < a < 43.0 for a in starts[1:]), starts
+    # a piece boundary within a context (~15 s with the heartbeat's harmonics modelled) of a ramp
+    # (1-11 s and 49-59 s): one piece reads part of that ramp only
+    assert any(1.0 < a < 26.0 or 34.0 < a < 59.0 for a in starts[1:]), starts
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
 
 
@@ -222,9 +225,9 @@ def test_pieces_with_a_phase_shifting_heartbeat_equal_the_whole_array(tmp_path):
     read the context their filters need and give the whole array's result."""
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
-    rec = simulate_recording(50.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01,
+    rec = simulate_recording(56.0, artifact=ArtifactSpec(freq_hz=20.0, heart_depth=0.02, resp_depth=0.01,
                                                          drift_ppm=40.0, heart_phase_deg=2.0),
-                             blocks=[BlockSpec(1.0, 48.0, ramp_s=1.0)], seed=6, n_channels=2)
+                             blocks=[BlockSpec(1.0, 54.0, ramp_s=1.0)], seed=6, n_channels=2)
     prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=9.0)
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2
     assert all(r["blocks"][0]["phase_shift_followed"] for r in prov["estimator_report"])

@@ -21,6 +21,7 @@ from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..stimulation import ramp_level
+from ..pulse import fit_pulse
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
@@ -337,8 +338,10 @@ class CycleEstimator(ArtifactEstimator):
         plans = getattr(self, "_plans", None)
         if plans is None:
             return est, fit
-        for ref, grid, *_ in plans.values():
-            if self._reads_reference and grid is not None and ref not in fit:
+        for ref, grid, _, response, *_ in plans.values():
+            # the reference's data: for a DAC grid, and for the heartbeat's phase (pulse.PulseModel)
+            reads = (self._reads_reference and grid is not None) or getattr(response, "pulse", None) is not None
+            if reads and ref not in fit:
                 fit.append(int(ref))
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
         return est, fit
@@ -375,7 +378,13 @@ class CycleEstimator(ArtifactEstimator):
             per_cycle = segments_per_cycle(self.tracking_hz, f)
             usable = (~find_clipped(x)).astype(np.float64)
             raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
+            # a pulsatile heartbeat's harmonics are modelled from its fundamental's phase; the response is
+            # designed without them, so it passes neither them nor the floor under them
+            pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref) if getattr(self, "model_pulse", False) else None
+            if pulse is not None:
+                raw = raw - pulse.parts(raw, rate)[0]
             response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
+            response.pulse = pulse
             # means over ~1/32 cycle (modulations and the shift live in the first harmonics)
             xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
             # a line of the gain passes only as far as both its sidebands show: a neural rhythm near the
