@@ -87,60 +87,73 @@ class PulseModel:
     coefs: np.ndarray
     ref: int
 
-    def rows(self, rows) -> "PulseModel":
-        """The model of channels ``rows`` only (the reference must be one of them)."""
+    def rows(self, rows) -> "PulseModel | None":
+        """The model of channels ``rows`` only; None if the reference is not one of them."""
         rows = list(rows)
+        if self.ref not in rows:
+            return None
         return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref))
 
     def harmonics(self) -> list[int]:
         """The harmonic numbers modelled on any channel."""
         return [int(h) for h in np.flatnonzero(np.any(self.coefs != 0, axis=0)) + 2]
 
-    def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-              scale=None, at: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """The pulse's harmonics in each gain sequence as fitted, and as the gain must carry them.
+    def relative(self, ref_gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
+                 level: float | None = None, n_rows: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Each channel's pulse harmonics relative to its plateau level, as fitted and as carried.
 
-        ``gain`` holds one sequence per row of the model (at ``rate`` a
-        second); with ``envelope`` (see
-        :func:`artifactclean.modulation.filter_sequences`) the reference's
-        deviation from its plateau level (``scale``, or its plateau median)
-        times the envelope is read, as the gain filter reads it. The second
-        array is the first with each harmonic divided by ``sinc(f / rate)^3``
-        (at most :data:`_MAX_BOOST`): what a mean over each segment and the
-        linear interpolation between segment centres take off, as the gain
-        filter restores for what it passes. With ``at`` (one offset per
-        sample of each row, in samples) the harmonics are read there instead
-        (the heartbeat's phase and amplitude are smooth: linear interpolation).
+        ``ref_gain`` is the reference channel's gain sequence (at ``rate``
+        a second), ``level`` its plateau level (its plateau median by
+        default); with ``envelope`` (see
+        :func:`artifactclean.modulation.filter_sequences`) its deviation from
+        ``level`` times the envelope is read, as the gain filter reads it.
+        Harmonics at or above 0.45 ``rate`` are left out (rows of one cycle at
+        10 Hz hold 4 Hz, not 6). The second array is the first with each
+        harmonic divided by ``sinc(f / rate)^3`` (at most :data:`_MAX_BOOST`):
+        what a mean over each segment and the linear interpolation between
+        segment centres take off, as the gain filter restores for what it
+        passes. ``n_rows`` channels are returned (the model's by default).
         """
-        gain = np.atleast_2d(gain)
-        ref = gain[min(self.ref, gain.shape[0] - 1)]
+        ref_gain = np.asarray(ref_gain, dtype=np.float64)
+        if level is None:
+            level = _plateau_median(ref_gain, envelope) if envelope is not None else float(np.mean(ref_gain))
+        level = level if level != 0 else 1.0
         if envelope is None:
-            dev = ref - np.mean(ref)
+            dev = (ref_gain - level) / level
         else:
-            if scale is None:
-                level = float(_plateau_median(ref, envelope))
-            else:
-                sc = np.atleast_1d(np.asarray(scale, dtype=np.float64))
-                level = float(sc[min(self.ref, sc.size - 1)])
-            dev = np.where(envelope < _FOOT, 0.0, ref - level * envelope)
+            dev = np.where(envelope < _FOOT, 0.0, ref_gain / level - envelope)
         hs = np.arange(2, self.coefs.shape[1] + 2)
+        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
+        coefs = self.coefs[np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)] * (hs * self.heart_hz < 0.45 * rate)
         amp, ph = _amplitude_phase(dev, rate, self.heart_hz)
-        coefs = self.coefs[np.minimum(np.arange(gain.shape[0]), self.coefs.shape[0] - 1)]
-        if at is None:
-            reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
-            fitted = np.real(np.einsum("ch,hn->chn", coefs, reg))
-        else:
-            idx = np.arange(dev.size, dtype=np.float64)
-            fitted = np.empty((gain.shape[0], hs.size, dev.size))
-            for row in range(gain.shape[0]):
-                pos = idx + np.broadcast_to(at, gain.shape)[row]
-                a, p = np.interp(pos, idx, amp), np.interp(pos, idx, ph)
-                fitted[row] = np.real(coefs[row][:, None] * a[None, :] * np.exp(1j * hs[:, None] * p[None, :]))
+        reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
+        fitted = np.real(np.einsum("ch,hn->chn", coefs, reg))
         boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate) ** 3, 1.0 / _MAX_BOOST)
         return fitted.sum(axis=1), (fitted * boost[None, :, None]).sum(axis=1)
 
+    def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
+              scale=None) -> tuple[np.ndarray, np.ndarray]:
+        """The pulse's harmonics in each gain sequence (one per row of the model), fitted and carried.
 
-def _plateau_median(seq: np.ndarray, envelope: np.ndarray) -> float:
+        As :meth:`relative`, the reference read from its row of ``gain``;
+        ``scale`` is each sequence's plateau level (one, or one per row; the
+        plateau medians by default), by which the relative harmonics are
+        multiplied.
+        """
+        gain = np.atleast_2d(gain)
+        ref = min(self.ref, gain.shape[0] - 1)
+        if scale is None:
+            levels = np.array([_plateau_median(row, envelope) if envelope is not None else float(np.mean(row))
+                               for row in gain])
+        else:
+            levels = np.broadcast_to(np.atleast_1d(np.asarray(scale, dtype=np.float64)), (gain.shape[0],))
+        fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0])
+        return fitted * levels[:, None], whole * levels[:, None]
+
+
+def _plateau_median(seq: np.ndarray, envelope: np.ndarray | None) -> float:
+    if envelope is None:
+        return float(np.median(seq))
     plateau = envelope > _PLATEAU
     return float(np.median(seq[plateau])) if plateau.any() else 1.0
 

@@ -21,7 +21,7 @@ from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..stimulation import ramp_level
-from ..pulse import fit_pulse
+from ..pulse import PULSE_HALF_S, fit_pulse
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
@@ -731,16 +731,26 @@ class RowModelEstimator(CycleEstimator):
         censor = self._censor(grid, w, wb)
         n_out = 0
         passes = 2 if self.robust else 1
+        model = None if response is None else response.pulse
         for it in range(passes):
             rows = np.empty_like(v)
             rel = np.empty((xb.shape[0], grid.n_rows)) if relative else None
             chosen = []
+            harm = None
+            if model is not None:
+                # the heartbeat's phase from the reference channel's lead (pulse.PulseModel)
+                r = model.ref
+                lead, _ = self._lead(v[r], w[r], env, None if censor is None else censor[r],
+                                     None if decided is None else decided[r], trap_bins)
+                level = None if decided is None else float(decided[r]["level"])
+                harm = model.relative(np.abs(lead), f, env, level, n_rows=xb.shape[0])
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
                 dec = None if decided is None else decided[ch]
                 g_row, vd, wd, made = self._demodulate(v[ch], w[ch], env, fast, f, cen, ramp_hz, dec,
-                                                       trap_bins=trap_bins)
+                                                       trap_bins=trap_bins,
+                                                       pulse=None if harm is None else (harm[0][ch], harm[1][ch]))
                 rows[ch], info = self._fit_rows(vd, wd, g_row, fast, slow, f, censor=cen, decided=dec)
                 if relative:
                     # each row at unit level, its gain relative to the ramps kept for reading back
@@ -776,7 +786,29 @@ class RowModelEstimator(CycleEstimator):
             report["censored_samples"] = int(lost.sum())
         return art, report, lost
 
-    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz, decided=None, trap_bins=None):
+    @staticmethod
+    def _lead(v, w, env, censor=None, decided=None, trap_bins=None):
+        """The strongest harmonic's complex amplitude per row (the block's choice if ``decided``), and which."""
+        vm, wm = v, w
+        if trap_bins is not None:
+            # each row measured on its bins within the ramps, brought to its centre's ramp level (a
+            # row holding a step measured as half a row, or a ramp's corner as its mean, misleads)
+            inside = trap_bins >= _FOOT
+            vm = np.where(inside, v * env[:, None] / np.where(inside, trap_bins, 1.0), 0.0)
+            wm = w * inside
+        filled = fill_rows(vm, wm, env, _FILL_ROWS, censor)
+        filled = filled - filled.mean(axis=1, keepdims=True)
+        plateau = env > 0.99
+        coef = np.fft.rfft(filled, axis=1)[:, 1:]
+        if decided is not None:
+            h = decided["lead"]
+        elif coef.shape[1]:
+            h = int(np.argmax(np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)))
+        else:
+            h = None
+        return (coef[:, h] if h is not None else np.ones(v.shape[0], dtype=complex)), h
+
+    def _demodulate(self, v, w, env, taps, rate, censor, ramp_hz, decided=None, trap_bins=None, pulse=None):
         """The envelope of the rows as the data show it, and the rows rescaled to their centres.
 
         The strongest harmonic's amplitude (the fundamental, normally),
@@ -799,30 +831,25 @@ class RowModelEstimator(CycleEstimator):
         interpolated between row centres, times the ramps at each bin: a
         ramp's corner or a step stays where it is instead of being spread
         over a row.
+
+        ``pulse`` holds the heartbeat's harmonics relative to the plateau
+        level, fitted and carried (:meth:`artifactclean.pulse.PulseModel.relative`):
+        they are taken out of the lead's sequences before the filter and put
+        back whole.
         """
         n_rows, n_bins = v.shape
-        vm, wm = v, w
-        if trap_bins is not None:
-            # each row measured on its bins within the ramps, brought to its centre's ramp level (a
-            # row holding a step measured as half a row, or a ramp's corner as its mean, misleads)
-            inside = trap_bins >= _FOOT
-            vm = np.where(inside, v * env[:, None] / np.where(inside, trap_bins, 1.0), 0.0)
-            wm = w * inside
-        filled = fill_rows(vm, wm, env, _FILL_ROWS, censor)
-        filled = filled - filled.mean(axis=1, keepdims=True)
+        lead, h = self._lead(v, w, env, censor, decided, trap_bins)
         plateau = env > 0.99
-        coef = np.fft.rfft(filled, axis=1)[:, 1:]
-        if decided is not None:
-            h, scale, level = decided["lead"], decided["lead_scale"], decided["level"]
-        elif coef.shape[1]:
-            h = int(np.argmax(np.sum(np.abs(coef[plateau] if plateau.sum() > 2 else coef) ** 2, axis=0)))
-        else:
-            h = None
-        lead = coef[:, h] if h is not None else np.ones(n_rows)
         seq = np.stack([lead.real, lead.imag])
-        if decided is None:
+        if decided is not None:
+            scale, level = decided["lead_scale"], decided["level"]
+        else:
             scale = plateau_level(seq, env)
-        pair = filter_sequences(seq, taps, rate, env, ramp_hz, scale=scale)
+        # the heartbeat's harmonics (pulse.PulseModel), relative to the plateau level: both parts of the
+        # lead scale with the artifact's amplitude
+        harm = None if pulse is None else tuple(np.asarray(scale, dtype=np.float64).reshape(-1, 1) * p[None]
+                                                for p in pulse)
+        pair = filter_sequences(seq, taps, rate, env, ramp_hz, scale=scale, pulse=harm)
         mag = np.hypot(pair[0], pair[1])
         if decided is None:
             level = float(np.median(mag[plateau])) if plateau.any() else max(float(mag.max()), 1e-300)
@@ -851,6 +878,13 @@ class RowModelEstimator(CycleEstimator):
         passes = 2 if self.robust else 1
         per_pass = HALF_S + (2 * _FILL_ROWS + 2) / freq_hz
         return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz
+
+    def block_context_seconds(self, blk) -> float:
+        """:meth:`context_seconds`, plus twice :data:`artifactclean.pulse.PULSE_HALF_S` where the block's
+        plan models the heartbeat's harmonics (its phase: a band-pass, then smoothing)."""
+        plan = getattr(self, "_plans", {}).get(block_key(blk))
+        pulse = plan is not None and getattr(plan.response, "pulse", None) is not None
+        return self.context_seconds(blk.freq_hz) + (2 * PULSE_HALF_S if pulse else 0.0)
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

@@ -89,7 +89,7 @@ class CyclePCA(RowModelEstimator):
         A shape (or a harmonic of the mean cycle) is kept when its power
         exceeds this many times the noise power its estimate carries (4:
         common practice for a detection on a chi-square statistic).
-    tracking_hz, robust, dac, margin_cycles, outlier_z
+    tracking_hz, robust, dac, margin_cycles, outlier_z, model_pulse
         As for :class:`~artifactclean.estimators.HarmonicRegression`.
 
     Attributes
@@ -101,7 +101,8 @@ class CyclePCA(RowModelEstimator):
     _method_name = "pca"
 
     def __init__(self, n_components: int = 10, keep_factor: float = 4.0, tracking_hz: float = 10.0,
-                 robust: bool = True, dac: str = "auto", margin_cycles: float = 2.0, outlier_z: float = 5.0):
+                 robust: bool = True, dac: str = "auto", margin_cycles: float = 2.0, outlier_z: float = 5.0,
+                 model_pulse: bool = True):
         self.n_components = n_components
         self.keep_factor = keep_factor
         self.tracking_hz = tracking_hz
@@ -109,6 +110,7 @@ class CyclePCA(RowModelEstimator):
         self.dac = dac
         self.margin_cycles = margin_cycles
         self.outlier_z = outlier_z
+        self.model_pulse = model_pulse
 
     def _validate_params(self) -> None:
         super()._validate_params()

@@ -79,6 +79,10 @@ class HarmonicRegression(RowModelEstimator):
         A harmonic is kept when its fitted power exceeds this many times the
         noise power its estimate carries (4: common practice for a detection
         on a chi-square statistic).
+    model_pulse : bool
+        Model a pulsatile heartbeat's harmonics in the rows' envelope from
+        its fundamental's phase instead of filtering them (see
+        :class:`~artifactclean.estimators.TemplateSubtraction`).
 
     Attributes
     ----------
@@ -90,7 +94,7 @@ class HarmonicRegression(RowModelEstimator):
 
     def __init__(self, n_harmonics: int | None = None, tracking_hz: float = 10.0, robust: bool = True,
                  dac: str = "auto", margin_cycles: float = 2.0, outlier_z: float = 5.0,
-                 keep_factor: float = 4.0):
+                 keep_factor: float = 4.0, model_pulse: bool = True):
         self.n_harmonics = n_harmonics
         self.tracking_hz = tracking_hz
         self.robust = robust
@@ -98,6 +102,7 @@ class HarmonicRegression(RowModelEstimator):
         self.margin_cycles = margin_cycles
         self.outlier_z = outlier_z
         self.keep_factor = keep_factor
+        self.model_pulse = model_pulse
 
     def _validate_params(self) -> None:
         super()._validate_params()
