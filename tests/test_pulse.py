@@ -96,10 +96,15 @@ def test_a_pulsatile_heartbeat_leaves_the_lfp_away_from_the_harmonics(freq, gain
     rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=1)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        away = {}
+        away, said = {}, {}
         for on in (True, False):
             est = TemplateSubtraction(model_pulse=on)
             away[on] = max(score_cleaning(rec, est.fit_transform(rec.data, fs=rec.fs))["lfp_error_away"])
+            block = [b for b in est.report_["blocks"] if b["kind"] == "active"][0]
+            said[on] = (block["heart_rate_hz"], block["heartbeat_harmonics_modelled"])
+    # the report says what was modelled: the generator's 2 Hz heart, its 2nd and 3rd harmonics
+    assert said[True][0] == pytest.approx(2.0, abs=0.15) and {2, 3} <= set(said[True][1])
+    assert said[False] == (None, [])
     assert away[True] < gain * away[False]
     assert away[True] < bound
 
