@@ -284,8 +284,6 @@ def clean_recording(
     # a task holds at most `budget` samples (channels x time): groups of channels, each cleaned
     # over pieces long enough for the estimator's full context; whatever the channel count
     budget = max(int(max_range_s * fs * 4), 4 * chunk)
-    ctx_max = max([_context(est, blk, model, fs) for _, _, blk in est.work_ranges(model, fs)] or [0])
-    per_group = int(np.clip(budget // max(int(max_range_s * fs), 4 * ctx_max, 1), 1, len(channels)))
     client, own_client = open_client(cluster)
     pool = None
     # the input's SHA-256 for the provenance, read beside the cleaning (hashlib releases the GIL)
@@ -304,13 +302,40 @@ def clean_recording(
         else:
             src = LockedReader(rec)
             submit_fn = _run_now
+        read_all = src.read if isinstance(src, LockedReader) else rec.read
+        if hasattr(est, "prepare"):
+            # block-level decisions from the same stretch an array run would use, on all channels,
+            # planned on the worker threads (the reader is locked); a row estimator's choices run
+            # its passes over up to 20 s of every channel, so they report progress too
+            base_map = map if pool is None else pool.map
+
+            def planning_map(fn, items):
+                items = list(items)
+                out = []
+                for i, res in enumerate(base_map(fn, items)):
+                    out.append(res)
+                    if progress:
+                        progress(i + 1, len(items), "planning")
+                return out
+
+            est.prepare(lambda a, b, rows=None: read_all(a, b, channels if rows is None else [channels[i] for i in rows]),
+                        model, fs, mapper=planning_map)
+            # the plans' temporaries stay in this thread's heap unless handed back: the worker
+            # threads allocate from heaps of their own (8 ch x 480 s, 2 workers: 1070 -> 960 MiB peak)
+            _release_memory()
+        # the groups and the pieces' span from the plans' contexts, and a reference channel a plan adds
+        # to every group (a DAC grid's tick edges, the heartbeat's phase) counted in the budget: with
+        # both left out, 2 workers on an 8 ch x 480 s file with a pulse model peaked at 1049 MiB
+        ctx_max = max([_context(est, blk, model, fs) for _, _, blk in est.work_ranges(model, fs)] or [0])
+        extra = max(len(est.for_channels([c])[1]) - 1 for c in (0, 1)) \
+            if hasattr(est, "for_channels") and len(channels) > 1 else 0
+        per_group = int(np.clip(budget // max(int(max_range_s * fs), 4 * ctx_max, 1) - extra, 1, len(channels)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
         # samples of time a task may hold: from the budget alone, not from how many workers split the
         # channels, so the pieces (and the output, to the bit) do not depend on the worker count
-        span = budget // per_group
+        span = budget // (per_group + extra)
         writer = open_writer(output, fs, names, n, gain_uv=gain_uv, groups=groups) \
             if Path(output).suffix.lower() != ".nix" else open_writer(output, fs, names, n, groups=groups)
-        read_all = src.read if isinstance(src, LockedReader) else rec.read
         with writer:
             def note_lost(lost, a, rows):
                 # lost samples of channels `rows` (indices into names), starting at sample a
@@ -330,27 +355,6 @@ def clean_recording(
                     lost = find_clipped(x, clip_level=rails)
                     x[lost] = 0.0
                     emit(x, lost, a)
-
-            if hasattr(est, "prepare"):
-                # block-level decisions from the same stretch an array run would use, on all channels,
-                # planned on the worker threads (the reader is locked); a row estimator's choices run
-                # its passes over up to 20 s of every channel, so they report progress too
-                base_map = map if pool is None else pool.map
-
-                def planning_map(fn, items):
-                    items = list(items)
-                    out = []
-                    for i, res in enumerate(base_map(fn, items)):
-                        out.append(res)
-                        if progress:
-                            progress(i + 1, len(items), "planning")
-                    return out
-
-                est.prepare(lambda a, b, rows=None: read_all(a, b, channels if rows is None else [channels[i] for i in rows]),
-                            model, fs, mapper=planning_map)
-                # the plans' temporaries stay in this thread's heap unless handed back: the worker
-                # threads allocate from heaps of their own (8 ch x 480 s, 2 workers: 1070 -> 960 MiB peak)
-                _release_memory()
 
             def items():
                 pos = 0
