@@ -37,6 +37,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, signal
 
+# the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
+from .modulation import _FOOT, _MAX_BOOST, plateau_level
+
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
@@ -58,10 +61,6 @@ _HEART_LINE = 4.0
 _SIGNIFICANCE = 5.0
 #: harmonics modelled at most (2 ... this + 1)
 _MAX_HARMONICS = 8
-#: the most a harmonic is boosted for what segment means and interpolation take off (as the gain filter's)
-_MAX_BOOST = 1.5
-#: envelope below which a gain is the envelope itself, and above which it is on its plateau (as the gain filter's)
-_FOOT, _PLATEAU = 0.02, 0.9
 
 
 @dataclass
@@ -152,10 +151,8 @@ class PulseModel:
 
 
 def _plateau_median(seq: np.ndarray, envelope: np.ndarray | None) -> float:
-    if envelope is None:
-        return float(np.median(seq))
-    plateau = envelope > _PLATEAU
-    return float(np.median(seq[plateau])) if plateau.any() else 1.0
+    """The sequence's level: its median on the envelope's plateau (:func:`plateau_level`), or overall."""
+    return float(np.median(seq)) if envelope is None else float(plateau_level(seq, envelope)[0])
 
 
 def _band(heart_hz: float, rate: float) -> np.ndarray:
