@@ -656,10 +656,14 @@ def plateau_level(seq: np.ndarray, envelope: np.ndarray) -> np.ndarray:
 
 def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
                 envelope: np.ndarray | None = None, max_hz: float | None = None,
-                scale: float | None = None) -> np.ndarray:
-    """Filter each channel's gain sequence by its ``response`` (see :func:`filter_sequences`)."""
+                scale: float | None = None, times: np.ndarray | None = None) -> np.ndarray:
+    """Filter each channel's gain sequence by its ``response`` (see :func:`filter_sequences`).
+
+    ``times`` (each gain sample's position in the recording) lets a pulse
+    model with a track read the heartbeat there (:meth:`artifactclean.pulse.PulseModel.parts`).
+    """
     out = np.empty_like(gain)
-    parts = None if response.pulse is None else response.pulse.parts(gain, rate, envelope, scale)
+    parts = None if response.pulse is None else response.pulse.parts(gain, rate, envelope, scale, times=times)
     for ch in range(gain.shape[0]):
         row = min(ch, response.response.shape[0] - 1)
         out[ch] = filter_sequences(gain[ch:ch + 1], response.taps(row, rate), rate, envelope, max_hz, scale,

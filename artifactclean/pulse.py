@@ -40,7 +40,7 @@ from scipy import ndimage, signal
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from .modulation import _FOOT, _MAX_BOOST, plateau_level
 
-__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse"]
+__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "join_tracks"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -85,25 +85,36 @@ class PulseModel:
     heart_hz: float
     coefs: np.ndarray
     ref: int
+    #: the heartbeat's fundamental over a whole block (:func:`join_tracks`): positions in samples from the
+    #: block's reference sample, amplitude and unwrapped phase; with it the reference's gain is not needed
+    #: where the model is applied
+    track: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
 
     def rows(self, rows) -> "PulseModel | None":
-        """The model of channels ``rows`` only; None if the reference is not one of them."""
+        """The model of channels ``rows`` only; None if it needs the reference and that is not one of them."""
         rows = list(rows)
         if self.ref not in rows:
-            return None
-        return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref))
+            return None if self.track is None else PulseModel(self.heart_hz, self.coefs[rows], -1, self.track)
+        return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref), self.track)
+
+    def with_track(self, track: tuple[np.ndarray, np.ndarray, np.ndarray] | None) -> "PulseModel":
+        """The same model with the heartbeat's fundamental read from ``track`` (see :func:`join_tracks`)."""
+        return PulseModel(self.heart_hz, self.coefs, self.ref, track)
 
     def harmonics(self) -> list[int]:
         """The harmonic numbers modelled on any channel."""
         return [int(h) for h in np.flatnonzero(np.any(self.coefs != 0, axis=0)) + 2]
 
-    def relative(self, ref_gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-                 level: float | None = None, n_rows: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    def relative(self, ref_gain: np.ndarray | None, rate: float, envelope: np.ndarray | None = None,
+                 level: float | None = None, n_rows: int | None = None,
+                 times: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """Each channel's pulse harmonics relative to its plateau level, as fitted and as carried.
 
-        ``ref_gain`` is the reference channel's gain sequence (at ``rate``
-        a second), ``level`` its plateau level (its plateau median by
-        default); with ``envelope`` (see
+        With a :attr:`track` and ``times`` (the sample position of each
+        element of the sequences, at ``rate`` a second) the heartbeat's
+        fundamental is read from the track there. Otherwise ``ref_gain`` is
+        the reference channel's gain sequence, ``level`` its plateau level (its
+        plateau median by default); with ``envelope`` (see
         :func:`artifactclean.modulation.filter_sequences`) its deviation from
         ``level`` times the envelope is read, as the gain filter reads it.
         Harmonics at or above 0.45 ``rate`` are left out (rows of one cycle at
@@ -113,40 +124,48 @@ class PulseModel:
         segment centres take off, as the gain filter restores for what it
         passes. ``n_rows`` channels are returned (the model's by default).
         """
-        ref_gain = np.asarray(ref_gain, dtype=np.float64)
-        if level is None:
-            level = _plateau_median(ref_gain, envelope) if envelope is not None else float(np.mean(ref_gain))
-        level = level if level != 0 else 1.0
-        if envelope is None:
-            dev = (ref_gain - level) / level
+        if self.track is not None and times is not None:
+            t, a, p = self.track
+            times = np.asarray(times, dtype=np.float64)
+            amp, ph = np.interp(times, t, a), np.interp(times, t, p)
         else:
-            dev = np.where(envelope < _FOOT, 0.0, ref_gain / level - envelope)
+            if ref_gain is None or self.ref < 0:
+                raise ValueError("the pulse model needs the reference channel's gain, or a track and times")
+            ref_gain = np.asarray(ref_gain, dtype=np.float64)
+            if level is None:
+                level = _plateau_median(ref_gain, envelope) if envelope is not None else float(np.mean(ref_gain))
+            level = level if level != 0 else 1.0
+            if envelope is None:
+                dev = (ref_gain - level) / level
+            else:
+                dev = np.where(envelope < _FOOT, 0.0, ref_gain / level - envelope)
+            amp, ph = _amplitude_phase(dev, rate, self.heart_hz)
         hs = np.arange(2, self.coefs.shape[1] + 2)
         n_rows = self.coefs.shape[0] if n_rows is None else n_rows
         coefs = self.coefs[np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)] * (hs * self.heart_hz < 0.45 * rate)
-        amp, ph = _amplitude_phase(dev, rate, self.heart_hz)
         reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
         fitted = np.real(np.einsum("ch,hn->chn", coefs, reg))
         boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate) ** 3, 1.0 / _MAX_BOOST)
         return fitted.sum(axis=1), (fitted * boost[None, :, None]).sum(axis=1)
 
     def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-              scale=None) -> tuple[np.ndarray, np.ndarray]:
+              scale=None, times: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """The pulse's harmonics in each gain sequence (one per row of the model), fitted and carried.
 
-        As :meth:`relative`, the reference read from its row of ``gain``;
-        ``scale`` is each sequence's plateau level (one, or one per row; the
-        plateau medians by default), by which the relative harmonics are
-        multiplied.
+        As :meth:`relative`: from the track at ``times``, or the reference
+        read from its row of ``gain``; ``scale`` is each sequence's plateau
+        level (one, or one per row; the plateau medians by default), by
+        which the relative harmonics are multiplied.
         """
         gain = np.atleast_2d(gain)
-        ref = min(self.ref, gain.shape[0] - 1)
+        ref = min(max(self.ref, 0), gain.shape[0] - 1)
         if scale is None:
             levels = np.array([_plateau_median(row, envelope) if envelope is not None else float(np.mean(row))
                                for row in gain])
         else:
             levels = np.broadcast_to(np.atleast_1d(np.asarray(scale, dtype=np.float64)), (gain.shape[0],))
-        fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0])
+        fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0],
+                                      times=times)
         return fitted * levels[:, None], whole * levels[:, None]
 
 
@@ -175,6 +194,39 @@ def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.
     ph = ndimage.convolve1d(np.unwrap(np.angle(c)), lp, mode="nearest")
     amp = ndimage.convolve1d(np.abs(c), lp, mode="nearest")
     return amp, ph
+
+
+def fundamental(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """Amplitude and unwrapped phase of the heartbeat's fundamental in a relative gain deviation ``dev``.
+
+    ``dev`` is a reference channel's gain over its plateau level, less the
+    block's envelope (0 where the envelope is below the foot), ``rate``
+    samples a second. The first :data:`PULSE_HALF_S` s at each end hold
+    the edge values: a track is read away from them, or from a whole block.
+    """
+    return _amplitude_phase(np.asarray(dev, dtype=np.float64), rate, heart_hz)
+
+
+def join_tracks(parts, heart_hz: float, fs: float) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """One track from consecutive ``(positions, amplitude, phase)`` parts, each unwrapped on its own.
+
+    Each part's phase is moved by the whole turns that continue the
+    previous part's last phase at the heart rate (``positions`` are
+    samples at ``fs``). None if no part holds a sample.
+    """
+    ts, amps, phs = [], [], []
+    for t, a, p in parts:
+        if not len(t):
+            continue
+        if ts:
+            expect = phs[-1][-1] + 2 * np.pi * heart_hz * (t[0] - ts[-1][-1]) / fs
+            p = p + 2 * np.pi * np.round((expect - p[0]) / (2 * np.pi))
+        ts.append(np.asarray(t, dtype=np.float64))
+        amps.append(np.asarray(a, dtype=np.float64))
+        phs.append(np.asarray(p, dtype=np.float64))
+    if not ts:
+        return None
+    return np.concatenate(ts), np.concatenate(amps), np.concatenate(phs)
 
 
 def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray) -> np.ndarray:

@@ -323,9 +323,7 @@ def estimate_tone(
     # the analytic signal has no negative-frequency image, so neither an abrupt cut nor a
     # ramped envelope biases the periodogram peak (a real-tone fit with a constant-amplitude
     # Gram matrix is biased by ramps)
-    # at a 5-smooth length: an FFT of a length with a large prime factor takes a Bluestein plan,
-    # which scipy.fft caches with its buffers (75 MB kept after a 240 s block, found by peak RSS)
-    xa = signal.hilbert(x, sp_fft.next_fast_len(n))[:n]
+    xa = analytic_signal(x, sp_fft.next_fast_len(n))[:n]
 
     def neg_power(f_hz: float) -> float:
         return -abs(_dtft(xa, f_hz / fs, centre)) ** 2
@@ -337,6 +335,27 @@ def estimate_tone(
     f_hat = float(res.x)
     z = _dtft(xa, f_hat / fs, centre)
     return f_hat, float(np.angle(z)), float(abs(z) / n)
+
+
+def analytic_signal(x: np.ndarray, n_fft: int) -> np.ndarray:
+    """The analytic signal of ``x`` zero-padded to ``n_fft``: ``scipy.signal.hilbert(x, n_fft)``.
+
+    The same one-sided spectrum (Marple 1999, IEEE Trans. Signal Process.), through
+    ``numpy.fft``: ``scipy.fft`` keeps the plans of its last 16 lengths with
+    their buffers, and a record's length stays in memory for the whole
+    cleaning (28 MB after fitting a 240 s, 8-channel file, on top of every
+    piece's peak). At a 5-smooth ``n_fft`` (``scipy.fft.next_fast_len``).
+    """
+    spec = np.fft.fft(x, n_fft)
+    h = np.zeros(n_fft)
+    h[0] = 1.0
+    if n_fft % 2 == 0:
+        h[n_fft // 2] = 1.0
+        h[1:n_fft // 2] = 2.0
+    else:
+        h[1:(n_fft + 1) // 2] = 2.0
+    spec *= h
+    return np.fft.ifft(spec)
 
 
 def _estimate_long_tone(x: np.ndarray, fs: float, freq_hint, fmin, fmax, where=None) -> tuple[float, float, float]:

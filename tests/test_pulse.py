@@ -9,7 +9,7 @@ from scipy import signal
 
 from artifactclean.evaluation import score_cleaning
 from artifactclean.estimators import TemplateSubtraction
-from artifactclean.pulse import PulseModel, _amplitude_phase, fit_pulse
+from artifactclean.pulse import PulseModel, _amplitude_phase, fit_pulse, join_tracks
 from artifactclean.scenarios import SCENARIOS, locked_units
 from artifactclean.synthetic import NeuralSpec, simulate_recording
 
@@ -85,6 +85,55 @@ def test_the_model_of_some_channels_keeps_its_reference():
     sub = model.rows([1, 2])
     assert sub.ref == 1
     np.testing.assert_array_equal(sub.coefs, model.coefs[[1, 2]])
+
+
+def test_parts_of_a_track_join_into_one_unwrapped_phase():
+    # a phase read in parts, each unwrapped on its own (each off by whole turns), joins into the
+    # continuous phase; positions and amplitudes are kept in order
+    fs, heart = 1000.0, 1.3
+    t = np.arange(0.0, 20_000.0, 25.0)
+    phase = 2 * np.pi * heart * t / fs + 0.3 * np.sin(t / 3000.0)
+    amp = 1 + 0.1 * np.cos(t / 5000.0)
+    cuts = [0, 170, 333, 600, t.size]
+    parts = [(t[a:b], amp[a:b], phase[a:b] + 2 * np.pi * k) for k, (a, b) in zip((0, 5, -3, 11), zip(cuts, cuts[1:]))]
+    parts.insert(2, (t[:0], amp[:0], phase[:0]))  # an empty part changes nothing
+    jt, ja, jp = join_tracks(parts, heart, fs)
+    np.testing.assert_array_equal(jt, t)
+    np.testing.assert_array_equal(ja, amp)
+    np.testing.assert_allclose(jp, phase, atol=1e-9)
+    assert join_tracks([(t[:0], amp[:0], phase[:0])], heart, fs) is None
+
+
+def test_the_block_track_frees_file_tasks_of_the_reference(monkeypatch):
+    # the heartbeat's phase is read once over the block (in parts of _TRACK_S s, here 6 s): a task on
+    # one channel needs neither the reference channel nor the band-pass's context, and the track read
+    # in parts is the track read at once
+    from artifactclean.estimators import cycles
+    from artifactclean.stimulation import fit_stimulation
+
+    rec = simulate_recording(20.0, artifact=SCENARIOS["modulated_20hz"][0], neural=NeuralSpec(units=[]), seed=1)
+    model = fit_stimulation(rec.data, rec.fs, stim_freq=20.0)
+    tracks = {}
+    for part_s in (6.0, 60.0):
+        monkeypatch.setattr(cycles, "_TRACK_S", part_s)
+        est = TemplateSubtraction()
+        est.prepare(cycles.array_reader(rec.data), model, rec.fs)
+        plan, = [p for p in est._plans.values() if p.response is not None and p.response.pulse is not None]
+        tracks[part_s] = plan.response.pulse.track
+        blk, = [b for b in model.blocks if b.kind == "active"]
+        other = next(c for c in range(4) if c != plan.ref)
+        assert est.for_channels([other])[1] == [other]
+        assert est.block_context_seconds(blk) == est.context_seconds(blk.freq_hz)
+    (t6, a6, p6), (t60, a60, p60) = tracks[6.0], tracks[60.0]
+    np.testing.assert_array_equal(t6, t60)
+    assert np.all(np.diff(t6) > 0)
+    # the parts overlap by twice the band-pass's reach; each part's gain is relative to its own mean
+    # cycle and plateau level, which differ from the whole block's by a few parts in a thousand
+    np.testing.assert_allclose(a6, a60, rtol=0.01)
+    np.testing.assert_allclose(p6, p60, rtol=0, atol=0.01)
+    # and the phase advances at the heart rate the plan found
+    rate = np.polyfit(t60 / rec.fs, p60, 1)[0] / (2 * np.pi)
+    assert rate == pytest.approx(plan.response.pulse.heart_hz, rel=0.05)
 
 
 @pytest.mark.parametrize("freq, gain, bound", [(10.0, 0.5, 0.1), (20.0, 0.75, 0.06)])

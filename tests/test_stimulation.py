@@ -3,7 +3,7 @@ import dataclasses
 import numpy as np
 import pytest
 
-from artifactclean.stimulation import estimate_tone, fit_stimulation, tone_crb
+from artifactclean.stimulation import analytic_signal, estimate_tone, fit_stimulation, tone_crb
 from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
 
 
@@ -49,6 +49,15 @@ def test_frequency_estimate_reaches_cramer_rao_bound(monkeypatch, pieces):
     # from memory), below the uncentred one tone_crb gives
     ph_bound = np.sqrt(1 / (a**2 / (2 * sigma**2) * n))
     assert 0.8 * ph_bound < np.std(err_ph) < 1.3 * ph_bound
+
+
+@pytest.mark.parametrize("n, n_fft", [(1000, 1000), (999, 1000), (777, 777), (1201, 1536)])
+def test_analytic_signal_is_scipys_hilbert(n, n_fft):
+    # scipy.signal.hilbert (the reference), even and odd lengths, with and without zero padding
+    from scipy import signal
+
+    x = np.random.default_rng(n).standard_normal(n)
+    np.testing.assert_allclose(analytic_signal(x, n_fft), signal.hilbert(x, n_fft), rtol=0, atol=1e-12)
 
 
 def test_long_records_are_fitted_in_pieces_like_the_whole(monkeypatch):

@@ -21,7 +21,7 @@ from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..stimulation import ramp_level
-from ..pulse import PULSE_HALF_S, fit_pulse
+from ..pulse import PULSE_HALF_S, fit_pulse, fundamental, join_tracks
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
@@ -34,6 +34,9 @@ __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "arr
 
 #: seconds of plateau the DAC grid is searched in
 _PLAN_S = 20.0
+#: seconds of the reference channel read at a time for the heartbeat's track over a block (plus its band-pass
+#: context): memory follows this, not the block
+_TRACK_S = 30.0
 
 #: steps per second (far above noise) that reveal a staircase no locked grid explains
 _UNLOCKED_STEPS = 50.0
@@ -306,6 +309,12 @@ class CycleEstimator(ArtifactEstimator):
         if not blocks:
             return []
         stretch = list(mapper(lambda b: self._stretch_plan(read, b, fs), blocks))
+        # a heartbeat's phase over each whole block, once, from its reference channel: tasks on other channels
+        # then need neither that channel nor the band-pass's context
+        pulsed = [i for i, st in enumerate(stretch) if getattr(st[3], "pulse", None) is not None]
+        for i, track in zip(pulsed, mapper(lambda i: self._heart_track(read, blocks[i], fs, bounds[i], stretch[i][0],
+                                                                          stretch[i][3].pulse.heart_hz), pulsed)):
+            stretch[i][3].pulse = stretch[i][3].pulse.with_track(track)
         n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0]
         # the estimator's own choices, per block and group of channels, side by side
         jobs = [(i, rows) for i, b in enumerate(blocks) for rows in self._decide_groups(b, fs, n_ch, bounds[i])]
@@ -319,6 +328,42 @@ class CycleEstimator(ArtifactEstimator):
         for (i, _), part in zip(jobs, mapper(decide, jobs)):
             decided.setdefault(i, []).extend(part)
         return [BlockPlan(*stretch[i][:4], decided.get(i), stretch[i][4]) for i in range(len(blocks))]
+
+    def _heart_track(self, read, blk, fs, bounds, ref, heart_hz):
+        """The heartbeat's fundamental over the work range ``bounds`` (see :func:`artifactclean.pulse.join_tracks`),
+        at positions in samples from ``blk.ref_sample``.
+
+        Read from channel ``ref``'s raw gain (as the plan's pulse model was
+        fitted), :data:`_TRACK_S` s at a time with twice
+        :data:`~artifactclean.pulse.PULSE_HALF_S` on each side (the band-pass
+        and the smoothing), so memory follows that length and not the block's.
+        """
+        s, e = bounds
+        f = blk.freq_hz
+        per_cycle = segments_per_cycle(self.tracking_hz, f)
+        core = int(_TRACK_S * fs)
+        margin = int(2 * PULSE_HALF_S * fs) + int(fs / f) + 1
+        starts = list(range(s, e, core))
+        if len(starts) > 1 and e - starts[-1] < core // 2:
+            starts.pop()  # a short last part joins the one before: each part holds a plateau
+        parts = []
+        for j, a in enumerate(starts):
+            b = e if j == len(starts) - 1 else starts[j + 1]
+            lo, hi = max(s, a - margin), min(e, b + margin)
+            x = np.asarray(read(lo, hi, [ref]), dtype=np.float64)
+            cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+            raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+            # segment k covers cycles [first + k, first + k + 1) / per_cycle
+            centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
+            t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
+            env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
+            level = float(plateau_level(raw, env)[0]) or 1.0
+            dev = np.where(env < _FOOT, 0.0, raw[0] / level - env)
+            amp, ph = fundamental(dev, rate, heart_hz)
+            keep = (t >= a) & (t < b)
+            # positions from the block's reference sample: a window of the recording (a file piece) keeps them
+            parts.append((t[keep] - blk.ref_sample, amp[keep], ph[keep]))
+        return join_tracks(parts, heart_hz, fs)
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
@@ -339,8 +384,9 @@ class CycleEstimator(ArtifactEstimator):
         if plans is None:
             return est, fit
         for ref, grid, _, response, *_ in plans.values():
-            # the reference's data: for a DAC grid, and for the heartbeat's phase (pulse.PulseModel)
-            reads = (self._reads_reference and grid is not None) or getattr(response, "pulse", None) is not None
+            # the reference's data: for a DAC grid, and for the heartbeat's phase when the plan has no track of it
+            pulse = getattr(response, "pulse", None)
+            reads = (self._reads_reference and grid is not None) or (pulse is not None and pulse.track is None)
             if reads and ref not in fit:
                 fit.append(int(ref))
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
@@ -737,8 +783,11 @@ class RowModelEstimator(CycleEstimator):
             rel = np.empty((xb.shape[0], grid.n_rows)) if relative else None
             chosen = []
             harm = None
-            if model is not None:
-                # the heartbeat's phase from the reference channel's lead (pulse.PulseModel)
+            if model is not None and model.track is not None:
+                # the heartbeat's phase from the block's track, at the rows' centres (pulse.PulseModel)
+                harm = model.relative(None, f, env, n_rows=xb.shape[0], times=offset - blk.ref_sample + grid.row_centres)
+            elif model is not None:
+                # the heartbeat's phase from the reference channel's lead
                 r = model.ref
                 lead, _ = self._lead(v[r], w[r], env, None if censor is None else censor[r],
                                      None if decided is None else decided[r], trap_bins)
@@ -883,8 +932,9 @@ class RowModelEstimator(CycleEstimator):
         """:meth:`context_seconds`, plus twice :data:`artifactclean.pulse.PULSE_HALF_S` where the block's
         plan models the heartbeat's harmonics (its phase: a band-pass, then smoothing)."""
         plan = getattr(self, "_plans", {}).get(block_key(blk))
-        pulse = plan is not None and getattr(plan.response, "pulse", None) is not None
-        return self.context_seconds(blk.freq_hz) + (2 * PULSE_HALF_S if pulse else 0.0)
+        pulse = None if plan is None else getattr(plan.response, "pulse", None)
+        return self.context_seconds(blk.freq_hz) + (2 * PULSE_HALF_S if pulse is not None and pulse.track is None
+                                                    else 0.0)
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

@@ -342,8 +342,10 @@ class TemplateSubtraction(CycleEstimator):
         the gain from its fundamental's phase (:mod:`artifactclean.pulse`)
         instead of filtering them: one pulse shape per block, fitted on the
         block's plan and pooled over channels; the fundamental's phase is read
-        from the plan's reference channel. Harmonics that do not stand out of
-        the neural floor are left to the filter.
+        once over the whole block from the plan's reference channel (a
+        channel group of a file needs neither that channel nor more context).
+        Harmonics that do not stand out of the neural floor are left to the
+        filter.
 
     Attributes
     ----------
@@ -396,9 +398,11 @@ class TemplateSubtraction(CycleEstimator):
         filter reaches :data:`artifactclean.modulation.HALF_S` seconds. With
         a DAC whose ticks repeat every ``cycles_per_row`` cycles the
         template's rows are such periods (see :meth:`block_context_seconds`).
-        With ``pulse`` (a block whose plan models the heartbeat's harmonics)
-        the heartbeat's phase reaches twice :data:`artifactclean.pulse.PULSE_HALF_S`
-        further (its band-pass, then its smoothing).
+        With ``pulse`` (a block whose plan models the heartbeat's harmonics
+        without a track of its phase over the block, as when a piece is
+        planned on its own) the heartbeat's phase reaches twice
+        :data:`artifactclean.pulse.PULSE_HALF_S` further (its band-pass, then
+        its smoothing).
         """
         k = self._rows(self._window(freq_hz), cycles_per_row)
         reach = (k + 2 * max(1, k // 4) + 2) * cycles_per_row
@@ -410,7 +414,9 @@ class TemplateSubtraction(CycleEstimator):
         """:meth:`context_seconds` for ``blk``, with the rows its plan (:meth:`prepare`) gives it."""
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         grid = None if plan is None else plan.grid
-        pulse = plan is not None and getattr(plan.response, "pulse", None) is not None
+        model = None if plan is None else getattr(plan.response, "pulse", None)
+        # a plan's track of the heartbeat reaches over the whole block already
+        pulse = model is not None and model.track is None
         return self.context_seconds(blk.freq_hz, 1 if grid is None else grid.cycles_per_period, pulse=pulse)
 
     @staticmethod
@@ -540,6 +546,9 @@ class TemplateSubtraction(CycleEstimator):
         trap = trapezoid(n, blk, offset)
         gain = np.repeat(trap[None, :], n_ch, axis=0)
         seg_env = trap[(seg_starts + np.append(seg_starts[1:], n)) // 2]
+        # where each segment stands, in samples from the block's reference sample (which a window of the
+        # recording keeps): the heartbeat's track is read there (pulse.PulseModel)
+        seg_times = offset - blk.ref_sample + (seg_starts + np.append(seg_starts[1:], n)) / 2.0
         b_start, b_up, b_down, b_stop = blk.geometry()
         # an active block's ramps are placed at the full rate (stimulation._ramp_fit): its gain is read
         # relative to them; a sham block's ramps, from the decimated envelope only, keep segment values
@@ -583,7 +592,8 @@ class TemplateSubtraction(CycleEstimator):
             if self.track_amplitude:
                 # the new gain depends only on the template: it overwrites the old one
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
-                                  trap if relative else None, seg_env, ramp_hz, seg_first, out=gain)
+                                  trap if relative else None, seg_env, ramp_hz, seg_first, out=gain,
+                                  seg_times=seg_times)
             if self.robust and it == passes - 2:
                 # filled rail samples are not data: judged as lost, then put back
                 # without clipping the block's weights are not needed again: the new ones take their place
@@ -767,7 +777,7 @@ class TemplateSubtraction(CycleEstimator):
         return _shape(s, g, n_bins, k_groups, denoise, stride, complete=complete, failed=failed)
 
     def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, trap, seg_env, ramp_hz, seg_first,
-              out):
+              out, seg_times=None):
         # with ``trap`` given the gain is fitted relative to the block's envelope and multiplied by it
         # sample by sample: read from segment values, the envelope turns a step into a ramp one
         # segment long (up to the whole artifact left there) and rounds a ramp's corners over a
@@ -798,16 +808,16 @@ class TemplateSubtraction(CycleEstimator):
             # the gain is 1 on the plateau by construction (templates carry the amplitude): a fixed
             # level keeps the ramps' filtering local, so pieces of a block match the whole block
             if trap is None:
-                return smooth_gain(gg, response, seg_rate, seg_env, ramp_hz, scale=1.0)
-            gg = smooth_gain(gg * seg_env, response, seg_rate, seg_env, ramp_hz, scale=1.0)
+                return smooth_gain(gg, response, seg_rate, seg_env, ramp_hz, scale=1.0, times=seg_times)
+            gg = smooth_gain(gg * seg_env, response, seg_rate, seg_env, ramp_hz, scale=1.0, times=seg_times)
             with np.errstate(invalid="ignore", divide="ignore"):
                 return np.where(seg_env > _FOOT, gg / seg_env, 1.0)
 
         def pulse(gg):
             # the heartbeat's harmonics smooth() puts in gg (pulse.PulseModel)
             if trap is None:
-                return response.pulse.parts(gg, seg_rate, seg_env, 1.0)[1]
-            part = response.pulse.parts(gg * seg_env, seg_rate, seg_env, 1.0)[1]
+                return response.pulse.parts(gg, seg_rate, seg_env, 1.0, times=seg_times)[1]
+            part = response.pulse.parts(gg * seg_env, seg_rate, seg_env, 1.0, times=seg_times)[1]
             with np.errstate(invalid="ignore", divide="ignore"):
                 return np.where(seg_env > _FOOT, part / seg_env, 0.0)
 

@@ -324,8 +324,8 @@ def clean_recording(
             # threads allocate from heaps of their own (8 ch x 480 s, 2 workers: 1070 -> 960 MiB peak)
             _release_memory()
         # the groups and the pieces' span from the plans' contexts, and a reference channel a plan adds
-        # to every group (a DAC grid's tick edges, the heartbeat's phase) counted in the budget: with
-        # both left out, 2 workers on an 8 ch x 480 s file with a pulse model peaked at 1049 MiB
+        # to every group (a DAC grid's tick edges) counted in the budget: with both left out, 2 workers
+        # on an 8 ch x 480 s file peaked at 1049 MiB while the heartbeat's phase was read in every task
         ctx_max = max([_context(est, blk, model, fs) for _, _, blk in est.work_ranges(model, fs)] or [0])
         extra = max(len(est.for_channels([c])[1]) - 1 for c in (0, 1)) \
             if hasattr(est, "for_channels") and len(channels) > 1 else 0
