@@ -930,7 +930,8 @@ class RowModelEstimator(CycleEstimator):
 
     def block_context_seconds(self, blk) -> float:
         """:meth:`context_seconds`, plus twice :data:`artifactclean.pulse.PULSE_HALF_S` where the block's
-        plan models the heartbeat's harmonics (its phase: a band-pass, then smoothing)."""
+        plan models the heartbeat's harmonics without a track of its phase over the block (the phase is
+        then read here: a band-pass, then smoothing)."""
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         pulse = None if plan is None else getattr(plan.response, "pulse", None)
         return self.context_seconds(blk.freq_hz) + (2 * PULSE_HALF_S if pulse is not None and pulse.track is None
