@@ -314,7 +314,9 @@ class CycleEstimator(ArtifactEstimator):
         pulsed = [i for i, st in enumerate(stretch) if getattr(st[3], "pulse", None) is not None]
         for i, track in zip(pulsed, mapper(lambda i: self._heart_track(read, blocks[i], fs, bounds[i], stretch[i][0],
                                                                           stretch[i][3].pulse.heart_hz), pulsed)):
-            stretch[i][3].pulse = stretch[i][3].pulse.with_track(track)
+            # every model the estimators apply has its track (none only if the range held no gain sample)
+            model = stretch[i][3].pulse
+            stretch[i][3].pulse = None if track is None else model.with_track(track)
         n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0]
         # the estimator's own choices, per block and group of channels, side by side
         jobs = [(i, rows) for i, b in enumerate(blocks) for rows in self._decide_groups(b, fs, n_ch, bounds[i])]
@@ -383,11 +385,9 @@ class CycleEstimator(ArtifactEstimator):
         plans = getattr(self, "_plans", None)
         if plans is None:
             return est, fit
-        for ref, grid, _, response, *_ in plans.values():
-            # the reference's data: for a DAC grid, and for the heartbeat's phase when the plan has no track of it
-            pulse = getattr(response, "pulse", None)
-            reads = (self._reads_reference and grid is not None) or (pulse is not None and pulse.track is None)
-            if reads and ref not in fit:
+        for ref, grid, *_ in plans.values():
+            # the reference's data for a DAC grid (the heartbeat's phase is in the plan's track)
+            if self._reads_reference and grid is not None and ref not in fit:
                 fit.append(int(ref))
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
         return est, fit
@@ -783,16 +783,9 @@ class RowModelEstimator(CycleEstimator):
             rel = np.empty((xb.shape[0], grid.n_rows)) if relative else None
             chosen = []
             harm = None
-            if model is not None and model.track is not None:
+            if model is not None:
                 # the heartbeat's phase from the block's track, at the rows' centres (pulse.PulseModel)
                 harm = model.relative(None, f, env, n_rows=xb.shape[0], times=offset - blk.ref_sample + grid.row_centres)
-            elif model is not None:
-                # the heartbeat's phase from the reference channel's lead
-                r = model.ref
-                lead, _ = self._lead(v[r], w[r], env, None if censor is None else censor[r],
-                                     None if decided is None else decided[r], trap_bins)
-                level = None if decided is None else float(decided[r]["level"])
-                harm = model.relative(np.abs(lead), f, env, level, n_rows=xb.shape[0])
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
@@ -927,15 +920,6 @@ class RowModelEstimator(CycleEstimator):
         passes = 2 if self.robust else 1
         per_pass = HALF_S + (2 * _FILL_ROWS + 2) / freq_hz
         return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz
-
-    def block_context_seconds(self, blk) -> float:
-        """:meth:`context_seconds`, plus twice :data:`artifactclean.pulse.PULSE_HALF_S` where the block's
-        plan models the heartbeat's harmonics without a track of its phase over the block (the phase is
-        then read here: a band-pass, then smoothing)."""
-        plan = getattr(self, "_plans", {}).get(block_key(blk))
-        pulse = None if plan is None else getattr(plan.response, "pulse", None)
-        return self.context_seconds(blk.freq_hz) + (2 * PULSE_HALF_S if pulse is not None and pulse.track is None
-                                                    else 0.0)
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

@@ -52,7 +52,6 @@ from scipy import ndimage, signal, special
 
 from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..pulse import PULSE_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, smooth_gain, \
     to_middles
 from ._kernels import (group_position, grouped_eval, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_eval,
@@ -390,7 +389,7 @@ class TemplateSubtraction(CycleEstimator):
         k = 30 if self.n_cycles is None else self.n_cycles
         return float((3 if self.robust else 2) * (k + 2 * max(1, k // 4) + 2) + self.margin_cycles)
 
-    def context_seconds(self, freq_hz: float, cycles_per_row: int = 1, pulse: bool = False) -> float:
+    def context_seconds(self, freq_hz: float, cycles_per_row: int = 1) -> float:
         """Context (s) an output sample needs on each side.
 
         The window reaches K cycles plus two template groups (alignment and
@@ -398,26 +397,20 @@ class TemplateSubtraction(CycleEstimator):
         filter reaches :data:`artifactclean.modulation.HALF_S` seconds. With
         a DAC whose ticks repeat every ``cycles_per_row`` cycles the
         template's rows are such periods (see :meth:`block_context_seconds`).
-        With ``pulse`` (a block whose plan models the heartbeat's harmonics
-        without a track of its phase over the block, as when a piece is
-        planned on its own) the heartbeat's phase reaches twice
-        :data:`artifactclean.pulse.PULSE_HALF_S` further (its band-pass, then
-        its smoothing).
+        The heartbeat's phase, where a block's plan models its harmonics, is
+        read over the whole block in the plan and needs no context here.
         """
         k = self._rows(self._window(freq_hz), cycles_per_row)
         reach = (k + 2 * max(1, k // 4) + 2) * cycles_per_row
         # each pass builds on the previous pass's residual, so edge effects travel one window per pass
         passes = 3 if self.robust else 2
-        return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S + (2 * PULSE_HALF_S if pulse else 0.0)
+        return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S
 
     def block_context_seconds(self, blk) -> float:
         """:meth:`context_seconds` for ``blk``, with the rows its plan (:meth:`prepare`) gives it."""
         plan = getattr(self, "_plans", {}).get(block_key(blk))
         grid = None if plan is None else plan.grid
-        model = None if plan is None else getattr(plan.response, "pulse", None)
-        # a plan's track of the heartbeat reaches over the whole block already
-        pulse = model is not None and model.track is None
-        return self.context_seconds(blk.freq_hz, 1 if grid is None else grid.cycles_per_period, pulse=pulse)
+        return self.context_seconds(blk.freq_hz, 1 if grid is None else grid.cycles_per_period)
 
     @staticmethod
     def _rows(k_half: int, cycles_per_row: int) -> int:
