@@ -237,6 +237,17 @@ def _subset_plan(plan, fit: list[int]):
     return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics)
 
 
+def _track_parts(bounds: tuple[int, int], fs: float) -> list[tuple[int, int]]:
+    """The parts ``(a, b)`` a heartbeat track over the work range ``bounds`` is computed in: :data:`_TRACK_S`
+    s each, a short last part joined to the one before (each part holds a plateau)."""
+    s, e = bounds
+    core = int(_TRACK_S * fs)
+    starts = list(range(s, e, core))
+    if len(starts) > 1 and e - starts[-1] < core // 2:
+        starts.pop()
+    return [(a, e if j == len(starts) - 1 else starts[j + 1]) for j, a in enumerate(starts)]
+
+
 class CycleEstimator(ArtifactEstimator):
     """Base of the estimators that model the artifact cycle by cycle within each block.
 
@@ -312,10 +323,21 @@ class CycleEstimator(ArtifactEstimator):
         # a heartbeat's phase over each whole block, once, from its reference channel: tasks on other channels
         # then need neither that channel nor the band-pass's context
         pulsed = [i for i, st in enumerate(stretch) if getattr(st[3], "pulse", None) is not None]
-        for i, track in zip(pulsed, mapper(lambda i: self._heart_track(read, blocks[i], fs, bounds[i], stretch[i][0],
-                                                                          stretch[i][3].pulse.heart_hz), pulsed)):
-            # every model the estimators apply has its track (none only if the range held no gain sample)
+        # the tracks' parts of every block side by side (a part per _TRACK_S s; one map, not one per block,
+        # so no task waits on others in the same pool)
+        jobs = [(i, part) for i in pulsed for part in _track_parts(bounds[i], fs)]
+        done: dict[int, list] = {i: [] for i in pulsed}
+
+        def part(job):
+            i, ab = job
+            return self._heart_part(read, blocks[i], fs, bounds[i], stretch[i][0], stretch[i][3].pulse.heart_hz, ab)
+
+        for (i, _), res in zip(jobs, mapper(part, jobs)):
+            done[i].append(res)
+        for i in pulsed:
             model = stretch[i][3].pulse
+            track = join_tracks(done[i], model.heart_hz, fs)
+            # every model the estimators apply has its track (none only if the range held no gain sample)
             stretch[i][3].pulse = None if track is None else model.with_track(track)
         n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0]
         # the estimator's own choices, per block and group of channels, side by side
@@ -331,41 +353,37 @@ class CycleEstimator(ArtifactEstimator):
             decided.setdefault(i, []).extend(part)
         return [BlockPlan(*stretch[i][:4], decided.get(i), stretch[i][4]) for i in range(len(blocks))]
 
-    def _heart_track(self, read, blk, fs, bounds, ref, heart_hz):
-        """The heartbeat's fundamental over the work range ``bounds`` (see :func:`artifactclean.pulse.join_tracks`),
-        at positions in samples from ``blk.ref_sample``.
+    def _heart_part(self, read, blk, fs, bounds, ref, heart_hz, part):
+        """One part of the heartbeat's track (rate ``heart_hz``) over a block's work range ``bounds``:
+        ``(positions, amplitude, phase)`` of the fundamental at positions (samples) from
+        ``blk.ref_sample`` within ``part = (a, b)`` (see :func:`_track_parts`), for
+        :func:`artifactclean.pulse.join_tracks`.
 
         Read from channel ``ref``'s raw gain (as the plan's pulse model was
-        fitted), :data:`_TRACK_S` s at a time with twice
+        fitted) over the part with twice
         :data:`~artifactclean.pulse.PULSE_HALF_S` on each side (the band-pass
-        and the smoothing), so memory follows that length and not the block's.
+        and the smoothing), so memory follows :data:`_TRACK_S` and not the
+        block's length.
         """
         s, e = bounds
+        a, b = part
         f = blk.freq_hz
         per_cycle = segments_per_cycle(self.tracking_hz, f)
-        core = int(_TRACK_S * fs)
         margin = int(2 * PULSE_HALF_S * fs) + int(fs / f) + 1
-        starts = list(range(s, e, core))
-        if len(starts) > 1 and e - starts[-1] < core // 2:
-            starts.pop()  # a short last part joins the one before: each part holds a plateau
-        parts = []
-        for j, a in enumerate(starts):
-            b = e if j == len(starts) - 1 else starts[j + 1]
-            lo, hi = max(s, a - margin), min(e, b + margin)
-            x = np.asarray(read(lo, hi, [ref]), dtype=np.float64)
-            cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-            raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
-            # segment k covers cycles [first + k, first + k + 1) / per_cycle
-            centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
-            t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
-            env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
-            level = float(plateau_level(raw, env)[0]) or 1.0
-            dev = np.where(env < _FOOT, 0.0, raw[0] / level - env)
-            amp, ph = fundamental(dev, rate, heart_hz)
-            keep = (t >= a) & (t < b)
-            # positions from the block's reference sample: a window of the recording (a file piece) keeps them
-            parts.append((t[keep] - blk.ref_sample, amp[keep], ph[keep]))
-        return join_tracks(parts, heart_hz, fs)
+        lo, hi = max(s, a - margin), min(e, b + margin)
+        x = np.asarray(read(lo, hi, [ref]), dtype=np.float64)
+        cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+        # segment k covers cycles [first + k, first + k + 1) / per_cycle
+        centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
+        t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
+        env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
+        level = float(plateau_level(raw, env)[0]) or 1.0
+        dev = np.where(env < _FOOT, 0.0, raw[0] / level - env)
+        amp, ph = fundamental(dev, rate, heart_hz)
+        keep = (t >= a) & (t < b)
+        # positions from the block's reference sample: a window of the recording (a file piece) keeps them
+        return t[keep] - blk.ref_sample, amp[keep], ph[keep]
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
