@@ -213,7 +213,9 @@ def test_pieces_with_a_dac_that_is_not_locked_to_the_cycle_equal_the_whole_array
     rec = simulate_recording(100.0, artifact=ArtifactSpec(freq_hz=freq, dac_rate_hz=1000.0, drift_ppm=40.0,
                                                           channel_gains=(1.0, -0.6)),
                              blocks=[BlockSpec(1.0, 98.0, ramp_s=1.0)], seed=8, n_channels=2)
-    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=9.0)
+    # rows of 13 cycles need 20 s of context: 27 s of 4 channels' memory holds a channel, the reference
+    # and pieces of four contexts (9 s cut the context to 7 s, and pieces differed by 0.016 uV)
+    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=27.0)
     assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2  # cleaned in pieces of time
     info = prov["estimator_report"][0]["blocks"][0]
     assert info["dac_free_running"] if freq == 13.37 else info["dac_cycles_per_period"] == 13
@@ -259,3 +261,30 @@ def test_a_file_piece_is_cleaned_in_the_array_read_for_it(short_dac):
     np.testing.assert_array_equal(lost, est.lost_)
     # the array read for the task now holds the cleaned samples (lost ones at 0): no copy was made
     np.testing.assert_array_equal(read[0], y)
+
+
+def test_task_shape_keeps_a_task_within_the_memory_of_four_channels():
+    """Groups and spans from the estimator's memory per sample (per channel ``a``, shared ``b``): a task
+    holds at most the memory of ``length`` samples of 4 channels, shared arrays counted, and its group is
+    the largest whose span reaches ``least``; with nothing shared (``b = 0``) that is the old count of
+    channels x time (4 channels, 3 with a reference channel added)."""
+    from artifactclean.io.pipeline import _task_shape
+
+    length, fs = 900_000, 30_000
+    for a, b in ((4.7, 21.0), (4.4, 8.0), (10.0, 20.5), (3.1, 0.0)):
+        budget = length * (4 * a + b)
+        for extra in (0, 1):
+            for least_s in (30, 36, 64, 120):
+                least = least_s * fs
+                g, span = _task_shape(8, length, least, extra, (a, b))
+                assert 1 <= g <= 8
+                assert span * (a * (g + extra) + b) <= budget * (1 + 1e-9)
+                if span >= least and g < 8:
+                    assert budget / (a * (g + 1 + extra) + b) < least  # one more channel would not fit
+                if span < least:
+                    assert g == 1  # even one channel's piece is short: the shortest group
+    assert _task_shape(8, length, length, 0, (3.1, 0.0)) == (4, length)
+    assert _task_shape(8, length, length, 1, (3.1, 0.0)) == (3, length)
+    # the template at 5 Hz (one channel, a context of 30 s): 46 s, not the 120 s four channels' samples gave
+    g, span = _task_shape(8, length, 120 * fs, 0, (4.7, 21.0))
+    assert g == 1 and 45 * fs < span < 47 * fs

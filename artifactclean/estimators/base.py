@@ -102,6 +102,10 @@ class ArtifactEstimator(BaseEstimator):
 
     #: stimulation cycles of context needed on each side of an output sample
     context_cycles: float = 0.0
+    #: peak working memory of a fit, in float64 values per sample: ``(per channel, per sample of time)``
+    #: (arrays of the piece's length that all channels share: phases, interpolation indices, the ramp);
+    #: file pieces are sized from it (:func:`artifactclean.io.pipeline.clean_recording`)
+    memory_per_sample: tuple[float, float] = (5.0, 20.0)
 
     def fit(
         self,

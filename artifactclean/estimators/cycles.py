@@ -385,6 +385,17 @@ class CycleEstimator(ArtifactEstimator):
         # positions from the block's reference sample: a window of the recording (a file piece) keeps them
         return t[keep] - blk.ref_sample, amp[keep], ph[keep]
 
+    #: :attr:`memory_per_sample` of a block whose plan has a DAC grid (None: the same)
+    _memory_with_dac: tuple[float, float] | None = None
+
+    def block_memory_per_sample(self, blk) -> tuple[float, float]:
+        """:attr:`memory_per_sample` for ``blk`` after :meth:`prepare`, with or without a DAC grid in its plan."""
+        plan = getattr(self, "_plans", None)
+        plan = None if plan is None else plan.get(block_key(blk))
+        if plan is None or plan.grid is None or self._memory_with_dac is None:
+            return self.memory_per_sample
+        return self._memory_with_dac
+
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
     #: whether the estimator models a DAC grid that repeats every few cycles (DacGrid.cycles_per_period)

@@ -217,12 +217,15 @@ def clean_recording(
     chunk_s, max_range_s : float
         Seconds read at a time for copying, and the memory budget of one
         cleaning task, both in seconds of 4 channels (more channels read
-        shorter chunks). A task cleans a group of channels over a piece of
-        time with the estimator's full context on each side; channels are
-        grouped so that a piece holds at least four contexts, so the
-        output equals cleaning the whole array at once (to float32 for the
-        template, adaptive and comb; at 5 Hz and below the template's
-        context is cut to a quarter of a piece, and pieces then differ by a
+        shorter chunks; a task's memory counts the estimator's arrays
+        shared by all channels too, see ``_task_shape``). A task cleans a
+        group of channels over a piece of time with the estimator's full
+        context on each side; channels are grouped so that a piece holds
+        at least four contexts, so the output equals cleaning the whole
+        array at once (to float32 for the template, adaptive and comb;
+        where even one channel's piece is shorter than that, at 10 Hz and
+        below for the template, a piece may grow to twice the budget and
+        its context is cut to a quarter of it, and pieces then differ by a
         fraction of a microvolt near their edges).
     progress : callable(done, total, stage), optional
     workers : int
@@ -281,7 +284,7 @@ def clean_recording(
     stretches: list[dict] = []
     reports = []
     fs = rec.fs
-    # a task holds at most `budget` samples (channels x time): groups of channels, each cleaned
+    # a task holds the memory of `budget` samples (4 channels x time): groups of channels, each cleaned
     # over pieces long enough for the estimator's full context; whatever the channel count
     budget = max(int(max_range_s * fs * 4), 4 * chunk)
     client, own_client = open_client(cluster)
@@ -329,11 +332,11 @@ def clean_recording(
         ctx_max = max([_context(est, blk, model, fs) for _, _, blk in est.work_ranges(model, fs)] or [0])
         extra = max(len(est.for_channels([c])[1]) - 1 for c in (0, 1)) \
             if hasattr(est, "for_channels") and len(channels) > 1 else 0
-        per_group = int(np.clip(budget // max(int(max_range_s * fs), 4 * ctx_max, 1) - extra, 1, len(channels)))
+        per_sample = [est.block_memory_per_sample(blk) if blk is not None and hasattr(est, "block_memory_per_sample")
+                      else est.memory_per_sample for _, _, blk in est.work_ranges(model, fs)] or [est.memory_per_sample]
+        per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), extra,
+                                      (max(a for a, _ in per_sample), max(b for _, b in per_sample)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
-        # samples of time a task may hold: from the budget alone, not from how many workers split the
-        # channels, so the pieces (and the output, to the bit) do not depend on the worker count
-        span = budget // (per_group + extra)
         writer = open_writer(output, fs, names, n, gain_uv=gain_uv, groups=groups) \
             if Path(output).suffix.lower() != ".nix" else open_writer(output, fs, names, n, groups=groups)
         with writer:
@@ -442,6 +445,32 @@ def _context(est, blk, model, fs: float) -> int:
         return int(np.ceil(est.block_context_seconds(blk) * fs))  # the block's plan may widen it
     f_ctx = blk.freq_hz if blk is not None else (model.main_block.freq_hz if model.main_block else 1.0)
     return int(np.ceil(est.context_seconds(f_ctx) * fs))
+
+
+def _task_shape(n_ch: int, length: int, least: int, extra: int, per_sample: tuple[float, float]) -> tuple[int, int]:
+    """Channels per group and samples of time per piece, from the memory of ``length`` samples of 4 channels.
+
+    A task's memory is ``span * (a * channels + b)`` float64 values (``a, b``
+    the estimator's :attr:`~artifactclean.estimators.ArtifactEstimator.memory_per_sample`:
+    per channel, and per sample of time whatever the channels), with
+    ``extra`` reference channels in every group. The group is the largest
+    whose span still reaches ``least`` samples (a piece of four contexts, at
+    least ``length``), else one channel. Counting channels only, one channel
+    got four times the span, and a 5 or 10 Hz task (one channel, 120 s) held
+    2.6 times the memory of a 20 Hz one (4 channels, 30 s): the template's
+    arrays shared by all channels hold 21 values per sample, a channel 4.7.
+    The span depends on neither the worker count nor the recording's
+    length, so the pieces (and the output, to the bit) do not either.
+    """
+    a, b = per_sample
+    memory = length * (4 * a + b)
+
+    def span_of(g: int) -> int:
+        return max(1, int(memory / (a * (g + extra) + b) * (1 + 1e-12)))  # 4 channels: length, not one less
+
+    fits = [g for g in range(1, n_ch + 1) if span_of(g) >= least]
+    g = max(fits) if fits else 1
+    return g, span_of(g)
 
 
 def _pieces(s: int, e: int, ctx: int, span: int) -> list[tuple[int, int, int, int]]:
