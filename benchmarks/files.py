@@ -1,7 +1,8 @@
 """Cleaning a file against copying it, and peak memory against its length, as ratios from one run.
 
-Builds Open Ephys binary recordings (int16, 30 kHz, one 20 Hz block with a
-1 kHz DAC staircase) of ``--seconds`` and of 4 times that, then, each in a
+Builds Open Ephys binary recordings (int16, 30 kHz, one block at ``--freq``,
+20 Hz by default, with a 1 kHz DAC staircase unless ``--no-dac``) of
+``--seconds`` and of 4 times that, then, each in a
 fresh process (so that peak memory is that of one job):
 
 * a plain copy: the same reader, read in the same chunks, written by the same
@@ -11,7 +12,7 @@ fresh process (so that peak memory is that of one job):
 Prints clean / copy throughput and the peak resident memory (``VmHWM``) of
 each job, with the ratio of the 4x file to the 1x file.
 
-    python benchmarks/files.py [--seconds 60] [--channels 8] [--workers 1]
+    python benchmarks/files.py [--seconds 60] [--channels 8] [--workers 1] [--freq 20] [--no-dac]
 """
 
 from __future__ import annotations
@@ -66,11 +67,11 @@ def _run(job, src, out, workers=1) -> dict:
     return json.loads(r.stdout.strip().splitlines()[-1])
 
 
-def make_file(root: Path, seconds: float, channels: int, seed: int = 0) -> Path:
+def make_file(root: Path, seconds: float, channels: int, seed: int = 0, freq: float = 20.0, dac: bool = True) -> Path:
     from artifactclean.demo_files import write_openephys_binary
     from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
 
-    rec = simulate_recording(seconds, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0),
+    rec = simulate_recording(seconds, artifact=ArtifactSpec(freq_hz=freq, dac_rate_hz=1000.0 if dac else None),
                              neural=NeuralSpec(units=[]), blocks=[BlockSpec(1.0, seconds - 1.0, ramp_s=1.0)],
                              n_channels=channels, seed=seed)
     return write_openephys_binary(root, rec.data, rec.fs)
@@ -81,16 +82,18 @@ def main(argv=None) -> dict:
     ap.add_argument("--seconds", type=float, default=60.0)
     ap.add_argument("--channels", type=int, default=8)
     ap.add_argument("--workers", type=int, default=1)
+    ap.add_argument("--freq", type=float, default=20.0, help="stimulation frequency (Hz)")
+    ap.add_argument("--no-dac", action="store_true", help="a smooth artifact, without a DAC staircase")
     args = ap.parse_args(argv)
     res = {}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         for k in (1, 4):
-            src = make_file(tmp / f"x{k}", k * args.seconds, args.channels, seed=k)
+            src = make_file(tmp / f"x{k}", k * args.seconds, args.channels, seed=k, freq=args.freq, dac=not args.no_dac)
             res[k] = dict(copy=_run("copy", src, tmp / f"copy{k}.dat"),
                           clean=_run("clean", src, tmp / f"clean{k}.dat", args.workers))
     print(f"{args.channels} channels, int16 Open Ephys binary, {args.seconds:g} s and {4 * args.seconds:g} s, "
-          f"template, {args.workers} worker(s)")
+          f"{args.freq:g} Hz {'without' if args.no_dac else 'with'} a DAC, template, {args.workers} worker(s)")
     print(f"{'file':<6} {'clean / copy throughput':>24} {'copy peak MiB':>14} {'clean peak MiB':>15}")
     for k, r in res.items():
         print(f"{k}x{'':<4} {r['copy']['seconds'] / r['clean']['seconds']:>24.3f} "
