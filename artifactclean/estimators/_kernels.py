@@ -71,6 +71,7 @@ def grouped_eval_np(t, n_bins, i0, i1, beta, b0, b1, alpha):
     ``t`` has shape (n_ch, n_groups * n_bins); ``i0, i1, beta`` place the sample
     between two group templates, ``b0, b1, alpha`` between two bins.
     """
+    i0, i1, b0, b1 = (np.asarray(v, dtype=np.int64) for v in (i0, i1, b0, b1))  # int32 indices: no overflow
     lo = (1 - alpha) * t[:, i0 * n_bins + b0] + alpha * t[:, i0 * n_bins + b1]
     hi = (1 - alpha) * t[:, i1 * n_bins + b0] + alpha * t[:, i1 * n_bins + b1]
     return (1 - beta) * lo + beta * hi
@@ -83,10 +84,17 @@ def group_position(cycle_pos: np.ndarray, stride: int, n_groups: int):
     cycle position ``(i + 0.5) * stride``.
     """
     q = cycle_pos / stride - 0.5
-    i0 = np.clip(np.floor(q).astype(np.int64), 0, n_groups - 1)
+    # indices of the data's length in the narrowest integer that holds them (memory; the same values)
+    i0 = np.clip(np.floor(q).astype(np.int64), 0, n_groups - 1).astype(index_dtype(n_groups))
     beta = np.clip(q - i0, 0.0, 1.0)
     i1 = np.minimum(i0 + 1, n_groups - 1)
     return i0, i1, beta
+
+
+def index_dtype(n: int):
+    """``int32`` for indices below ``n`` when it fits, else ``int64``: arrays of indices as long as the
+    data are a large part of a fit's memory (:attr:`ArtifactEstimator.memory_per_sample`)."""
+    return np.int32 if n < 2**31 else np.int64
 
 
 def tick_eval_np(t, key, n_bins, stride, n_groups):
@@ -144,7 +152,7 @@ def lerp_positions(xp: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarra
     Outside the knots the fraction is clipped to 0 or 1, so :func:`lerp_rows`
     holds the end values, as :func:`numpy.interp` does.
     """
-    j = np.clip(np.searchsorted(xp, x, side="right") - 1, 0, max(xp.size - 2, 0))
+    j = np.clip(np.searchsorted(xp, x, side="right") - 1, 0, max(xp.size - 2, 0)).astype(index_dtype(xp.size))
     if xp.size < 2:
         return j, np.zeros(x.size)
     frac = np.clip((x - xp[j]) / (xp[j + 1] - xp[j]), 0.0, 1.0)
