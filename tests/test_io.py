@@ -228,8 +228,10 @@ def test_long_block_cleaned_in_pieces_equals_array(tmp_path):
     r = open_recording(root)
     from artifactclean.io import clean_recording
 
-    # a 10 s budget (for 4 channels): one channel per task, and the block in pieces of time
-    out = clean_recording(r, tmp_path / "long.dat", stim_freq=10.0, max_range_s=10.0)
+    # a small budget: one channel (and the DAC's reference) per task, the block in pieces of 40 s with 10 s
+    # of context, as 10 s of 4 channels gave while the budget counted samples only (with the template's
+    # shared arrays counted that is 13.5 s; 10 s now gives pieces of 30 s with 7.4 s, and 0.75 uV)
+    out = clean_recording(r, tmp_path / "long.dat", stim_freq=10.0, max_range_s=13.5)
     assert len(out["written"]) == 2
     side = json.loads((tmp_path / "long.json").read_text())
     assert len({rep["start_s"] for rep in side["provenance"]["estimator_report"]}) >= 2  # it really went in pieces
