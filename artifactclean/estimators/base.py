@@ -220,6 +220,10 @@ class ArtifactEstimator(BaseEstimator):
         """Context (s) an output sample needs on each side at ``freq_hz`` stimulation."""
         return self.context_cycles / freq_hz
 
+    def block_memory_per_sample(self, blk) -> tuple[float, float]:
+        """:attr:`memory_per_sample` for the work range of ``blk`` (None: outside blocks)."""
+        return self.memory_per_sample
+
     def work_ranges(self, model: StimulationModel, fs: float) -> list:
         """Sample ranges ``(start, stop, block)`` the estimator cleans independently.
 

@@ -391,7 +391,7 @@ class CycleEstimator(ArtifactEstimator):
     def block_memory_per_sample(self, blk) -> tuple[float, float]:
         """:attr:`memory_per_sample` for ``blk`` after :meth:`prepare`, with or without a DAC grid in its plan."""
         plan = getattr(self, "_plans", None)
-        plan = None if plan is None else plan.get(block_key(blk))
+        plan = None if plan is None or blk is None else plan.get(block_key(blk))
         if plan is None or plan.grid is None or self._memory_with_dac is None:
             return self.memory_per_sample
         return self._memory_with_dac

@@ -329,11 +329,11 @@ def clean_recording(
         # the groups and the pieces' span from the plans' contexts, and a reference channel a plan adds
         # to every group (a DAC grid's tick edges) counted in the budget: with both left out, 2 workers
         # on an 8 ch x 480 s file peaked at 1049 MiB while the heartbeat's phase was read in every task
-        ctx_max = max([_context(est, blk, model, fs) for _, _, blk in est.work_ranges(model, fs)] or [0])
+        work = est.work_ranges(model, fs)
+        ctx_max = max([_context(est, blk, model, fs) for _, _, blk in work] or [0])
         extra = max(len(est.for_channels([c])[1]) - 1 for c in (0, 1)) \
             if hasattr(est, "for_channels") and len(channels) > 1 else 0
-        per_sample = [est.block_memory_per_sample(blk) if blk is not None and hasattr(est, "block_memory_per_sample")
-                      else est.memory_per_sample for _, _, blk in est.work_ranges(model, fs)] or [est.memory_per_sample]
+        per_sample = [est.block_memory_per_sample(blk) for _, _, blk in work] or [est.memory_per_sample]
         per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), extra,
                                       (max(a for a, _ in per_sample), max(b for _, b in per_sample)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
@@ -361,7 +361,7 @@ def clean_recording(
 
             def items():
                 pos = 0
-                for s, e, blk in est.work_ranges(model, fs):
+                for s, e, blk in work:
                     if s > pos:
                         yield "copy", (pos, s)
                     for piece in _pieces(s, e, _context(est, blk, model, fs), span):
@@ -458,7 +458,8 @@ def _task_shape(n_ch: int, length: int, least: int, extra: int, per_sample: tupl
     least ``length``), else one channel. Counting channels only, one channel
     got four times the span, and a 5 or 10 Hz task (one channel, 120 s) held
     2.6 times the memory of a 20 Hz one (4 channels, 30 s): the template's
-    arrays shared by all channels hold 21 values per sample, a channel 4.7.
+    arrays shared by all channels held 21 values per sample (12 now), a
+    channel 4.7.
     The span depends on neither the worker count nor the recording's
     length, so the pieces (and the output, to the bit) do not either.
     """
