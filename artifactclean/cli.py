@@ -91,7 +91,10 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--method", help="cleaning method (default: template)")
     c.add_argument("--force", action="store_true", help="overwrite an existing output")
     c.add_argument("--gain-uv", type=float, help="int16 step in uV for .dat/.bin (default: the input's own)")
-    c.add_argument("--chunk-seconds", type=float, default=10.0, help="seconds read at a time (default 10)")
+    c.add_argument("--chunk-seconds", type=_seconds, default=10.0, help="seconds read at a time (default 10)")
+    c.add_argument("--task-seconds", type=_seconds, default=30.0,
+                   help="memory of one cleaning task, in seconds of 4 channels (default 30); raise it when a "
+                        "warning says pieces hold less context than the method needs (stimulation at 1-4 Hz)")
     c.add_argument("--workers", type=int, default=1,
                    help="threads cleaning groups of channels at once (default 1; 0: one per core); same output")
     c.add_argument("--cluster", metavar="ADDRESS",
@@ -258,6 +261,17 @@ def _print_survey(res: dict) -> None:
         print(f"\n{len(res['events'])} event(s) in the file, first: {res['events'][0]}")
 
 
+def _seconds(text: str) -> float:
+    """A positive, finite number of seconds (argparse type: its error names the option)."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
+    if not (v > 0 and v < float("inf")):
+        raise argparse.ArgumentTypeError(f"must be a positive number of seconds, got {text}")
+    return v
+
+
 def _clean(args) -> int:
     from .io.pipeline import clean_recording
 
@@ -268,7 +282,7 @@ def _clean(args) -> int:
     params = cp.get("params", {}) if method == cp.get("method", method) else {}
     out = clean_recording(rec, args.output, channels=channels, method=method, params=params, stim_freq=stim_freq,
                           monitor=monitor, force=args.force, gain_uv=args.gain_uv, chunk_s=args.chunk_seconds,
-                          progress=_Bar(not args.quiet and sys.stderr.isatty()),
+                          max_range_s=args.task_seconds, progress=_Bar(not args.quiet and sys.stderr.isatty()),
                           workers=args.workers, cluster=args.cluster,
                           command="artifactclean " + " ".join(shlex.quote(a) for a in sys.argv[1:]))
     st = out["stimulation"]

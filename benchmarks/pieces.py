@@ -8,7 +8,7 @@ channels is written as float32 NIX by ``clean_recording(max_range_s=...)``
 Prints, per method and channel, the largest difference as a fraction of the
 data's range and where it is.
 
-    python benchmarks/pieces.py [--seconds 50] [--max-range 9] [--method template ...]
+    python benchmarks/pieces.py [--seconds 50] [--max-range 9] [--freq 20] [--dac-rate 1000] [--method template ...]
 """
 
 from __future__ import annotations
@@ -35,9 +35,11 @@ def main(argv=None) -> dict:
     ap.add_argument("--max-range", type=float, default=9.0, help="max_range_s of the file run (s)")
     ap.add_argument("--method", nargs="+", default=list(METHODS))
     ap.add_argument("--seed", type=int, default=6)
+    ap.add_argument("--freq", type=float, default=20.0, help="stimulation frequency (Hz)")
+    ap.add_argument("--dac-rate", type=float, default=1000.0, help="DAC update rate (Hz; 0: no DAC)")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore")
-    rec = simulate_recording(args.seconds, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, heart_depth=0.02,
+    rec = simulate_recording(args.seconds, artifact=ArtifactSpec(freq_hz=args.freq, dac_rate_hz=args.dac_rate or None, heart_depth=0.02,
                                                                  resp_depth=0.01, drift_ppm=40.0, clip_uv=3600.0),
                              blocks=[BlockSpec(1.0, args.seconds - 2.0, ramp_s=1.0)], seed=args.seed)
     span = float(np.ptp(rec.data))
@@ -55,7 +57,8 @@ def main(argv=None) -> dict:
             y = np.asarray(blk.segments[0].analogsignals[0].magnitude, dtype=float).T
             d = np.abs(y - whole) / span
             res[method] = dict(pieces=n_pieces, worst=d.max(axis=1), at_s=np.argmax(d, axis=1) / rec.fs)
-    print(f"{rec.data.shape[0]} channels x {args.seconds:g} s, 20 Hz + 1 kHz DAC, clipped channels "
+    dac = f"{args.dac_rate / 1000:g} kHz DAC" if args.dac_rate else "no DAC"
+    print(f"{rec.data.shape[0]} channels x {args.seconds:g} s, {args.freq:g} Hz + {dac}, clipped channels "
           f"{np.flatnonzero(clipped).tolist()}; file in pieces of <= {args.max_range:g} s against the whole array")
     print(f"{'method':<11} {'pieces':>6}  largest |difference| / range per channel (at s)   goal <= 1e-6")
     for method, r in res.items():
