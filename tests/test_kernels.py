@@ -49,6 +49,42 @@ def test_kernels_match_numpy(rng):
         np.testing.assert_array_equal(a, c)
 
 
+def test_phase_grid_kernels_equal_the_index_arrays_they_replace(rng):
+    # the grid's sums and read-back compute the sampler's and the reader's positions inline: equal to the
+    # bit to phase_sums and grouped_eval on those arrays (the estimator's output must not move), and the
+    # numpy twins (in pieces) agree with them
+    n, n_bins, stride = 7000, 37, 3
+    f_per_sample = 1 / 183.3  # cycles per sample: a cycle is not a whole number of samples
+    u = 5.3 + np.arange(n) * f_per_sample
+    key = np.floor(u[[0, -1]] * n_bins).astype(np.int64)
+    row0 = (key[0] // n_bins) // stride * stride
+    n_rows = int((key[-1] - row0 * n_bins) // n_bins) + 1
+    n_groups = -(-n_rows // stride)
+    grid = K.PhaseGrid(u, row0, n_bins, stride, n_groups, n_rows * n_bins)
+    x = rng.standard_normal((3, n))
+    w = (rng.uniform(size=x.shape) > 0.1).astype(float)
+    gain = 1 + 0.1 * rng.standard_normal(x.shape)
+    gi, ga, inside = grid.sampler()
+    assert inside[0] == 0 and inside.sum() < inside.size  # the grid reaches past the block at both ends
+    for a, b in zip(grid.sums(x, w, gain), K.phase_sums(x, w, gain, gi, ga, inside, n_bins, stride, n_groups)):
+        np.testing.assert_array_equal(a, b)
+    for a, b in zip(grid.sums(x, w, gain, compiled=False), grid.sums(x, w, gain)):
+        np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-10)
+    t = rng.standard_normal((3, n_groups * n_bins))
+    ref = K.grouped_eval(t, n_bins, *grid.reader())
+    np.testing.assert_array_equal(grid.read(t), ref)
+    np.testing.assert_allclose(grid.read(t, compiled=False), ref, rtol=1e-12, atol=1e-12)
+    # phases that are not linear (a free-running DAC's held phases), negative, and on bin edges
+    v = np.sort(np.r_[rng.uniform(-3.0, 9.0, 3000), np.arange(-2, 9) + 0.5 / n_bins, np.arange(-2, 9, dtype=float)])
+    np.testing.assert_array_equal(K.phase_eval(t, n_bins, v, 0, stride, n_groups),
+                                  K.grouped_eval(t, n_bins, *K.phase_position(v, 0, n_bins, stride, n_groups)))
+    flags = rng.uniform(size=t.shape) > 0.97
+    i0, i1, _, b0, b1, _ = grid.reader()
+    half = np.full(n, 0.5)
+    np.testing.assert_array_equal(grid.read_any(flags, piece=1000),
+                                  K.grouped_eval(flags.astype(float), n_bins, i0, i1, half, b0, b1, half) > 0)
+
+
 def test_residual_highpass_flag_widening_and_interpolation_match_scipy_and_numpy(rng):
     from scipy import ndimage, signal
 

@@ -19,7 +19,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
     HAVE_NUMBA = False
 
-__all__ = ["HAVE_NUMBA", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
+__all__ = ["HAVE_NUMBA", "PhaseGrid", "phase_eval", "phase_position", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
            "highpass_residual",
            "lerp_positions", "lerp_rows", "widen_flags"]
 
@@ -95,6 +95,113 @@ def index_dtype(n: int):
     """``int32`` for indices below ``n`` when it fits, else ``int64``: arrays of indices as long as the
     data are a large part of a fit's memory (:attr:`ArtifactEstimator.memory_per_sample`)."""
     return np.int32 if n < 2**31 else np.int64
+
+
+def phase_position(u, row0, n_bins, stride, n_groups):
+    """``(i0, i1, beta, b0, b1, alpha)`` of phases ``u`` (cycles): the two group templates and the two
+    bin centres each phase lies between (row ``row0`` starts group 0), for :func:`grouped_eval`."""
+    uc = u - row0
+    bpos = np.mod(uc, 1.0) * n_bins - 0.5
+    b0f = np.floor(bpos).astype(np.int64)
+    alpha = bpos - b0f
+    dt = index_dtype(n_bins)
+    return group_position(uc, stride, n_groups) + (np.mod(b0f, n_bins).astype(dt), np.mod(b0f + 1, n_bins).astype(dt),
+                                                   alpha)
+
+
+def phase_eval(t, n_bins, u, row0, stride, n_groups, *, out=None, compiled: bool = True, piece: int = 1 << 16):
+    """Templates ``t`` (n_ch, n_groups * n_bins) read back at phases ``u``: :func:`grouped_eval` at
+    :func:`phase_position`, whose arithmetic the compiled loop does inline (no arrays of positions)."""
+    if out is None:
+        out = np.empty((t.shape[0], u.size))
+    if compiled and HAVE_NUMBA:
+        _phase_eval_c(np.ascontiguousarray(t, dtype=np.float64), int(n_bins), np.ascontiguousarray(u, dtype=np.float64),
+                      int(row0), int(stride), int(n_groups), out)
+        return out
+    for lo in range(0, u.size, piece):
+        hi = min(lo + piece, u.size)
+        out[:, lo:hi] = grouped_eval_np(t, n_bins, *phase_position(u[lo:hi], row0, n_bins, stride, n_groups))
+    return out
+
+
+class PhaseGrid:
+    """Where a block's samples meet the template's phase grid, computed from the phase when needed.
+
+    The template resamples each cycle at its bin centres and reads the
+    templates back at every sample's phase. Within a block the phase ``u``
+    (cycles) is linear in samples, so both placements follow from ``u`` and
+    a few numbers: the grid position ``j`` (row ``j // n_bins`` from
+    ``row0``) sits at sample ``(row0 + (j + 0.5) / n_bins - u[0]) / slope``.
+    The compiled kernels compute them inline; the six index and weight
+    arrays of the block's length they replace held 7.5 float64 values per
+    sample, most of a one-channel fit's memory. :meth:`sampler` and
+    :meth:`reader` give the arrays themselves (the numpy twins, and rare
+    paths, use them in pieces); the kernels do the same arithmetic, so the
+    results are equal to the bit.
+
+    Parameters
+    ----------
+    u : ndarray, shape (n,)
+        The block's phase in cycles at each sample (linear, n >= 2).
+    row0 : int
+        The first row (cycle) of the grid.
+    n_bins, stride, n_groups : int
+        Bins per row, rows per template group, groups.
+    n_grid : int
+        Grid positions (rows x bins).
+    """
+
+    def __init__(self, u: np.ndarray, row0: int, n_bins: int, stride: int, n_groups: int, n_grid: int):
+        self.u = u
+        self.row0 = int(row0)
+        self.n_bins, self.stride, self.n_groups, self.n_grid = int(n_bins), int(stride), int(n_groups), int(n_grid)
+        self.slope = (u[-1] - u[0]) / max(u.size - 1, 1)
+
+    @property
+    def n(self) -> int:
+        return self.u.size
+
+    def sampler(self, lo: int = 0, hi: int | None = None):
+        """``(gi, ga, inside)`` of grid positions ``lo..hi``: the sample before each, its weight, and
+        whether it lies within the block."""
+        hi = self.n_grid if hi is None else hi
+        n = self.n
+        u_grid = self.row0 + (np.arange(lo, hi) + 0.5) / self.n_bins
+        n_g = (u_grid - self.u[0]) / self.slope
+        inside = ((n_g >= 0) & (n_g <= n - 1)).astype(np.float64)
+        gi = np.clip(np.floor(n_g).astype(np.int64), 0, n - 2).astype(index_dtype(n))
+        ga = np.clip(n_g - gi, 0.0, 1.0)
+        return gi, ga, inside
+
+    def reader(self, lo: int = 0, hi: int | None = None):
+        """``(i0, i1, beta, b0, b1, alpha)`` of samples ``lo..hi`` (see :func:`phase_position`)."""
+        return phase_position(self.u[lo:hi], self.row0, self.n_bins, self.stride, self.n_groups)
+
+    def sums(self, x, w, gain, *, compiled: bool = True):
+        """:func:`phase_sums` on this grid: (n_ch, n_groups, n_bins) sums of w g r and w g^2."""
+        if not (compiled and HAVE_NUMBA):
+            return phase_sums_np(x, w, gain, *self.sampler(), self.n_bins, self.stride, self.n_groups)
+        s = np.zeros((x.shape[0], self.n_groups * self.n_bins))
+        g = np.zeros_like(s)
+        _grid_sums_c(x, w, gain, float(self.u[0]), float(self.slope), self.row0, self.n_grid, self.n_bins,
+                     self.stride, s, g)
+        return s.reshape(-1, self.n_groups, self.n_bins), g.reshape(-1, self.n_groups, self.n_bins)
+
+    def read(self, t, *, out=None, compiled: bool = True):
+        """The templates ``t`` read back at every sample (:func:`phase_eval`), into ``out`` if given."""
+        return phase_eval(t, self.n_bins, self.u, self.row0, self.stride, self.n_groups, out=out, compiled=compiled)
+
+    def read_any(self, flags, *, compiled: bool = True, piece: int = 1 << 16) -> np.ndarray:
+        """Whether any of the four grid cells each sample is read from is set in ``flags``
+        (n_ch, n_groups * n_bins): True where a flagged cell has any weight."""
+        out = np.empty((flags.shape[0], self.n), dtype=bool)
+        f = flags.astype(np.float64)
+        for lo in range(0, self.n, piece):
+            hi = min(lo + piece, self.n)
+            i0, i1, _, b0, b1, _ = self.reader(lo, hi)
+            half = np.full(hi - lo, 0.5)
+            out[:, lo:hi] = grouped_eval(f, self.n_bins, i0, i1, half, b0, b1, half, compiled=compiled) > 0
+        return out
 
 
 def tick_eval_np(t, key, n_bins, stride, n_groups):
@@ -190,6 +297,26 @@ def _phase_sums_loop(x, w, gain, gi, ga, inside, n_bins, stride, s_out, g_out):
             g_out[ch, k] += wgr * gain[ch, i]
 
 
+def _grid_sums_loop(x, w, gain, u0, slope, row0, n_grid, n_bins, stride, s_out, g_out):
+    # _phase_sums_loop with PhaseGrid.sampler's arithmetic inline, operation for operation
+    n_ch, n = x.shape
+    for j in range(n_grid):
+        ng = ((row0 + (j + 0.5) / n_bins) - u0) / slope
+        inside = 1.0 if (ng >= 0 and ng <= n - 1) else 0.0
+        i = min(max(np.int64(np.floor(ng)), 0), n - 2)
+        a = min(max(ng - i, 0.0), 1.0)
+        row = j // n_bins
+        k = (row // stride) * n_bins + (j - row * n_bins)
+        for ch in range(n_ch):
+            wr = w[ch, i] * w[ch, i + 1] * inside
+            if wr == 0.0:
+                continue
+            r = (1 - a) * x[ch, i] + a * x[ch, i + 1]
+            wgr = wr * gain[ch, i]
+            s_out[ch, k] += wgr * r
+            g_out[ch, k] += wgr * gain[ch, i]
+
+
 def _tick_sums_loop(x, w, gain, key, n_bins, stride, s_out, g_out):
     n_ch, n = x.shape
     for ch in range(n_ch):
@@ -213,6 +340,28 @@ def _grouped_eval_loop(t, n_bins, i0, i1, beta, b0, b1, alpha, out):
             lo = (1 - a) * t[ch, r0 + b0[i]] + a * t[ch, r0 + b1[i]]
             hi = (1 - a) * t[ch, r1 + b0[i]] + a * t[ch, r1 + b1[i]]
             out[ch, i] = (1 - beta[i]) * lo + beta[i] * hi
+
+
+def _phase_eval_loop(t, n_bins, u, row0, stride, n_groups, out):
+    # _grouped_eval_loop at PhaseGrid.reader's positions, computed inline operation for operation
+    last = n_groups - 1
+    for i in range(u.size):
+        uc = u[i] - row0
+        q = uc / stride - 0.5
+        i0 = min(max(np.int64(np.floor(q)), 0), last)
+        beta = min(max(q - i0, 0.0), 1.0)
+        i1 = min(i0 + 1, last)
+        bpos = np.mod(uc, 1.0) * n_bins - 0.5
+        b0f = np.int64(np.floor(bpos))
+        a = bpos - b0f
+        b0 = np.mod(b0f, n_bins)
+        b1 = np.mod(b0f + 1, n_bins)
+        r0 = i0 * n_bins
+        r1 = i1 * n_bins
+        for ch in range(t.shape[0]):
+            lo = (1 - a) * t[ch, r0 + b0] + a * t[ch, r0 + b1]
+            hi = (1 - a) * t[ch, r1 + b0] + a * t[ch, r1 + b1]
+            out[ch, i] = (1 - beta) * lo + beta * hi
 
 
 def _tick_eval_loop(t, key, n_bins, stride, n_groups, out):
@@ -415,6 +564,8 @@ _segment_stats_c = _jit(_segment_stats_loop)
 _quadrature_sums_c = _jit(_quadrature_sums_loop)
 _grouped_eval_c = _jit(_grouped_eval_loop)
 _tick_eval_c = _jit(_tick_eval_loop)
+_grid_sums_c = _jit(_grid_sums_loop)
+_phase_eval_c = _jit(_phase_eval_loop)
 
 
 def _into(res: np.ndarray, out: np.ndarray | None) -> np.ndarray:

@@ -54,8 +54,8 @@ from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, smooth_gain, \
     to_middles
-from ._kernels import (group_position, grouped_eval, index_dtype, lerp_positions, lerp_rows, phase_sums, segment_stats, tick_eval,
-                       tick_sums)
+from ._kernels import (PhaseGrid, group_position, grouped_eval, lerp_positions, lerp_rows, phase_eval, segment_stats,
+                       tick_eval, tick_sums)
 from ..staircase import DacClock
 from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, stretch_bounds, trapezoid
 
@@ -356,7 +356,8 @@ class TemplateSubtraction(CycleEstimator):
     _method_name = "template"
     # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17): phases sampled
     # at bin centres hold their indices and weights per sample; a DAC's ticks need far fewer
-    memory_per_sample = (4.7, 12.0)
+    # shared: 12.0 until session 18, when the phase grid's six index and weight arrays (PhaseGrid) went
+    memory_per_sample = (4.7, 5.5)
     _memory_with_dac = (4.1, 8.9)
     _reads_reference = True
     _dac_periods = True
@@ -476,7 +477,8 @@ class TemplateSubtraction(CycleEstimator):
             key, ticks = ticks, None
         else:
             n_bins = max(4, int(round(fs / f)))
-            key = np.floor(u * n_bins).astype(np.int64)
+            # the grid's first and last rows only: the phase grid places every sample (PhaseGrid)
+            key = np.floor(u[[0, -1]] * n_bins).astype(np.int64)
         # templates are computed every `stride` rows and interpolated between (see _shape);
         # groups start at multiples of `stride` in absolute row numbers, so a piece of a
         # block groups its rows exactly as the whole block does
@@ -493,36 +495,16 @@ class TemplateSubtraction(CycleEstimator):
 
             def read_free(tmpl, tk, out=None):
                 # linear interpolation between bin centres and between groups, at the held phase
-                uh = grid.held_cycles(tk + tick0) - row0
-                bpos = np.mod(uh, 1.0) * n_bins - 0.5
-                b0f = np.floor(bpos).astype(np.int64)
-                return grouped_eval(tmpl, n_bins, *group_position(uh, stride, n_groups), np.mod(b0f, n_bins),
-                                    np.mod(b0f + 1, n_bins), bpos - b0f, out=out, compiled=self.compiled)
+                return phase_eval(tmpl, n_bins, grid.held_cycles(tk + tick0) - row0, 0, stride, n_groups, out=out,
+                                  compiled=self.compiled)
         elif grid is not None:
             # every sample of a DAC tick shares one held value
             base_key = key.copy()
             sampler = None
         else:
-            # resample each cycle at exact bin-centre phases (phase is linear in samples)
-            slope = (u[-1] - u[0]) / max(n - 1, 1)
-            u_grid = row0 + (np.arange(n_grid) + 0.5) / n_bins
-            n_g = (u_grid - u[0]) / slope
-            inside = ((n_g >= 0) & (n_g <= n - 1)).astype(np.float64)  # a weight in every pass
-            gi = np.clip(np.floor(n_g).astype(np.int64), 0, n - 2).astype(index_dtype(n))
-            ga = np.clip(n_g - gi, 0.0, 1.0)
-            sampler = (gi, ga, inside)
-            # arrays of the block's length that all channels share are most of a fit's memory: the
-            # steps towards the sampler and the reader are freed at once (a fifth of it, session 17)
-            del u_grid, n_g
-            # reading back: linear interpolation between bin centres and between groups
-            uc = u - row0
-            bpos = np.mod(uc, 1.0) * n_bins - 0.5
-            b0f = np.floor(bpos).astype(np.int64)
-            alpha = bpos - b0f
-            del bpos
-            reader = group_position(uc, stride, n_groups) + (np.mod(b0f, n_bins).astype(index_dtype(n_bins)),
-                                                             np.mod(b0f + 1, n_bins).astype(index_dtype(n_bins)), alpha)
-            del uc, b0f
+            # resample each cycle at exact bin-centre phases and read the templates back at every sample's
+            # phase: both from the phase, which is linear in samples, computed where the kernels need them
+            sampler = reader = PhaseGrid(u, row0, n_bins, stride, n_groups, n_grid)
             key = None  # the sampler and the reader place every sample: bin keys are for DAC ticks only
         # gain segments: enough per cycle to sample the tracking band
         per_cycle = segments_per_cycle(self.tracking_hz, f)
@@ -592,7 +574,7 @@ class TemplateSubtraction(CycleEstimator):
                 tmpl = self._phase_template(xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride,
                                             complete=complete, failed=failed)
                 # one buffer for every pass: fresh arrays of the data's size cost page faults
-                t_n = grouped_eval(tmpl, n_bins, *reader, out=None if it == 0 else t_n, compiled=self.compiled)
+                t_n = reader.read(tmpl, out=None if it == 0 else t_n, compiled=self.compiled)
             if self.track_amplitude:
                 # the new gain depends only on the template: it overwrites the old one
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
@@ -641,7 +623,7 @@ class TemplateSubtraction(CycleEstimator):
             elif sampler is None:
                 read_d = lambda ch: self._read_ticks(d_tmpl[ch:ch + 1], key, n_bins, stride, n_groups)[0]  # noqa: E731
             else:
-                read_d = lambda ch: grouped_eval(d_tmpl[ch:ch + 1], n_bins, *reader, compiled=self.compiled)[0]  # noqa: E731
+                read_d = lambda ch: reader.read(d_tmpl[ch:ch + 1], compiled=self.compiled)[0]  # noqa: E731
             self._add_phase_term(t_n, xb, w, gain, read_d, fs, f, seg_starts, seg_u, seg_pos, f * per_cycle,
                                  response, seg_env)
             shifted = True
@@ -704,9 +686,8 @@ class TemplateSubtraction(CycleEstimator):
             counts, _ = tick_sums(1.0 - wb, ones, ones, key, n_bins, stride, n_groups, compiled=self.compiled)
             every, _ = tick_sums(ones, ones, ones, key, n_bins, stride, n_groups, compiled=self.compiled)
         else:
-            gi, ga, inside = sampler
-            _, usable = phase_sums(ones, wb, ones, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
-            _, every = phase_sums(ones, ones, ones, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
+            _, usable = sampler.sums(ones, wb, ones, compiled=self.compiled)
+            _, every = sampler.sums(ones, ones, ones, compiled=self.compiled)
             counts = every - usable
         clipped, total = _group_window(counts, k_groups), _group_window(every, k_groups)
         bad = (clipped > 0.5) & (clipped > _CENSOR_SHARE * total)
@@ -716,13 +697,12 @@ class TemplateSubtraction(CycleEstimator):
         """Samples that read any flagged bin of ``bad`` (n_ch, n_groups, n_bins) (between groups and bins)."""
         n_ch = bad.shape[0]
         bad = bad.astype(np.float64).reshape(n_ch, -1)
-        half = np.full(key.size if sampler is None else reader[0].size, 0.5)
-        if sampler is None:
-            row, b = np.divmod(key, n_bins)
-            i0, i1, _ = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
-            return grouped_eval(bad, n_bins, i0, i1, half, b, b, half, compiled=self.compiled) > 0
-        i0, i1, _, b0, b1, _ = reader
-        return grouped_eval(bad, n_bins, i0, i1, half, b0, b1, half, compiled=self.compiled) > 0
+        if sampler is not None:
+            return reader.read_any(bad, compiled=self.compiled)
+        half = np.full(key.size, 0.5)
+        row, b = np.divmod(key, n_bins)
+        i0, i1, _ = group_position(row + (b + 0.5) / n_bins, stride, n_groups)
+        return grouped_eval(bad, n_bins, i0, i1, half, b, b, half, compiled=self.compiled) > 0
 
     def _fill_rails(self, xb, wb, gain, t_n, fill, u, span):
         """Set the rail samples of ``fill`` in ``xb`` to their expectation beyond the rail (Tobit's E-step).
@@ -776,8 +756,7 @@ class TemplateSubtraction(CycleEstimator):
 
     def _phase_template(self, xb, w, gain, sampler, n_groups, n_bins, k_groups, denoise, stride, complete=None,
                         failed=None):
-        gi, ga, inside = sampler
-        s, g = phase_sums(xb, w, gain, gi, ga, inside, n_bins, stride, n_groups, compiled=self.compiled)
+        s, g = sampler.sums(xb, w, gain, compiled=self.compiled)
         return _shape(s, g, n_bins, k_groups, denoise, stride, complete=complete, failed=failed)
 
     def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, trap, seg_env, ramp_hz, seg_first,

@@ -474,7 +474,7 @@ def _task_shape(n_ch: int, length: int, least: int, extra: int, per_sample: tupl
     least ``length``), else one channel. Counting channels only, one channel
     got four times the span, and a 5 or 10 Hz task (one channel, 120 s) held
     2.6 times the memory of a 20 Hz one (4 channels, 30 s): the template's
-    arrays shared by all channels held 21 values per sample (12 now), a
+    arrays shared by all channels held 21 values per sample (5.5 now), a
     channel 4.7.
     The span depends on neither the worker count nor the recording's
     length, so the pieces (and the output, to the bit) do not either.
