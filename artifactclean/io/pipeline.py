@@ -224,13 +224,13 @@ def clean_recording(
         at least four contexts, so the output equals cleaning the whole
         array at once (to float32 for the template, adaptive and comb).
         Where even one channel's piece is shorter than that (the template
-        below about 6 Hz at the default 30 s) a piece may grow to twice the
+        at 4 Hz and below at the default 30 s) a piece may grow to twice the
         budget and its context is cut to a quarter of it; the summary and
         the provenance list every cut (``context_cut``), and below two
-        thirds of the declared context the run warns and names the
-        ``max_range_s`` that keeps it whole: near the piece edges the
-        output then differs from the whole array by up to 1e-5 of the
-        range at 3 Hz and a few microvolts at 2 Hz (4 channels x 240 s).
+        thirds of the declared context (the template below about 2.7 Hz)
+        the run warns and names the ``max_range_s`` that keeps it whole:
+        near the piece edges the output then differs from the whole array
+        (2 Hz, half the context: 0.45 uV, 5e-5 of the range).
     progress : callable(done, total, stage), optional
     workers : int
         Threads cleaning groups of channels at once (0: one per core); with
@@ -347,8 +347,8 @@ def clean_recording(
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
         cuts = _context_cuts(work, lambda blk: _context(est, blk, model, fs), span, fs)
         # every cut is recorded; the run warns below two thirds of the declared context (the template's
-        # three passes, 4 ch x 240 s at 30 s: 4 Hz keeps 0.74 of it and differs from the whole array
-        # by 4e-8 of the range, 3 Hz 0.56 and 1e-5, 2 Hz 0.38 and 3e-4, a few microvolts)
+        # three passes; 4 ch x 240 s, the file against the whole array: keeping 0.73-0.74 of it gave 4e-8
+        # to 8e-8 of the range, 0.56 1e-5, 0.50 5e-5 and 0.38 3e-4, a few microvolts)
         if any(c["kept_s"] < _CUT_WARN * c["context_s"] for c in cuts):
             _warn_context_cuts(cuts, method, max_range_s, extra, per_sample, fs)
         writer = open_writer(output, fs, names, n, gain_uv=gain_uv, groups=groups) \
@@ -538,8 +538,8 @@ def _warn_context_cuts(cuts, method, max_range_s, extra, per_sample, fs) -> None
     more = f" and {len(cuts) - 4} more" if len(cuts) > 4 else ""
     warnings.warn(
         f"'{method}' needs more context than pieces of max_range_s={max_range_s:g} hold: {where}{more}. "
-        f"Near those piece edges the output may differ from cleaning the whole array at once (1e-5 of the "
-        f"range at 3 Hz, microvolts at 2 Hz). For the whole-array result, raise max_range_s to {need:g} (command line: "
+        f"Near those piece edges the output may differ from cleaning the whole array at once (with half "
+        f"the context, 5e-5 of the range). For the whole-array result, raise max_range_s to {need:g} (command line: "
         f"--task-seconds {need:g}); a task then holds about {mib:.0f} MiB per worker",
         stacklevel=3)
 
