@@ -45,6 +45,33 @@ def test_cycle_fft_is_least_squares_harmonic_fit(rng):
     np.testing.assert_allclose(-c.imag, coef[6:11], atol=1e-9)
 
 
+def test_cycle_grid_reads_bin_centres_and_back_in_pieces(rng):
+    # without a DAC the grid's positions come from the phase, a piece at a time (CycleGrid._PIECE):
+    # gathering is linear interpolation of the data at each bin centre's sample position (checked
+    # against numpy.interp), reading back puts a smooth cycle shape back at every sample's phase
+    fs, f, n = 30000.0, 7.3, 200_000  # three pieces and a part
+    u = 0.37 + np.arange(n) * (f / fs)
+    grid = CycleGrid(u, fs, f)
+    x = rng.standard_normal((2, n))
+    w = np.ones_like(x)
+    w[0, 100_000:100_010] = 0.0
+    v, wt = grid.gather(x, w)
+    centres = grid.row0 + (np.arange(grid.n_rows * grid.n_bins) + 0.5) / grid.n_bins
+    pos = (centres - u[0]) / ((u[-1] - u[0]) / (n - 1))
+    inside = (pos >= 0) & (pos <= n - 1)
+    np.testing.assert_allclose(v[1].ravel()[inside], np.interp(pos[inside], np.arange(n), x[1]), rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(wt[1].ravel() > 0, inside)
+    np.testing.assert_array_equal(grid.occupied().ravel(), inside)
+    near = (np.floor(pos) >= 100_000 - 1) & (np.floor(pos) <= 100_009)  # bins read from a lost sample: no weight
+    assert not wt[0].ravel()[near].any() and wt[0].ravel()[inside & ~near].all()
+    shape = np.sin(2 * np.pi * (np.arange(grid.n_bins) + 0.5) / grid.n_bins)
+    rows = np.broadcast_to(shape, (1, grid.n_rows, grid.n_bins))
+    np.testing.assert_allclose(grid.scatter(rows)[0], np.sin(2 * np.pi * u), atol=1e-6)
+    ramp = np.arange(grid.n_rows, dtype=float)[None, :]  # per row, read between the rows' centres
+    mid = slice(int(fs), -int(fs))  # clear of the first and last row centres, where the value is held
+    np.testing.assert_allclose(grid.at_samples(ramp)[0][mid], (u - grid.row0 - 0.5)[mid], atol=1e-9)
+
+
 @pytest.mark.parametrize("method", ["regression", "pca"])
 def test_modulated_20hz_figures(mod20_40s, method):
     y = clean(mod20_40s.data, mod20_40s.fs, stim_freq=20.0, method=method)

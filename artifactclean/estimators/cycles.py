@@ -26,7 +26,7 @@ from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_respo
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
-from ._kernels import grouped_eval, highpass_residual, widen_flags
+from ._kernels import grouped_eval, highpass_residual, phase_eval, widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
@@ -608,35 +608,49 @@ class CycleGrid:
             self.amb_hi = np.flatnonzero(edge > 1 - delta)
         else:
             self.n_bins = max(4, int(round(fs / f)))
-            key = np.floor(u * self.n_bins).astype(np.int64)
+            key = np.floor(u[[0, -1]] * self.n_bins).astype(np.int64)  # the first and last rows only
         self.row0 = int(key[0] // self.n_bins)
         self.key = key - self.row0 * self.n_bins
         self.n_rows = int(self.key[-1] // self.n_bins) + 1
         n_grid = self.n_rows * self.n_bins
-        uc = u - self.row0
+        self.n_grid = n_grid
+        slope = (u[-1] - u[0]) / max(n - 1, 1)
+        self._u = u
+        self._slope = slope
         if dac is None:
-            slope = (u[-1] - u[0]) / max(n - 1, 1)
-            pos = ((np.arange(n_grid) + 0.5) / self.n_bins - uc[0]) / slope
-            self._inside = ((pos >= 0) & (pos <= n - 1)).astype(np.float64)
-            self._gi = np.clip(np.floor(pos).astype(np.int64), 0, max(n - 2, 0))
-            self._ga = np.clip(pos - self._gi, 0.0, 1.0)
-            # reading back: between bin centres within a cycle (periodic) ...
-            bp = np.mod(uc, 1.0) * self.n_bins - 0.5
-            b0 = np.floor(bp).astype(np.int64)
-            self._alpha = bp - b0
-            self._b0, self._b1 = np.mod(b0, self.n_bins), np.mod(b0 + 1, self.n_bins)
+            # the phase is linear in samples: where each bin centre is read from and where each
+            # sample reads the grid back (between bin centres, and between the rows whose centres
+            # bracket it) follow from it, computed in pieces or inline when needed: ten arrays of
+            # the range's length less, most of a one-channel fit's memory (session 18)
+            self.key = None
         else:
+            # reading back: each sample its tick's bin, between the rows whose centres bracket it
+            # (rows fitted one by one differ a little, and switching at cycle edges would leave
+            # steps in the spike band)
             self._b0 = self._b1 = np.mod(self.key, self.n_bins)
             self._alpha = np.zeros(n)
-        # ... and between the rows whose centres bracket the sample: rows fitted one by one
-        # differ a little, and switching at cycle edges would leave steps in the spike band
-        q = uc - 0.5
-        self._r0 = np.clip(np.floor(q).astype(np.int64), 0, self.n_rows - 1)
-        self._r1 = np.minimum(self._r0 + 1, self.n_rows - 1)
-        self._beta = np.clip(q - self._r0, 0.0, 1.0)
+            self._r0, self._r1, self._beta = self._rows_at(u - self.row0)
         # sample index of each row's centre, for envelopes and gains per cycle
-        slope = (u[-1] - u[0]) / max(n - 1, 1)
-        self.row_centres = np.clip(np.round((np.arange(self.n_rows) + 0.5 - uc[0]) / slope), 0, n - 1).astype(np.int64)
+        self.row_centres = np.clip(np.round((np.arange(self.n_rows) + 0.5 - (u[0] - self.row0)) / slope), 0,
+                                   n - 1).astype(np.int64)
+
+    #: samples (or grid positions) per piece where positions are computed from the phase
+    _PIECE = 1 << 16
+
+    def _rows_at(self, uc):
+        """The two rows whose centres bracket each phase ``uc`` (cycles from ``row0``), and the second's weight."""
+        q = uc - 0.5
+        r0 = np.clip(np.floor(q).astype(np.int64), 0, self.n_rows - 1)
+        return r0, np.minimum(r0 + 1, self.n_rows - 1), np.clip(q - r0, 0.0, 1.0)
+
+    def _sampler(self, lo: int, hi: int):
+        """Bin centres ``lo..hi`` of the grid (no DAC): the sample before each, its weight, and whether
+        it lies within the range."""
+        n = self.n
+        pos = ((np.arange(lo, hi) + 0.5) / self.n_bins - (self._u[0] - self.row0)) / self._slope
+        inside = ((pos >= 0) & (pos <= n - 1)).astype(np.float64)
+        gi = np.clip(np.floor(pos).astype(np.int64), 0, max(n - 2, 0))
+        return gi, np.clip(pos - gi, 0.0, 1.0), inside
 
     def occupied(self) -> np.ndarray:
         """Bins (n_rows, n_bins) that hold samples of the range, whatever their weights.
@@ -645,7 +659,11 @@ class CycleGrid:
         the first and last cycles of a range are partial.
         """
         if self.dac is None:
-            return (self._inside > 0).reshape(self.n_rows, self.n_bins)
+            out = np.empty(self.n_grid, dtype=bool)
+            for lo in range(0, self.n_grid, self._PIECE):
+                hi = min(lo + self._PIECE, self.n_grid)
+                out[lo:hi] = self._sampler(lo, hi)[2] > 0
+            return out.reshape(self.n_rows, self.n_bins)
         use = np.ones(self.n)
         use[self.amb_lo] = 0.0
         use[self.amb_hi] = 0.0
@@ -653,17 +671,28 @@ class CycleGrid:
 
     def at_samples(self, per_row: np.ndarray) -> np.ndarray:
         """Values given per row (..., n_rows) at every sample, between the rows' centres as :meth:`scatter` reads."""
-        return per_row[..., self._r0] * (1.0 - self._beta) + per_row[..., self._r1] * self._beta
+        if self.dac is not None:
+            return per_row[..., self._r0] * (1.0 - self._beta) + per_row[..., self._r1] * self._beta
+        out = np.empty(per_row.shape[:-1] + (self.n,))
+        for lo in range(0, self.n, self._PIECE):
+            hi = min(lo + self._PIECE, self.n)
+            r0, r1, beta = self._rows_at(self._u[lo:hi] - self.row0)
+            out[..., lo:hi] = per_row[..., r0] * (1.0 - beta) + per_row[..., r1] * beta
+        return out
 
     def gather(self, x: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Grid values and weights (0 where no usable sample), both (n_channels, n_rows, n_bins)."""
         n_ch = x.shape[0]
         shape = (n_ch, self.n_rows, self.n_bins)
         if self.dac is None:
-            gi, ga = self._gi, self._ga
-            v = x[:, gi] * (1 - ga) + x[:, gi + 1] * ga
-            wt = w[:, gi] * w[:, gi + 1] * self._inside
-            return v.reshape(shape), (wt > 0).astype(np.float64).reshape(shape)
+            v = np.empty((n_ch, self.n_grid))
+            wt = np.empty((n_ch, self.n_grid))
+            for lo in range(0, self.n_grid, self._PIECE):
+                hi = min(lo + self._PIECE, self.n_grid)
+                gi, ga, inside = self._sampler(lo, hi)
+                v[:, lo:hi] = x[:, gi] * (1 - ga) + x[:, gi + 1] * ga
+                wt[:, lo:hi] = (w[:, gi] * w[:, gi + 1] * inside) > 0
+            return v.reshape(shape), wt.reshape(shape)
         use = w.copy()
         use[:, self.amb_lo] = 0.0
         use[:, self.amb_hi] = 0.0
@@ -684,10 +713,11 @@ class CycleGrid:
         values times ``gain`` (n_channels, n) when the grid is at unit level.
         """
         flat = np.ascontiguousarray(grid.reshape(grid.shape[0], -1))
-        read = lambda b0, b1, alpha: grouped_eval(flat, self.n_bins, self._r0, self._r1, self._beta,  # noqa: E731
-                                                  b0, b1, alpha)
-        if self.dac is None or x is None or (self.amb_lo.size == 0 and self.amb_hi.size == 0):
-            return read(self._b0, self._b1, self._alpha)
+        if self.dac is None:
+            # rows are groups of one cycle: the template's read-back at each sample's phase, positions inline
+            return phase_eval(flat, self.n_bins, self._u, self.row0, 1, self.n_rows)
+        if x is None or (self.amb_lo.size == 0 and self.amb_hi.size == 0):
+            return grouped_eval(flat, self.n_bins, self._r0, self._r1, self._beta, self._b0, self._b1, self._alpha)
         out = np.empty((flat.shape[0], self.n))
         ones = np.ones(self.n)
         for ch in range(flat.shape[0]):

@@ -99,8 +99,9 @@ class CyclePCA(RowModelEstimator):
     """
 
     _method_name = "pca"
-    # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17)
-    memory_per_sample = (10.0, 20.0)
+    # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17); without a DAC
+    # the grid's positions come from the phase since session 18 (11.1 -> 8.8 and 19.5 -> 11.8 at 30 s)
+    memory_per_sample = (7.7, 12.3)
     _memory_with_dac = (6.7, 10.8)
 
     def __init__(self, n_components: int = 10, keep_factor: float = 4.0, tracking_hz: float = 10.0,

@@ -91,8 +91,9 @@ class HarmonicRegression(RowModelEstimator):
     """
 
     _method_name = "regression"
-    # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17)
-    memory_per_sample = (10.0, 20.5)
+    # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17); without a DAC
+    # the grid's positions come from the phase since session 18 (10.9 -> 8.6 and 20.4 -> 12.7 at 30 s)
+    memory_per_sample = (7.7, 12.8)
     _memory_with_dac = (6.7, 10.8)
 
     def __init__(self, n_harmonics: int | None = None, tracking_hz: float = 10.0, robust: bool = True,
