@@ -26,7 +26,7 @@ from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_respo
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
-from ._kernels import grouped_eval, highpass_residual, phase_eval, widen_flags
+from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
@@ -629,19 +629,13 @@ class CycleGrid:
             # steps in the spike band)
             self._b0 = self._b1 = np.mod(self.key, self.n_bins)
             self._alpha = np.zeros(n)
-            self._r0, self._r1, self._beta = self._rows_at(u - self.row0)
+            self._r0, self._r1, self._beta = group_position(u - self.row0, 1, self.n_rows)
         # sample index of each row's centre, for envelopes and gains per cycle
         self.row_centres = np.clip(np.round((np.arange(self.n_rows) + 0.5 - (u[0] - self.row0)) / slope), 0,
                                    n - 1).astype(np.int64)
 
     #: samples (or grid positions) per piece where positions are computed from the phase
     _PIECE = 1 << 16
-
-    def _rows_at(self, uc):
-        """The two rows whose centres bracket each phase ``uc`` (cycles from ``row0``), and the second's weight."""
-        q = uc - 0.5
-        r0 = np.clip(np.floor(q).astype(np.int64), 0, self.n_rows - 1)
-        return r0, np.minimum(r0 + 1, self.n_rows - 1), np.clip(q - r0, 0.0, 1.0)
 
     def _sampler(self, lo: int, hi: int):
         """Bin centres ``lo..hi`` of the grid (no DAC): the sample before each, its weight, and whether
@@ -676,7 +670,7 @@ class CycleGrid:
         out = np.empty(per_row.shape[:-1] + (self.n,))
         for lo in range(0, self.n, self._PIECE):
             hi = min(lo + self._PIECE, self.n)
-            r0, r1, beta = self._rows_at(self._u[lo:hi] - self.row0)
+            r0, r1, beta = group_position(self._u[lo:hi] - self.row0, 1, self.n_rows)
             out[..., lo:hi] = per_row[..., r0] * (1.0 - beta) + per_row[..., r1] * beta
         return out
 
