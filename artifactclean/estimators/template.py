@@ -354,9 +354,9 @@ class TemplateSubtraction(CycleEstimator):
     """
 
     _method_name = "template"
-    # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17): phases sampled
-    # at bin centres hold their indices and weights per sample; a DAC's ticks need far fewer
-    # shared: 12.0 until session 18, when the phase grid's six index and weight arrays (PhaseGrid) went
+    # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17); shared 12.0 until
+    # session 18, when the phase grid's index and weight arrays gave way to positions computed inline
+    # (PhaseGrid). A DAC's ticks keep their keys per sample
     memory_per_sample = (4.7, 5.5)
     _memory_with_dac = (4.1, 8.9)
     _reads_reference = True

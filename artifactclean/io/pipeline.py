@@ -533,14 +533,15 @@ def _warn_context_cuts(cuts, method, max_range_s, extra, per_sample, fs) -> None
 
     need = float(np.ceil(max(need_of(c) for c in cuts)))
     mib = need * fs * (4 * a + b) * 8 / 2**20
-    where = ", ".join(f"{c['freq_hz']:g} Hz from {c['start_s']:.0f} s ({c['piece_edges']} edges, "
-                      f"{c['kept_s']:.1f} of {c['context_s']:.1f} s)" for c in cuts[:4])
+    where = ", ".join(("" if c["freq_hz"] is None else f"{c['freq_hz']:g} Hz ")
+                      + f"from {c['start_s']:.0f} s ({c['piece_edges']} edges, {c['kept_s']:.1f} of "
+                      f"{c['context_s']:.1f} s)" for c in cuts[:4])
     more = f" and {len(cuts) - 4} more" if len(cuts) > 4 else ""
     warnings.warn(
         f"'{method}' needs more context than pieces of max_range_s={max_range_s:g} hold: {where}{more}. "
         f"Near those piece edges the output may differ from cleaning the whole array at once (with half "
-        f"the context, 5e-5 of the range). For the whole-array result, raise max_range_s to {need:g} (command line: "
-        f"--task-seconds {need:g}); a task then holds about {mib:.0f} MiB per worker",
+        f"the context, 5e-5 of the range). For the whole-array result, raise max_range_s to {need:g} "
+        f"(command line: --task-seconds {need:g}); a task then holds about {mib:.0f} MiB per worker",
         stacklevel=3)
 
 
