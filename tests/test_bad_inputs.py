@@ -6,6 +6,7 @@ import signal
 import subprocess
 import sys
 import time
+import warnings
 
 import numpy as np
 import pytest
@@ -118,6 +119,19 @@ def test_unlocked_dac_staircase_is_reported_not_hidden():
         warnings.simplefilter("error")
         est = ac.TemplateSubtraction().fit(locked.data, fs=locked.fs, stim_freq=10.0)
     assert est.report_["blocks"][0]["dac_ticks_per_cycle"] == 100
+
+
+def test_stimulation_as_slow_as_the_heartbeat_is_warned():
+    # 1-3 Hz: the heartbeat's sidebands land on the stimulation's harmonics (README input table); the run
+    # says so, once per block, and a 5 Hz block does not
+    rec = simulate_recording(12.0, n_channels=2, artifact=ArtifactSpec(freq_hz=2.0),
+                             blocks=[BlockSpec(0.5, 11.0, ramp_s=1.0)], seed=58)
+    with pytest.warns(UserWarning, match=r"stimulation at 2\.00 Hz: below 4 Hz a heartbeat"):
+        ac.clean(rec.data, rec.fs, method="regression")
+    rec = simulate_recording(6.0, n_channels=2, artifact=ArtifactSpec(freq_hz=5.0), seed=58)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("error", message="stimulation at")
+        ac.clean(rec.data, rec.fs)
 
 
 def test_several_segments_are_named_not_dropped(tmp_path):

@@ -44,6 +44,10 @@ _UNLOCKED_STEPS = 50.0
 #: the count at :func:`artifactclean.staircase.step_rate`'s 8 finds too few (this project's choice: the
 #: built-in scenarios' neural data give none at 6)
 _SMALL_STEPS_Z = 6.0
+#: below this stimulation frequency (Hz) a heartbeat modulates the artifact within a cycle or two and its
+#: sidebands fall on the stimulation's own harmonics (session 18, `benchmarks/acceptance.py --freqs 1 2 3 4`:
+#: within +-3 Hz of the harmonics 2.5-16x the neural power at 1-3 Hz, 0.6-0.9 at 4 Hz)
+_SLOW_HZ = 4.0
 
 #: rows on either side a row estimator fills an unusable bin from (see fill_rows)
 _FILL_ROWS = 15
@@ -540,6 +544,13 @@ class CycleEstimator(ArtifactEstimator):
         if plan is None:
             # the block's stretch for the DAC search lies inside this array
             plan, = self._make_plans(array_reader(xb, offset), [blk], [(offset, offset + xb.shape[1])], fs)
+        if blk.kind == "active" and blk.freq_hz < _SLOW_HZ:
+            warnings.warn(
+                f"stimulation at {blk.freq_hz:.2f} Hz: below {_SLOW_HZ:g} Hz a heartbeat modulates the artifact "
+                "within a cycle or two and its sidebands fall on the stimulation's harmonics, which "
+                f"{type(self).__name__} does not follow (on synthetic sessions the LFP within 3 Hz of the "
+                "harmonics kept 2.5-16x the neural power at 1-3 Hz). Check the result with `artifactclean "
+                "bench` before reading the LFP below 10 Hz", stacklevel=5)
         if plan.unlocked > _UNLOCKED_STEPS:
             warnings.warn(
                 f"a DAC staircase ({plan.unlocked:.0f} steps/s) that is not locked to the {blk.freq_hz:.3f} Hz "
