@@ -46,7 +46,7 @@ def test_cycle_fft_is_least_squares_harmonic_fit(rng):
 
 
 def test_cycle_grid_reads_bin_centres_and_back_in_pieces(rng):
-    # without a DAC the grid's positions come from the phase, a piece at a time (CycleGrid._PIECE):
+    # without a DAC the grid's positions come from the phase, a piece at a time (_kernels.PIECE samples):
     # gathering is linear interpolation of the data at each bin centre's sample position (checked
     # against numpy.interp), reading back puts a smooth cycle shape back at every sample's phase
     fs, f, n = 30000.0, 7.3, 200_000  # three pieces and a part

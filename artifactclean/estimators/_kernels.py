@@ -97,6 +97,16 @@ def index_dtype(n: int):
     return np.int32 if n < 2**31 else np.int64
 
 
+#: samples (or grid positions) per piece where positions are computed from the phase with numpy
+PIECE = 1 << 16
+
+
+def piece_bounds(n: int, piece: int = PIECE):
+    """``(lo, hi)`` of consecutive pieces of ``range(n)``, ``piece`` long (the last shorter)."""
+    for lo in range(0, n, piece):
+        yield lo, min(lo + piece, n)
+
+
 def phase_position(u, row0, n_bins, stride, n_groups):
     """``(i0, i1, beta, b0, b1, alpha)`` of phases ``u`` (cycles): the two group templates and the two
     bin centres each phase lies between (row ``row0`` starts group 0), for :func:`grouped_eval`."""
@@ -109,7 +119,7 @@ def phase_position(u, row0, n_bins, stride, n_groups):
                                                    alpha)
 
 
-def phase_eval(t, n_bins, u, row0, stride, n_groups, *, out=None, compiled: bool = True, piece: int = 1 << 16):
+def phase_eval(t, n_bins, u, row0, stride, n_groups, *, out=None, compiled: bool = True, piece: int = PIECE):
     """Templates ``t`` (n_ch, n_groups * n_bins) read back at phases ``u``: :func:`grouped_eval` at
     :func:`phase_position`, whose arithmetic the compiled loop does inline (no arrays of positions)."""
     if out is None:
@@ -118,8 +128,7 @@ def phase_eval(t, n_bins, u, row0, stride, n_groups, *, out=None, compiled: bool
         _phase_eval_c(np.ascontiguousarray(t, dtype=np.float64), int(n_bins), np.ascontiguousarray(u, dtype=np.float64),
                       int(row0), int(stride), int(n_groups), out)
         return out
-    for lo in range(0, u.size, piece):
-        hi = min(lo + piece, u.size)
+    for lo, hi in piece_bounds(u.size, piece):
         out[:, lo:hi] = grouped_eval_np(t, n_bins, *phase_position(u[lo:hi], row0, n_bins, stride, n_groups))
     return out
 
@@ -191,13 +200,12 @@ class PhaseGrid:
         """The templates ``t`` read back at every sample (:func:`phase_eval`), into ``out`` if given."""
         return phase_eval(t, self.n_bins, self.u, self.row0, self.stride, self.n_groups, out=out, compiled=compiled)
 
-    def read_any(self, flags, *, compiled: bool = True, piece: int = 1 << 16) -> np.ndarray:
+    def read_any(self, flags, *, compiled: bool = True, piece: int = PIECE) -> np.ndarray:
         """Whether any of the four grid cells each sample is read from is set in ``flags``
         (n_ch, n_groups * n_bins): True where a flagged cell has any weight."""
         out = np.empty((flags.shape[0], self.n), dtype=bool)
         f = flags.astype(np.float64)
-        for lo in range(0, self.n, piece):
-            hi = min(lo + piece, self.n)
+        for lo, hi in piece_bounds(self.n, piece):
             i0, i1, _, b0, b1, _ = self.reader(lo, hi)
             half = np.full(hi - lo, 0.5)
             out[:, lo:hi] = grouped_eval(f, self.n_bins, i0, i1, half, b0, b1, half, compiled=compiled) > 0

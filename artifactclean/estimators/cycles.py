@@ -26,7 +26,7 @@ from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_respo
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
-from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, widen_flags
+from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, piece_bounds, widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
@@ -645,9 +645,6 @@ class CycleGrid:
         self.row_centres = np.clip(np.round((np.arange(self.n_rows) + 0.5 - (u[0] - self.row0)) / slope), 0,
                                    n - 1).astype(np.int64)
 
-    #: samples (or grid positions) per piece where positions are computed from the phase
-    _PIECE = 1 << 16
-
     def _sampler(self, lo: int, hi: int):
         """Bin centres ``lo..hi`` of the grid (no DAC): the sample before each, its weight, and whether
         it lies within the range."""
@@ -665,8 +662,7 @@ class CycleGrid:
         """
         if self.dac is None:
             out = np.empty(self.n_grid, dtype=bool)
-            for lo in range(0, self.n_grid, self._PIECE):
-                hi = min(lo + self._PIECE, self.n_grid)
+            for lo, hi in piece_bounds(self.n_grid):
                 out[lo:hi] = self._sampler(lo, hi)[2] > 0
             return out.reshape(self.n_rows, self.n_bins)
         use = np.ones(self.n)
@@ -679,8 +675,7 @@ class CycleGrid:
         if self.dac is not None:
             return per_row[..., self._r0] * (1.0 - self._beta) + per_row[..., self._r1] * self._beta
         out = np.empty(per_row.shape[:-1] + (self.n,))
-        for lo in range(0, self.n, self._PIECE):
-            hi = min(lo + self._PIECE, self.n)
+        for lo, hi in piece_bounds(self.n):
             r0, r1, beta = group_position(self._u[lo:hi] - self.row0, 1, self.n_rows)
             out[..., lo:hi] = per_row[..., r0] * (1.0 - beta) + per_row[..., r1] * beta
         return out
@@ -692,8 +687,7 @@ class CycleGrid:
         if self.dac is None:
             v = np.empty((n_ch, self.n_grid))
             wt = np.empty((n_ch, self.n_grid))
-            for lo in range(0, self.n_grid, self._PIECE):
-                hi = min(lo + self._PIECE, self.n_grid)
+            for lo, hi in piece_bounds(self.n_grid):
                 gi, ga, inside = self._sampler(lo, hi)
                 v[:, lo:hi] = x[:, gi] * (1 - ga) + x[:, gi + 1] * ga
                 wt[:, lo:hi] = (w[:, gi] * w[:, gi + 1] * inside) > 0
