@@ -80,11 +80,11 @@ def test_interrupted_run_leaves_no_output(tmp_path):
                              blocks=[BlockSpec(1.0, 58.0)], seed=57)
     root = write_openephys_binary(tmp_path / "s", rec.data, rec.fs)
     out = tmp_path / "o.dat"
-    # a small task budget: several tasks, so the run goes on after its first piece is written (cleaned
-    # as one task, the file was written only at the end, and the run could finish between two polls)
+    # SIGINT as a terminal gives it: a shell starting the tests in the background ignores SIGINT, a child
+    # inherits that, and Python then installs no handler (the run went on to the end and the test skipped)
     p = subprocess.Popen([sys.executable, "-m", "artifactclean.cli", "clean", str(root), "-o", str(out),
-                          "--stim-freq", "20", "--task-seconds", "3"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                         text=True)
+                          "--stim-freq", "20"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                         preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     # interrupt while the output is being written: its temporary file exists then
     deadline = time.monotonic() + 120
     while not list(tmp_path.glob(".o.dat.partial-*")) and p.poll() is None and time.monotonic() < deadline:
