@@ -81,7 +81,7 @@ def test_phase_grid_kernels_equal_the_index_arrays_they_replace(rng):
     flags = rng.uniform(size=t.shape) > 0.97
     i0, i1, _, b0, b1, _ = grid.reader()
     half = np.full(n, 0.5)
-    np.testing.assert_array_equal(grid.read_any(flags, piece=1000),
+    np.testing.assert_array_equal(grid.read_any(flags.astype(float), piece=1000),
                                   K.grouped_eval(flags.astype(float), n_bins, i0, i1, half, b0, b1, half) > 0)
 
 

@@ -202,13 +202,12 @@ class PhaseGrid:
 
     def read_any(self, flags, *, compiled: bool = True, piece: int = PIECE) -> np.ndarray:
         """Whether any of the four grid cells each sample is read from is set in ``flags``
-        (n_ch, n_groups * n_bins): True where a flagged cell has any weight."""
+        (n_ch, n_groups * n_bins; float64, 1 where set): True where a flagged cell has any weight."""
         out = np.empty((flags.shape[0], self.n), dtype=bool)
-        f = flags.astype(np.float64)
         for lo, hi in piece_bounds(self.n, piece):
             i0, i1, _, b0, b1, _ = self.reader(lo, hi)
             half = np.full(hi - lo, 0.5)
-            out[:, lo:hi] = grouped_eval(f, self.n_bins, i0, i1, half, b0, b1, half, compiled=compiled) > 0
+            out[:, lo:hi] = grouped_eval(flags, self.n_bins, i0, i1, half, b0, b1, half, compiled=compiled) > 0
         return out
 
 
@@ -606,7 +605,10 @@ def tick_eval(t, key, n_bins, stride, n_groups, *, out=None, compiled: bool = Tr
 
 
 def phase_sums(x, w, gain, gi, ga, inside, n_bins, stride, n_groups, *, compiled: bool = True):
-    """Grouped phase-grid sums (n_ch, n_groups, n_bins): see :func:`phase_sums_np`."""
+    """Grouped phase-grid sums (n_ch, n_groups, n_bins): see :func:`phase_sums_np`.
+
+    On explicit position arrays; the estimators use :meth:`PhaseGrid.sums`, which computes them
+    inline, and the tests hold it to this one to the bit."""
     if not (compiled and HAVE_NUMBA):
         return phase_sums_np(x, w, gain, gi, ga, inside, n_bins, stride, n_groups)
     s = np.zeros((x.shape[0], n_groups * n_bins))
