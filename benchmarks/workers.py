@@ -5,7 +5,12 @@
   ``--repeat``; the outputs must be equal;
 * an Open Ephys binary file of the same: ``clean_recording`` with 1 and 2
   worker threads, and on a ``dask.distributed.LocalCluster`` of 2 worker
-  processes (skipped without dask); the ``.dat`` files must be equal.
+  processes (skipped without dask); the ``.dat`` files must be equal;
+* the machine's own ceiling, timed in turns with the array runs: a compiled
+  loop with no serial part and no memory traffic, twice on one thread
+  against once on each of two (skipped without numba). On a virtual machine
+  whose two cores share a host this is below 2, and the most any cleaning
+  can gain from a second worker at that moment.
 
     python benchmarks/workers.py [--channels 16] [--seconds 20] [--repeat 3]
 """
@@ -21,20 +26,54 @@ from pathlib import Path
 import numpy as np
 
 
-def best_pair(fn1, fn2, repeat: int):
-    """Best times of ``fn1`` and ``fn2`` run in turns, and their last outputs.
+def best_in_turns(fns, repeat: int):
+    """Best time of each function in ``fns``, run in turns ``repeat`` times, and their last outputs.
 
-    Alternating keeps both runs under the same load on a shared machine (run
+    Alternating keeps every run under the same load on a shared machine (run
     back to back, one worker's times drifted 1.5-3.4 s within one run while
     the other core's load changed).
     """
-    times, outs = ([], []), [None, None]
+    times, outs = [[] for _ in fns], [None] * len(fns)
     for _ in range(repeat):
-        for k, fn in enumerate((fn1, fn2)):
+        for k, fn in enumerate(fns):
             t0 = time.perf_counter()
             outs[k] = fn()
             times[k].append(time.perf_counter() - t0)
-    return min(times[0]), min(times[1]), outs[0], outs[1]
+    return [min(t) for t in times], outs
+
+
+def best_pair(fn1, fn2, repeat: int):
+    """:func:`best_in_turns` of two functions: both best times, then both outputs."""
+    (t1, t2), (y1, y2) = best_in_turns((fn1, fn2), repeat)
+    return t1, t2, y1, y2
+
+
+def ceiling_loops(seconds: float = 0.5):
+    """Two runs of a compute-bound compiled loop, on one thread and on two (None without numba).
+
+    The loop has no serial part and no memory traffic: the ratio of the two
+    times is what this machine gives to a second thread at that moment (on a
+    virtual machine whose cores share a host, less than 2).
+    """
+    try:
+        import numba
+    except ImportError:
+        return None
+    from concurrent.futures import ThreadPoolExecutor
+
+    @numba.njit(nogil=True, cache=False)
+    def spin(n):
+        s = 0.0
+        for i in range(n):
+            s += np.sin(i * 1e-3)
+        return s
+
+    spin(10)  # compile outside the timing
+    t0 = time.perf_counter()
+    spin(1_000_000)
+    n = max(1_000_000, int(seconds / max(time.perf_counter() - t0, 1e-6) * 1_000_000))
+    pool = ThreadPoolExecutor(max_workers=2)
+    return (lambda: (spin(n), spin(n))), (lambda: list(pool.map(spin, (n, n))))
 
 
 def main(argv=None) -> dict:
@@ -57,9 +96,13 @@ def main(argv=None) -> dict:
                              seed=3)
     x = rec.data
     clean(x[:2, : int(5 * rec.fs)], rec.fs, method=args.method)  # compile the kernels outside the timing
-    t1, t2, y1, y2 = best_pair(lambda: clean(x, rec.fs, method=args.method, workers=1),
-                               lambda: clean(x, rec.fs, method=args.method, workers=2), args.repeat)
-    res = dict(array=dict(one=t1, two=t2, equal=bool(np.array_equal(y1, y2))))
+    runs = [lambda: clean(x, rec.fs, method=args.method, workers=1),
+            lambda: clean(x, rec.fs, method=args.method, workers=2)]
+    loops = ceiling_loops(0.05 * args.seconds * args.channels / 16)  # a pair about as long as a run
+    # the machine's ceiling in turns with the array runs: the same load for both
+    times, (y1, y2, *_) = best_in_turns(runs + list(loops or ()), args.repeat)
+    res = dict(array=dict(one=times[0], two=times[1], equal=bool(np.array_equal(y1, y2))),
+               ceiling=None if loops is None else times[2] / times[3])
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         fs = rec.fs
@@ -91,6 +134,8 @@ def main(argv=None) -> dict:
     if res["dask"] is not None:
         print(f"{'file, dask LocalCluster 2 procs':<34} {res['dask']['one'] / res['dask']['seconds']:>21.2f} "
               f"{str(res['dask']['equal']):>12}")
+    if res["ceiling"] is not None:
+        print(f"{'compiled loop, 2 threads (ceiling)':<34} {res['ceiling']:>21.2f} {'-':>12}")
     return res
 
 

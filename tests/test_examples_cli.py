@@ -52,7 +52,7 @@ def test_benchmark_prints_ratios():
 
 @pytest.mark.parametrize("script, args, expect", [
     ("files.py", ["--seconds", "8", "--channels", "2"], "peak memory of clean, 4x / 1x"),
-    ("workers.py", ["--channels", "4", "--seconds", "6", "--repeat", "1"], "file, 2 worker threads"),
+    ("workers.py", ["--channels", "4", "--seconds", "6", "--repeat", "1"], "compiled loop, 2 threads"),
     ("profile_default.py", ["--seconds", "6", "--top", "5"], "own share"),
     ("acceptance.py", ["--seconds", "6", "--freqs", "40", "--dac-rate", "5000"], "DAC rows at 5000 Hz"),
     ("pieces.py", ["--seconds", "8", "--max-range", "3", "--method", "template", "comb"], "template"),
