@@ -13,9 +13,10 @@ up to 8 times the neural power there).
 
 Here the harmonics are modelled instead of filtered. The fundamental, strong
 and within the band the gain always follows, gives the heartbeat's phase
-``phi(t)`` and amplitude ``a(t)`` (a complex band-pass around the heart rate,
-on the gain of the plan's reference channel, whose neural floor is the
-lowest); harmonic ``h`` of a channel is ``Re(k B_h a(t) exp(i h phi(t)))``:
+``phi(t)`` and amplitude ``a(t)`` (a complex band-pass around the heart rate
+on the gains of up to four channels, weighted so that the neural floors they
+share cancel, :func:`pool_weights`; or on the plan's reference channel alone,
+whose floor is the lowest); harmonic ``h`` of a channel is ``Re(k B_h a(t) exp(i h phi(t)))``:
 ``k`` is how strongly the channel carries the reference's fundamental, ``B_h``
 the pulse's shape, one per block, fitted on the block's plan (least squares on
 seconds of gain samples, pooled over channels: the neural floor enters
@@ -35,12 +36,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage, signal
+from scipy import linalg, ndimage, signal
 
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from .modulation import _FOOT, _MAX_BOOST, plateau_level
 
-__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "join_tracks"]
+__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "join_tracks", "pool_weights"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -61,6 +62,12 @@ _HEART_LINE = 4.0
 _SIGNIFICANCE = 5.0
 #: harmonics modelled at most (2 ... this + 1)
 _MAX_HARMONICS = 8
+#: channels whose gains are pooled for the heartbeat's phase at most (this project's choice: each is read
+#: over every block again for the track)
+_POOL_MAX = 4
+#: diagonal loading of the floors' cross-spectrum in :func:`pool_weights`, a fraction of its mean diagonal
+#: (this project's choice; 0.05-0.2 gave the same phase errors within 0.01 rad on the acceptance traces)
+_POOL_LOADING = 0.2
 
 
 @dataclass
@@ -89,17 +96,30 @@ class PulseModel:
     #: block's reference sample, amplitude and unwrapped phase; with it the reference's gain is not needed
     #: where the model is applied
     track: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+    #: complex weight of each channel's gain in the heartbeat's fundamental (:func:`pool_weights`; 0 for
+    #: channels left out); None: the reference's gain alone
+    weights: np.ndarray | None = None
+
+    def pooled(self) -> list[int]:
+        """The channels the heartbeat's fundamental is read from."""
+        if self.weights is None:
+            return [int(self.ref)]
+        return [int(c) for c in np.flatnonzero(self.weights)]
 
     def rows(self, rows) -> "PulseModel | None":
-        """The model of channels ``rows`` only; None if it needs the reference and that is not one of them."""
+        """The model of channels ``rows`` only; None if it needs channels that are not among them."""
         rows = list(rows)
-        if self.ref not in rows:
-            return None if self.track is None else PulseModel(self.heart_hz, self.coefs[rows], -1, self.track)
-        return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref), self.track)
+        if self.track is not None:
+            return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref) if self.ref in rows else -1,
+                              self.track)
+        if not set(self.pooled()) <= set(rows):
+            return None
+        return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref), None,
+                          None if self.weights is None else self.weights[rows])
 
     def with_track(self, track: tuple[np.ndarray, np.ndarray, np.ndarray] | None) -> "PulseModel":
         """The same model with the heartbeat's fundamental read from ``track`` (see :func:`join_tracks`)."""
-        return PulseModel(self.heart_hz, self.coefs, self.ref, track)
+        return PulseModel(self.heart_hz, self.coefs, self.ref, track, self.weights)
 
     def harmonics(self) -> list[int]:
         """The harmonic numbers modelled on any channel."""
@@ -140,6 +160,11 @@ class PulseModel:
             else:
                 dev = np.where(envelope < _FOOT, 0.0, ref_gain / level - envelope)
             amp, ph = _amplitude_phase(dev, rate, self.heart_hz)
+        return self._evaluate(amp, ph, rate, n_rows)
+
+    def _evaluate(self, amp: np.ndarray, ph: np.ndarray, rate: float,
+                  n_rows: int | None) -> tuple[np.ndarray, np.ndarray]:
+        """The harmonics, fitted and carried (see :meth:`relative`), from the fundamental's amplitude and phase."""
         hs = np.arange(2, self.coefs.shape[1] + 2)
         n_rows = self.coefs.shape[0] if n_rows is None else n_rows
         coefs = self.coefs[np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)] * (hs * self.heart_hz < 0.45 * rate)
@@ -152,10 +177,10 @@ class PulseModel:
               scale=None, times: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """The pulse's harmonics in each gain sequence (one per row of the model), fitted and carried.
 
-        As :meth:`relative`: from the track at ``times``, or the reference
-        read from its row of ``gain``; ``scale`` is each sequence's plateau
-        level (one, or one per row; the plateau medians by default), by
-        which the relative harmonics are multiplied.
+        As :meth:`relative`: from the track at ``times``, or from the rows
+        of ``gain`` the fundamental is read from (:meth:`pooled`); ``scale``
+        is each sequence's plateau level (one, or one per row; the plateau
+        medians by default), by which the relative harmonics are multiplied.
         """
         gain = np.atleast_2d(gain)
         ref = min(max(self.ref, 0), gain.shape[0] - 1)
@@ -164,8 +189,17 @@ class PulseModel:
                                for row in gain])
         else:
             levels = np.broadcast_to(np.atleast_1d(np.asarray(scale, dtype=np.float64)), (gain.shape[0],))
-        fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0],
-                                      times=times)
+        if self.weights is not None and (self.track is None or times is None):
+            # the fundamental pooled over channels, read as :meth:`relative` reads the reference's
+            lv = np.where(levels != 0, levels, 1.0)[:, None]
+            dev = gain / lv - (1.0 if envelope is None else envelope[None, :])
+            if envelope is not None:
+                dev[:, envelope < _FOOT] = 0.0
+            amp, ph = _smooth_fundamental(_pooled_analytic(dev, rate, self.heart_hz, self.weights), rate)
+            fitted, whole = self._evaluate(amp, ph, rate, gain.shape[0])
+        else:
+            fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0],
+                                          times=times)
         return fitted * levels[:, None], whole * levels[:, None]
 
 
@@ -182,11 +216,16 @@ def _band(heart_hz: float, rate: float) -> np.ndarray:
     return lp * np.exp(2j * np.pi * heart_hz * t)
 
 
-def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    """Amplitude ``a(t)`` and unwrapped phase ``phi(t)`` of the heartbeat's fundamental in ``dev``."""
+def _analytic(dev: np.ndarray, rate: float, heart_hz: float) -> np.ndarray:
+    """The heartbeat's fundamental in ``dev`` (rows, or one sequence) as a complex band-passed signal."""
     taps = _band(heart_hz, rate)
     # a real cosine of amplitude A gives A/2 exp(i phi): the harmonics' coefficients are relative to A/2
-    c = ndimage.convolve1d(dev, taps.real, mode="nearest") + 1j * ndimage.convolve1d(dev, taps.imag, mode="nearest")
+    return (ndimage.convolve1d(dev, taps.real, axis=-1, mode="nearest")
+            + 1j * ndimage.convolve1d(dev, taps.imag, axis=-1, mode="nearest"))
+
+
+def _smooth_fundamental(c: np.ndarray, rate: float) -> tuple[np.ndarray, np.ndarray]:
+    """Amplitude and unwrapped phase of the complex fundamental ``c``, smoothed to :data:`_SMOOTH_HZ`."""
     # the band holds neural floor besides the line; the heartbeat's rate and strength change more slowly than
     # that floor, so phase and amplitude are smoothed further (a linear phase passes a symmetric FIR unchanged)
     lp = signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(_SMOOTH_HZ, 0.45 * rate), fs=rate)
@@ -196,15 +235,102 @@ def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.
     return amp, ph
 
 
-def fundamental(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.ndarray, np.ndarray]:
+def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """Amplitude ``a(t)`` and unwrapped phase ``phi(t)`` of the heartbeat's fundamental in ``dev``."""
+    return _smooth_fundamental(_analytic(dev, rate, heart_hz), rate)
+
+
+def _pooled_analytic(dev: np.ndarray, rate: float, heart_hz: float, weights: np.ndarray) -> np.ndarray:
+    """``sum(conj(w) c)`` over the rows of ``dev`` with a weight (:func:`pool_weights`)."""
+    use = np.flatnonzero(weights)
+    return np.conj(weights[use]) @ _analytic(np.atleast_2d(dev)[use], rate, heart_hz)
+
+
+def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
+                 fit: slice | None = None, pool=None) -> np.ndarray | None:
+    """Weights that read one heartbeat's fundamental from several channels' gains, their floors cancelling.
+
+    Each channel's relative gain carries the same heartbeat (``k_c`` times
+    the reference's, ``k_ref = 1``) over a floor of its own: the neural
+    signal beside the stimulation's harmonics, divided by that channel's
+    artifact amplitude. Nearby channels share most of their LFP and their
+    artifacts differ in size and sign, so the floors are correlated and a
+    weighted sum cancels much of them. With ``S`` the floors' cross-spectrum
+    (bins between 0.5 and 0.7, and 1.3 and 1.5 times the heart rate: beside
+    the line and its wander, below its second harmonic) and ``C`` the
+    covariance of the band-passed fundamentals (heartbeat plus floor), the
+    top generalised eigenvector ``v`` of ``(C, S)`` is ``S^-1 k`` up to a
+    scale, the minimum-variance weights for a common signal of loadings ``k
+    = S v`` (Capon 1969, Proc. IEEE 57; generalised least squares). At most
+    :data:`_POOL_MAX` channels of ``pool`` (indices; all by default), those
+    whose own line stands highest over their floor; ``S`` is loaded by :data:`_POOL_LOADING` of its mean
+    diagonal, as it comes from a few bins of seconds of data.
+
+    Returns
+    -------
+    ndarray of complex, shape (n_channels,) or None
+        ``w`` with ``w^H k = 1`` (0 for channels left out), so that
+        ``sum(conj(w) c)`` reads the reference's fundamental; None for one
+        channel, or where the floor cannot be estimated.
+    """
+    dev = np.atleast_2d(dev)
+    n_ch = dev.shape[0]
+    if n_ch < 2:
+        return None
+    part = dev if fit is None else dev[:, fit]
+    nper = min(part.shape[1], int(4 * rate)) // 2 * 2
+    if nper < 16:
+        return None
+    fz, _, z = signal.stft(part, fs=rate, nperseg=nper, noverlap=nper // 2, detrend="linear",
+                           boundary=None, padded=False)
+    off = ((fz >= 0.5 * heart_hz) & (fz <= 0.7 * heart_hz)) | ((fz >= 1.3 * heart_hz) & (fz <= 1.5 * heart_hz))
+    on = np.abs(fz - heart_hz) <= _WIDTH * heart_hz
+    if not off.any() or not on.any():
+        return None
+    zo = z[:, off, :].reshape(n_ch, -1)
+    zl = z[:, on, :].reshape(n_ch, -1)
+    floor = (zo @ zo.conj().T) / zo.shape[1]
+    line = (zl @ zl.conj().T) / zl.shape[1]
+    diag_f = np.maximum(np.real(np.diag(floor)), 1e-300)
+    # the strongest lines over their own floors, the reference always among them
+    snr = np.real(np.diag(line)) / diag_f
+    allowed = set(range(n_ch)) if pool is None else {int(c) for c in pool}
+    order = [ref] + [int(c) for c in np.argsort(snr)[::-1] if c != ref and c in allowed]
+    if len(order) < 2:
+        return None
+    use = np.array(sorted(order[:_POOL_MAX]))
+    s_use = floor[np.ix_(use, use)]
+    s_use = s_use + _POOL_LOADING * np.mean(diag_f[use]) * np.eye(use.size)
+    try:
+        _, vecs = linalg.eigh(line[np.ix_(use, use)], s_use)
+    except (linalg.LinAlgError, ValueError):
+        return None
+    v = vecs[:, -1]
+    k = s_use @ v
+    r = int(np.flatnonzero(use == ref)[0])
+    if abs(k[r]) <= 1e-12 * np.abs(k).max():
+        return None
+    k = k / k[r]
+    w = np.zeros(n_ch, dtype=np.complex128)
+    w[use] = v / np.conj(np.vdot(v, k))
+    return w
+
+
+def fundamental(dev: np.ndarray, rate: float, heart_hz: float,
+                weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Amplitude and unwrapped phase of the heartbeat's fundamental in a relative gain deviation ``dev``.
 
     ``dev`` is a reference channel's gain over its plateau level, less the
     block's envelope (0 where the envelope is below the foot), ``rate``
-    samples a second. The first :data:`PULSE_HALF_S` s at each end hold
-    the edge values: a track is read away from them, or from a whole block.
+    samples a second; or, with ``weights`` (:func:`pool_weights`, one per
+    row), such rows of several channels, pooled. The first
+    :data:`PULSE_HALF_S` s at each end hold the edge values: a track is
+    read away from them, or from a whole block.
     """
-    return _amplitude_phase(np.asarray(dev, dtype=np.float64), rate, heart_hz)
+    dev = np.asarray(dev, dtype=np.float64)
+    if weights is None:
+        return _amplitude_phase(dev, rate, heart_hz)
+    return _smooth_fundamental(_pooled_analytic(dev, rate, heart_hz, np.asarray(weights)), rate)
 
 
 def join_tracks(parts, heart_hz: float, fs: float) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
@@ -229,13 +355,15 @@ def join_tracks(parts, heart_hz: float, fs: float) -> tuple[np.ndarray, np.ndarr
     return np.concatenate(ts), np.concatenate(amps), np.concatenate(phs)
 
 
-def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray) -> np.ndarray:
-    """``a(t) exp(i h phi(t))`` for each harmonic number in ``hs``, from the fundamental of ``dev``."""
-    amp, ph = _amplitude_phase(dev, rate, heart_hz)
+def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray,
+                weights: np.ndarray | None = None) -> np.ndarray:
+    """``a(t) exp(i h phi(t))`` for each harmonic number in ``hs``, from the fundamental of ``dev``
+    (one row, or rows pooled with ``weights``)."""
+    amp, ph = fundamental(dev, rate, heart_hz, weights)
     return amp[None, :] * np.exp(1j * np.asarray(hs)[:, None] * ph[None, :])
 
 
-def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0) -> PulseModel | None:
+def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None) -> PulseModel | None:
     """Find a heartbeat in ``gain`` and fit its harmonics' ratios to its fundamental.
 
     Parameters
@@ -249,7 +377,10 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0) -> 
         Highest modulation frequency the gain may follow: harmonics beyond it
         are not modelled.
     ref : int
-        Row whose fundamental gives the heartbeat's phase to all.
+        Row whose fundamental gives the heartbeat's phase to all, with those
+        of up to :data:`_POOL_MAX` - 1 more rows of ``pool`` (indices; all
+        by default; leave out clipped channels, whose gains show the rails'
+        edges) where they can be pooled (:func:`pool_weights`).
 
     Returns
     -------
@@ -290,7 +421,10 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0) -> 
     fit = slice(edge, n - edge) if n - 2 * edge >= 4 * rate else slice(0, n)
     t_fit = (fit.stop - fit.start) / rate
     hs = np.arange(1, n_harm + 2)
-    r = _regressors(dev[ref], rate, heart, hs)[:, fit]
+    # the heartbeat's phase from every strong channel, their shared floor cancelled; the reference's alone
+    # where it cannot be pooled
+    weights = pool_weights(dev, rate, heart, ref, fit, pool)
+    r = _regressors(dev[ref] if weights is None else dev, rate, heart, hs, weights)[:, fit]
     design = np.concatenate((r.real, r.imag)).T
     amp2 = np.mean(np.abs(r[0]) ** 2)  # a(t)^2: the same for every harmonic
     # each channel's fit: its fundamental relative to the reference's (k) and its harmonics (beta)
@@ -320,4 +454,4 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0) -> 
     coefs = k[:, None] * (shape * shrink)[None, :]
     if not np.any(coefs != 0):
         return None
-    return PulseModel(heart, coefs, int(ref))
+    return PulseModel(heart, coefs, int(ref), weights=weights)

@@ -334,7 +334,7 @@ class CycleEstimator(ArtifactEstimator):
 
         def part(job):
             i, ab = job
-            return self._heart_part(read, blocks[i], fs, bounds[i], stretch[i][0], stretch[i][3].pulse.heart_hz, ab)
+            return self._heart_part(read, blocks[i], fs, bounds[i], stretch[i][3].pulse, ab)
 
         for (i, _), res in zip(jobs, mapper(part, jobs)):
             done[i].append(res)
@@ -357,34 +357,36 @@ class CycleEstimator(ArtifactEstimator):
             decided.setdefault(i, []).extend(part)
         return [BlockPlan(*stretch[i][:4], decided.get(i), stretch[i][4]) for i in range(len(blocks))]
 
-    def _heart_part(self, read, blk, fs, bounds, ref, heart_hz, part):
-        """One part of the heartbeat's track (rate ``heart_hz``) over a block's work range ``bounds``:
-        ``(positions, amplitude, phase)`` of the fundamental at positions (samples) from
-        ``blk.ref_sample`` within ``part = (a, b)`` (see :func:`_track_parts`), for
-        :func:`artifactclean.pulse.join_tracks`.
+    def _heart_part(self, read, blk, fs, bounds, pulse, part):
+        """One part of the heartbeat's track (the plan's :class:`~artifactclean.pulse.PulseModel`
+        ``pulse``) over a block's work range ``bounds``: ``(positions, amplitude, phase)`` of the
+        fundamental at positions (samples) from ``blk.ref_sample`` within ``part = (a, b)`` (see
+        :func:`_track_parts`), for :func:`artifactclean.pulse.join_tracks`.
 
-        Read from channel ``ref``'s raw gain (as the plan's pulse model was
-        fitted) over the part with twice
+        Read from the raw gains of the channels the model pools (or its
+        reference's; as the model was fitted) over the part with twice
         :data:`~artifactclean.pulse.PULSE_HALF_S` on each side (the band-pass
         and the smoothing), so memory follows :data:`_TRACK_S` and not the
         block's length.
         """
+        heart_hz, rows = pulse.heart_hz, pulse.pooled()
         s, e = bounds
         a, b = part
         f = blk.freq_hz
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         margin = int(2 * PULSE_HALF_S * fs) + int(fs / f) + 1
         lo, hi = max(s, a - margin), min(e, b + margin)
-        x = np.asarray(read(lo, hi, [ref]), dtype=np.float64)
+        x = np.asarray(read(lo, hi, rows), dtype=np.float64)
         cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
         # segment k covers cycles [first + k, first + k + 1) / per_cycle
         centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
         t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
         env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
-        level = float(plateau_level(raw, env)[0]) or 1.0
-        dev = np.where(env < _FOOT, 0.0, raw[0] / level - env)
-        amp, ph = fundamental(dev, rate, heart_hz)
+        level = plateau_level(raw, env)
+        dev = np.where(env < _FOOT, 0.0, raw / np.where(level != 0, level, 1.0)[:, None] - env)
+        weights = None if pulse.weights is None else pulse.weights[rows]
+        amp, ph = fundamental(dev if weights is not None else dev[0], rate, heart_hz, weights)
         keep = (t >= a) & (t < b)
         # positions from the block's reference sample: a window of the recording (a file piece) keeps them
         return t[keep] - blk.ref_sample, amp[keep], ph[keep]
@@ -459,7 +461,8 @@ class CycleEstimator(ArtifactEstimator):
             raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
             # a pulsatile heartbeat's harmonics are modelled from its fundamental's phase; the response is
             # designed without them, so it passes neither them nor the floor under them
-            pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref) if getattr(self, "model_pulse", False) else None
+            pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact)) \
+                if getattr(self, "model_pulse", False) else None
             if pulse is not None:
                 raw = raw - pulse.parts(raw, rate)[0]
             response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
