@@ -41,7 +41,7 @@ from scipy import linalg, ndimage, signal
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from .modulation import _FOOT, _MAX_BOOST, plateau_level
 
-__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "join_tracks", "pool_weights"]
+__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "join_tracks", "pool_weights"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -331,6 +331,30 @@ def fundamental(dev: np.ndarray, rate: float, heart_hz: float,
     if weights is None:
         return _amplitude_phase(dev, rate, heart_hz)
     return _smooth_fundamental(_pooled_analytic(dev, rate, heart_hz, np.asarray(weights)), rate)
+
+
+def fundamental_of_rows(rows, heart_hz: float,
+                        weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`fundamental` of relative gain deviations that arrive one channel at a time.
+
+    ``rows`` yields ``(positions, rate, dev)`` per channel, in the order of
+    the nonzero ``weights`` (one row without weights), all on the same
+    positions; each row's band-passed fundamental is added in as it comes,
+    so only one row is held at a time. Returns the positions, amplitude
+    and unwrapped phase.
+    """
+    use = None if weights is None else np.asarray(weights)[np.flatnonzero(weights)]
+    total, pos, rate = None, None, None
+    for k, (pos, rate, dev) in enumerate(rows):
+        if use is None:
+            amp, ph = _amplitude_phase(np.asarray(dev, dtype=np.float64), rate, heart_hz)
+            return pos, amp, ph
+        c = np.conj(use[k]) * _analytic(np.asarray(dev, dtype=np.float64), rate, heart_hz)
+        total = c if total is None else total + c
+    if total is None:
+        raise ValueError("no rows to read the heartbeat's fundamental from")
+    amp, ph = _smooth_fundamental(total, rate)
+    return pos, amp, ph
 
 
 def join_tracks(parts, heart_hz: float, fs: float) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:

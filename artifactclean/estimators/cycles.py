@@ -21,7 +21,7 @@ from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..stimulation import ramp_level
-from ..pulse import PULSE_HALF_S, fit_pulse, fundamental, join_tracks
+from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, join_tracks
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
@@ -376,17 +376,23 @@ class CycleEstimator(ArtifactEstimator):
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         margin = int(2 * PULSE_HALF_S * fs) + int(fs / f) + 1
         lo, hi = max(s, a - margin), min(e, b + margin)
-        x = np.asarray(read(lo, hi, rows), dtype=np.float64)
         cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
-        # segment k covers cycles [first + k, first + k + 1) / per_cycle
-        centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
-        t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
-        env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
-        level = plateau_level(raw, env)
-        dev = np.where(env < _FOOT, 0.0, raw / np.where(level != 0, level, 1.0)[:, None] - env)
+
+        def deviations():
+            # one channel at a time: the track's memory is one channel's whatever the pool
+            for row in rows:
+                x = np.asarray(read(lo, hi, [row]), dtype=np.float64)
+                raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+                del x
+                # segment k covers cycles [first + k, first + k + 1) / per_cycle
+                centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
+                t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
+                env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
+                level = float(plateau_level(raw, env)[0]) or 1.0
+                yield t, rate, np.where(env < _FOOT, 0.0, raw[0] / level - env)
+
         weights = None if pulse.weights is None else pulse.weights[rows]
-        amp, ph = fundamental(dev if weights is not None else dev[0], rate, heart_hz, weights)
+        t, amp, ph = fundamental_of_rows(deviations(), heart_hz, weights)
         keep = (t >= a) & (t < b)
         # positions from the block's reference sample: a window of the recording (a file piece) keeps them
         return t[keep] - blk.ref_sample, amp[keep], ph[keep]
