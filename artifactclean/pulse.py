@@ -41,7 +41,8 @@ from scipy import linalg, ndimage, signal
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from .modulation import _FOOT, _MAX_BOOST, plateau_level
 
-__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "join_tracks", "pool_weights"]
+__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "join_tracks",
+           "pool_weights"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -195,8 +196,7 @@ class PulseModel:
             dev = gain / lv - (1.0 if envelope is None else envelope[None, :])
             if envelope is not None:
                 dev[:, envelope < _FOOT] = 0.0
-            amp, ph = _smooth_fundamental(_pooled_analytic(dev, rate, self.heart_hz, self.weights), rate)
-            fitted, whole = self._evaluate(amp, ph, rate, gain.shape[0])
+            fitted, whole = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0])
         else:
             fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0],
                                           times=times)
@@ -240,12 +240,6 @@ def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.
     return _smooth_fundamental(_analytic(dev, rate, heart_hz), rate)
 
 
-def _pooled_analytic(dev: np.ndarray, rate: float, heart_hz: float, weights: np.ndarray) -> np.ndarray:
-    """``sum(conj(w) c)`` over the rows of ``dev`` with a weight (:func:`pool_weights`)."""
-    use = np.flatnonzero(weights)
-    return np.conj(weights[use]) @ _analytic(np.atleast_2d(dev)[use], rate, heart_hz)
-
-
 def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
                  fit: slice | None = None, pool=None) -> np.ndarray | None:
     """Weights that read one heartbeat's fundamental from several channels' gains, their floors cancelling.
@@ -263,8 +257,9 @@ def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
     scale, the minimum-variance weights for a common signal of loadings ``k
     = S v`` (Capon 1969, Proc. IEEE 57; generalised least squares). At most
     :data:`_POOL_MAX` channels of ``pool`` (indices; all by default), those
-    whose own line stands highest over their floor; ``S`` is loaded by :data:`_POOL_LOADING` of its mean
-    diagonal, as it comes from a few bins of seconds of data.
+    whose own line stands highest over their floor; ``S`` is loaded by
+    :data:`_POOL_LOADING` of its mean diagonal, as it comes from a few bins
+    of seconds of data.
 
     Returns
     -------
@@ -330,7 +325,8 @@ def fundamental(dev: np.ndarray, rate: float, heart_hz: float,
     dev = np.asarray(dev, dtype=np.float64)
     if weights is None:
         return _amplitude_phase(dev, rate, heart_hz)
-    return _smooth_fundamental(_pooled_analytic(dev, rate, heart_hz, np.asarray(weights)), rate)
+    rows = np.atleast_2d(dev)[np.flatnonzero(weights)]
+    return fundamental_of_rows(((None, rate, row) for row in rows), heart_hz, weights)[1:]
 
 
 def fundamental_of_rows(rows, heart_hz: float,

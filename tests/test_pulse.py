@@ -9,8 +9,8 @@ from scipy import signal
 
 from artifactclean.evaluation import score_cleaning
 from artifactclean.estimators import TemplateSubtraction
-from artifactclean.pulse import (PulseModel, _amplitude_phase, fit_pulse, fundamental, fundamental_of_rows, join_tracks,
-                                 pool_weights)
+from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _smooth_fundamental, fit_pulse, fundamental,
+                                 fundamental_of_rows, join_tracks, pool_weights)
 from artifactclean.scenarios import SCENARIOS, locked_units
 from artifactclean.synthetic import NeuralSpec, simulate_recording
 
@@ -80,10 +80,11 @@ def test_pooled_channels_read_the_heartbeat_through_a_shared_floor():
     amp_ref, ph_ref = fundamental(dev[3], RATE, 2.0)
     amp, ph = fundamental(dev, RATE, 2.0, w)
     assert phase_error(ph) < 0.5 * phase_error(ph_ref), (phase_error(ph), phase_error(ph_ref))
-    # the same read one channel at a time (the block track's way), to rounding
+    # read one channel at a time (the block track's way): the weighted sum of the band-passed rows, to rounding
     _, amp_rows, ph_rows = fundamental_of_rows(((None, RATE, d) for d in dev), 2.0, w)
-    np.testing.assert_allclose(amp_rows, amp, rtol=1e-9)
-    np.testing.assert_allclose(ph_rows, ph, rtol=0, atol=1e-9)
+    amp_sum, ph_sum = _smooth_fundamental(np.conj(w) @ _analytic(dev, RATE, 2.0), RATE)
+    np.testing.assert_allclose(amp_rows, amp_sum, rtol=1e-9)
+    np.testing.assert_allclose(ph_rows, ph_sum, rtol=0, atol=1e-9)
     # w^H k = 1: the pooled fundamental reads the reference's (the common loading here), A/2 of a cosine
     assert np.median(amp[mid]) == pytest.approx(depth / 2, rel=0.1)
     # against the minimum-variance weights of the true floor covariance (Capon 1969, Proc. IEEE 57,
