@@ -42,7 +42,7 @@ from scipy import linalg, ndimage, signal
 from .modulation import _FOOT, _MAX_BOOST, plateau_level
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "join_tracks",
-           "pool_weights"]
+           "pool_weights", "relative_deviation"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -155,12 +155,7 @@ class PulseModel:
             ref_gain = np.asarray(ref_gain, dtype=np.float64)
             if level is None:
                 level = _plateau_median(ref_gain, envelope) if envelope is not None else float(np.mean(ref_gain))
-            level = level if level != 0 else 1.0
-            if envelope is None:
-                dev = (ref_gain - level) / level
-            else:
-                dev = np.where(envelope < _FOOT, 0.0, ref_gain / level - envelope)
-            amp, ph = _amplitude_phase(dev, rate, self.heart_hz)
+            amp, ph = _amplitude_phase(relative_deviation(ref_gain, level, envelope), rate, self.heart_hz)
         return self._evaluate(amp, ph, rate, n_rows)
 
     def _evaluate(self, amp: np.ndarray, ph: np.ndarray, rate: float,
@@ -192,15 +187,21 @@ class PulseModel:
             levels = np.broadcast_to(np.atleast_1d(np.asarray(scale, dtype=np.float64)), (gain.shape[0],))
         if self.weights is not None and (self.track is None or times is None):
             # the fundamental pooled over channels, read as :meth:`relative` reads the reference's
-            lv = np.where(levels != 0, levels, 1.0)[:, None]
-            dev = gain / lv - (1.0 if envelope is None else envelope[None, :])
-            if envelope is not None:
-                dev[:, envelope < _FOOT] = 0.0
+            dev = relative_deviation(gain, levels[:, None], envelope)
             fitted, whole = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0])
         else:
             fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0],
                                           times=times)
         return fitted * levels[:, None], whole * levels[:, None]
+
+
+def relative_deviation(gain: np.ndarray, level, envelope: np.ndarray | None = None) -> np.ndarray:
+    """A gain sequence over its plateau ``level`` (0 taken as 1), less the block's ``envelope`` (less 1
+    without one); 0 where the envelope is below the foot: what the heartbeat's fundamental is read from."""
+    level = np.where(np.asarray(level) != 0, level, 1.0)
+    if envelope is None:
+        return (gain - level) / level
+    return np.where(envelope < _FOOT, 0.0, gain / level - envelope)
 
 
 def _plateau_median(seq: np.ndarray, envelope: np.ndarray | None) -> float:

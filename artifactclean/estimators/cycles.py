@@ -21,7 +21,7 @@ from scipy import ndimage, signal
 
 from ..clipping import find_clipped
 from ..stimulation import ramp_level
-from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, join_tracks
+from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, join_tracks, relative_deviation
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
@@ -388,8 +388,7 @@ class CycleEstimator(ArtifactEstimator):
                 centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
                 t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
                 env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
-                level = float(plateau_level(raw, env)[0]) or 1.0
-                yield t, rate, np.where(env < _FOOT, 0.0, raw[0] / level - env)
+                yield t, rate, relative_deviation(raw[0], float(plateau_level(raw, env)[0]), env)
 
         weights = None if pulse.weights is None else pulse.weights[rows]
         t, amp, ph = fundamental_of_rows(deviations(), heart_hz, weights)
