@@ -19,10 +19,13 @@ share cancel, :func:`pool_weights`; or on the plan's reference channel alone,
 whose floor is the lowest); harmonic ``h`` of a channel is ``Re(k B_h a(t) exp(i h phi(t)))``:
 ``k`` is how strongly the channel carries the reference's fundamental, ``B_h``
 the pulse's shape, one per block, fitted on the block's plan (least squares on
-seconds of gain samples, pooled over channels: the neural floor enters
-through a few coefficients instead of through a pass band). Each harmonic is
-shrunk by how far it stands out of what the floor alone gives such a fit
-(:data:`_SIGNIFICANCE`): a sinusoidal heartbeat, or none, gives no model.
+seconds of gain samples, pooled over channels by generalised least squares
+over their floors' cross-spectrum: the neural floor enters through a few
+coefficients instead of through a pass band, and what the channels share of it
+cancels). Each harmonic is shrunk by how far it stands out of what the floor
+alone gives such a fit (:data:`_SIGNIFICANCE`; the floors' cross-spectrum
+counted, since nearby contacts share their LFP): a sinusoidal heartbeat, or
+none, gives no model.
 
 What it cannot do: follow a pulse whose shape changes within a block (its
 fundamental's amplitude is followed, the ratios of its harmonics are not), or
@@ -59,7 +62,8 @@ _HEART_LINE = 4.0
 #: each harmonic of the pooled shape is multiplied by ``1 - this / z``, z its fitted power over what the
 #: floor alone gives such a fit (its expectation, 2 S / (T a^2)): none below this, nearly all far above
 #: (this project's choice: with 2 a sinusoidal heartbeat's floor, fitted at 4 times its mean on every
-#: channel of one trace, doubled the LFP error away from the harmonics at 10 Hz, 0.021 -> 0.044)
+#: channel of one trace, doubled the LFP error away from the harmonics at 10 Hz, 0.021 -> 0.044). z is
+#: about exponential with mean 1 for the floor alone, so a harmonic passes by chance once in e^5 = 150
 _SIGNIFICANCE = 5.0
 #: harmonics modelled at most (2 ... this + 1)
 _MAX_HARMONICS = 8
@@ -384,6 +388,71 @@ def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray,
     return amp[None, :] * np.exp(1j * np.asarray(hs)[:, None] * ph[None, :])
 
 
+def _variance_of_fit(freqs: np.ndarray, psd: np.ndarray, hz: float, t_fit: float, amp2: float) -> float:
+    """Variance of a harmonic's least-squares coefficient at ``hz`` over a floor of density ``psd``.
+
+    The fit is on Re and Im of ``a exp(i h phi)`` (each summing to ``N a^2 /
+    2``) over ``t_fit`` seconds; with a one-sided density ``S`` (the median
+    within 1 Hz of ``hz``: lines do not move it) each part's variance is ``S
+    / (T a^2)`` and ``|beta - truth|^2`` averages ``2 S / (T a^2)``.
+    """
+    near = np.abs(freqs - hz) <= 1.0
+    s_h = float(np.median(psd[near])) if near.any() else float(np.median(psd))
+    return max(2 * s_h / (t_fit * max(amp2, 1e-300)), 1e-300)
+
+
+def _shape_weights(resid: np.ndarray, k: np.ndarray, rate: float, hz: np.ndarray, nper: int) -> np.ndarray:
+    """Weights ``a`` (n_channels, n_harmonics) of the pooled shape ``B_h = sum_c a_c beta_ch``.
+
+    Generalised least squares of ``beta_h = k B_h`` over the floors'
+    cross-spectrum ``S`` within 1 Hz of each harmonic (from the fits'
+    residuals; loaded by :data:`_POOL_LOADING` of its mean diagonal):
+    ``a = conj(S^-1 k) / (k^H S^-1 k)`` (Aitken 1935, Proc. R. Soc. Edinb.
+    55, from memory). Floors the channels share cancel, as in
+    :func:`pool_weights`.
+    """
+    n_ch = resid.shape[0]
+    fz, _, z = signal.stft(resid, fs=rate, nperseg=nper, noverlap=nper // 2, detrend="constant",
+                           boundary=None, padded=False)
+    out = np.zeros((n_ch, len(hz)), dtype=np.complex128)
+    for j, h in enumerate(hz):
+        near = np.abs(fz - h) <= 1.0
+        zs = z[:, near, :].reshape(n_ch, -1)
+        if not zs.shape[1]:
+            continue
+        cov = (zs @ zs.conj().T) / zs.shape[1]
+        cov = cov + _POOL_LOADING * max(float(np.mean(np.real(np.diag(cov)))), 1e-300) * np.eye(n_ch)
+        try:
+            v = linalg.solve(cov, k, assume_a="her")
+        except (linalg.LinAlgError, ValueError):
+            continue
+        norm = float(np.real(np.vdot(k, v)))
+        if norm > 0:
+            out[:, j] = np.conj(v) / norm
+    return out
+
+
+def _pooled_variance(resid: np.ndarray, a: np.ndarray, rate: float, hz: np.ndarray, t_fit: float,
+                     amp2: float, nper: int) -> np.ndarray:
+    """Variance of each pooled coefficient ``sum_c a_c beta_c`` (``a``: (n_channels, n_harmonics)).
+
+    The channels' floors are not independent (nearby contacts share their
+    LFP), so the variance is not the sum of theirs: each coefficient's error
+    is the fit of ``z = sum_c a_c resid_c`` (a complex sequence: ``beta``
+    reads ``sum z conj(a exp(i h phi))``, its positive-frequency Fourier
+    coefficient), whose two-sided density at ``+hz``, doubled, takes the
+    place of ``S`` in :func:`_variance_of_fit`. With independent floors this
+    is ``sum |a_c|^2 var_c``; with the floors shared by four channels, up to
+    four times that.
+    """
+    out = np.empty(len(hz))
+    for j, h in enumerate(hz):
+        z = a[:, j] @ resid
+        fz, pz = signal.welch(z, fs=rate, nperseg=nper, return_onesided=False)
+        out[j] = _variance_of_fit(fz, 2 * pz, h, t_fit, amp2)
+    return out
+
+
 def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None) -> PulseModel | None:
     """Find a heartbeat in ``gain`` and fit its harmonics' ratios to its fundamental.
 
@@ -449,27 +518,16 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     design = np.concatenate((r.real, r.imag)).T
     amp2 = np.mean(np.abs(r[0]) ** 2)  # a(t)^2: the same for every harmonic
     # each channel's fit: its fundamental relative to the reference's (k) and its harmonics (beta)
-    n_ch = gain.shape[0]
-    k = np.zeros(n_ch, dtype=np.complex128)
-    beta = np.zeros((n_ch, n_harm), dtype=np.complex128)
-    var = np.zeros((n_ch, n_harm))
-    for ch in range(n_ch):
-        sol, *_ = np.linalg.lstsq(design, dev[ch, fit], rcond=None)
-        b = sol[:hs.size] - 1j * sol[hs.size:]  # Re(b z) = Re(b) Re(z) - Im(b) Im(z)
-        k[ch], beta[ch] = b[0], b[1:]
-        resid = dev[ch, fit] - np.real(r * b[:, None]).sum(axis=0)
-        fr, pr = signal.welch(resid, fs=rate, nperseg=min(nper, resid.size // 2 * 2))
-        for j, h in enumerate(hs[1:]):
-            near = np.abs(fr - h * heart) <= 1.0
-            s_h = float(np.median(pr[near])) if near.any() else float(np.median(pr))
-            # least squares on Re and Im of a exp(i h phi) (each summing to N a^2 / 2) over a floor of one-sided
-            # density S: each part's variance is S / (T a^2), |beta - truth|^2 averages 2 S / (T a^2)
-            var[ch, j] = max(2 * s_h / (t_fit * max(amp2, 1e-300)), 1e-300)
-    # one heartbeat, one pulse shape: channels differ in how strongly they carry it (k), so the shape is
-    # pooled over channels weighted by what each shows of it (generalised least squares of beta = k B)
-    w = np.abs(k)[:, None] ** 2 / var
-    shape = (np.conj(k)[:, None] * beta / var).sum(axis=0) / np.maximum(w.sum(axis=0), 1e-300)
-    stat = np.abs(shape) ** 2 * w.sum(axis=0)  # |B|^2 over its variance
+    sol, *_ = np.linalg.lstsq(design, dev[:, fit].T, rcond=None)
+    b = (sol[:hs.size] - 1j * sol[hs.size:]).T  # Re(b z) = Re(b) Re(z) - Im(b) Im(z)
+    k, beta = b[:, 0], b[:, 1:]
+    resid = dev[:, fit] - (design @ sol).T
+    nper_fit = min(nper, resid.shape[1] // 2 * 2)
+    # one heartbeat, one pulse shape: channels differ in how strongly they carry it (k) over floors they partly
+    # share, so the shape is pooled over channels by generalised least squares of beta = k B
+    a = _shape_weights(resid, k, rate, heart * hs[1:], nper_fit)
+    shape = (a * beta).sum(axis=0)
+    stat = np.abs(shape) ** 2 / _pooled_variance(resid, a, rate, heart * hs[1:], t_fit, amp2, nper_fit)
     # shrunk by how far each harmonic stands out of the floor (none at about the floor's own fit)
     shrink = np.clip(1.0 - _SIGNIFICANCE / np.maximum(stat, 1e-300), 0.0, 1.0)
     coefs = k[:, None] * (shape * shrink)[None, :]
