@@ -5,7 +5,7 @@ import pytest
 from scipy import signal
 
 from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, design_gain_response, ramp_cutoff, segment_gain, \
-    sideband_support, smooth_gain
+    shift_centres, sideband_support, smooth_gain
 
 
 def _gain_series(rng, rate=40.0, seconds=20.0, lines=((2.0, 0.02), (4.0, 0.01))):
@@ -240,3 +240,26 @@ def test_a_gain_line_that_neither_side_shows_is_not_followed(rng):
         assert at(plain, 6.0) == 1.0  # a pair of nothing, or a pair: the pair test passes both
         assert at(s, 6.0) == (1.0 if modulated else 0.0)
         assert np.all(s[freqs <= FOLLOW_HZ] == 1.0)
+
+
+def test_a_phase_shift_stands_where_the_joint_fit_reads_it(rng):
+    # per segment x = g t + h(i) d + offset with a shift h changing linearly: numpy.linalg.lstsq's h is h at
+    # the position shift_centres gives, which is not the segment's middle for a waveform with harmonics
+    n_seg, length = 6, 750  # half cycles of 20 Hz at 30 kHz
+    i = np.arange(n_seg * length)
+    phase = i / (2 * length) + 0.1
+    t = np.cos(2 * np.pi * phase) + 0.3 * np.cos(4 * np.pi * phase + 0.7)
+    d = -2 * np.pi * np.sin(2 * np.pi * phase) - 1.2 * np.pi * np.sin(4 * np.pi * phase + 0.7)
+    h = 0.01 + 2e-6 * i
+    x = 1.02 * t + h * d + 3.0
+    w = np.ones_like(x)
+    w[rng.random(x.size) < 0.05] = 0.0  # lost samples count as in the fits
+    starts = np.arange(n_seg) * length
+    centre = shift_centres(t[None], d[None], w[None], starts)[0]
+    for k, s0 in enumerate(starts):
+        sl = slice(s0, s0 + length)
+        keep = w[sl] > 0
+        a = np.column_stack((t[sl], d[sl], np.ones(length)))[keep]
+        fitted = np.linalg.lstsq(a, x[sl][keep], rcond=None)[0][1]
+        assert fitted == pytest.approx(0.01 + 2e-6 * (s0 + centre[k]), rel=1e-6)
+    assert np.max(np.abs(centre - (length - 1) / 2)) > 20  # samples off the middle

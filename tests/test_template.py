@@ -452,21 +452,24 @@ def test_a_free_running_dac_is_found_when_the_strongest_channels_are_clipped():
 
 
 @pytest.mark.parametrize("freq, dac, heart_hz, degrees", [(20.0, None, 2.0, 2.0), (20.0, 1000.0, 2.0, 2.0),
-                                                       (40.0, None, 1.2, 1.0)])
+                                                       (40.0, None, 1.2, 1.0), (10.0, None, 2.0, 2.0)])
 def test_a_heartbeat_that_shifts_the_artifacts_phase(freq, dac, heart_hz, degrees):
     """The electrode-tissue interface is partly capacitive: the pulse shifts the artifact's phase
     as well as its amplitude (Noury & Siegel 2017). A gain follows amplitude only: 2 degrees left
     287x the neural power within 3 Hz of the harmonics (1 degree with a resting 1.2 Hz heartbeat at
     40 Hz: 258x). The phase shift is fitted per gain segment
     on data and regressors high-passed at f / 2 (the slow LFP's slope projects on the derivative),
-    filtered to its own lines, and kept where it takes artifact off beside the fundamental."""
+    filtered to its own lines, and kept where it takes artifact off beside the fundamental: 2.68,
+    2.80, 1.26 and 1.90 (10 Hz). Read where each shift stands (not at the segments' middles: a
+    delay of 2.8 ms at 20 Hz) and with the gain fitted again on the template with its shift (the
+    shift's term leaks into a gain fitted on the template alone): 1.58, 1.63, 1.12 and 1.07."""
     art = ArtifactSpec(freq_hz=freq, amplitude_uv=4000.0, heart_rate_hz=heart_hz, heart_depth=0.02, resp_depth=0.01,
                        drift_ppm=40.0, heart_phase_deg=degrees, dac_rate_hz=dac, channel_gains=(1.0, -0.7, 0.45, -1.2))
     rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=units4()), seed=1)
     est = TemplateSubtraction().fit(rec.data, fs=rec.fs)
     assert est.report_["blocks"][0]["phase_shift_followed"]
     s = score_cleaning(rec, est.transform(rec.data), lost=est.lost_)
-    assert max(s["lfp_band_ratio"]) <= 3.5, s["lfp_band_ratio"]  # 258-287 without
+    assert max(s["lfp_band_ratio"]) <= 2.0, s["lfp_band_ratio"]  # 258-287 without
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
     # without a phase modulation the shift is not followed and nothing changes
     plain = simulate_recording(20.0, artifact=dataclasses.replace(art, heart_phase_deg=0.0),

@@ -52,8 +52,8 @@ from scipy import ndimage, signal, special
 
 from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
-from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, smooth_gain, \
-    to_middles
+from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, shift_centres, \
+    smooth_gain, to_middles
 from ._kernels import (PhaseGrid, group_position, grouped_eval, lerp_positions, lerp_rows, phase_eval, segment_stats,
                        tick_eval, tick_sums)
 from ..staircase import DacClock
@@ -625,13 +625,18 @@ class TemplateSubtraction(CycleEstimator):
             else:
                 read_d = lambda ch: reader.read(d_tmpl[ch:ch + 1], compiled=self.compiled)[0]  # noqa: E731
             self._add_phase_term(t_n, xb, w, gain, read_d, fs, f, seg_starts, seg_u, seg_pos, f * per_cycle,
-                                 response, seg_env)
+                                 response, seg_env, seg_first)
+            # the gain was fitted on the template alone, and within a segment the shift's term is not orthogonal
+            # to it (a waveform with harmonics; segments off its extrema): part of the shift's modulation went
+            # into the gain. Fitted again on the template with its shift
+            gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
+                              trap if relative else None, seg_env, ramp_hz, seg_first, out=gain, seg_times=seg_times)
             shifted = True
         info["phase_shift_followed"] = shifted
         return np.multiply(gain, t_n, out=t_n), info, censored
 
     def _add_phase_term(self, t_n, xb, w, gain, read_d, fs, f, seg_starts, seg_u, seg_pos, seg_rate, response,
-                        seg_env):
+                        seg_env, seg_first):
         """Add ``eta d`` to ``t_n``, channel by channel: the template's phase derivative ``d = read_d(ch)``
         times the filtered phase shift (cycles).
 
@@ -657,6 +662,9 @@ class TemplateSubtraction(CycleEstimator):
             d_n = read_d(ch)[None, :]
             dh = high_passed(gain[ch:ch + 1] * d_n)
             eta_seg, ok = phase_shift(xh, th, dh, w[ch:ch + 1], seg_starts, compiled=self.compiled)
+            # where each shift stands: as for the gain (to_middles), read at the middles the positions act as a delay
+            u_first, u_step, per_cycle = seg_first
+            shift = (u_first + u_step * shift_centres(th, dh, w[ch:ch + 1], seg_starts)[0] - seg_u) * per_cycle
             del xh, th, dh, keep
             # on the plateau and the upper half of the ramps: lower, the shift is a ratio of small numbers
             use = ok[0] & (seg_env > 0.5)
@@ -664,6 +672,10 @@ class TemplateSubtraction(CycleEstimator):
                 continue
             filled = np.interp(seg_u, seg_u[use], eta_seg[0, use])
             eta = ndimage.convolve1d(filled, taps, mode="nearest")
+            # moved to the middles by the filtered shift's slope over whole cycles (the pattern of the positions
+            # repeats every cycle)
+            eta = ndimage.convolve1d(to_middles(filled[None, :], np.where(use, shift, 0.0)[None, :], per_cycle,
+                                                slope=cycle_slope(eta[None, :], per_cycle))[0], taps, mode="nearest")
             eta[seg_env <= _FOOT] = 0.0
             term = lerp_rows(eta[None, :], *seg_pos, compiled=self.compiled)
             term *= d_n
