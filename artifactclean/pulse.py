@@ -245,6 +245,18 @@ def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.
     return _smooth_fundamental(_analytic(dev, rate, heart_hz), rate)
 
 
+def _bin_covariance(z: np.ndarray, bins: np.ndarray) -> np.ndarray:
+    """Cross-spectral matrix of short-time spectra ``z`` (channels, frequencies, segments) over ``bins``."""
+    zs = z[:, bins, :].reshape(z.shape[0], -1)
+    return (zs @ zs.conj().T) / zs.shape[1]
+
+
+def _loaded(cov: np.ndarray) -> np.ndarray:
+    """``cov`` loaded by :data:`_POOL_LOADING` of its mean diagonal: estimated from a few bins of seconds
+    of data, it is inverted."""
+    return cov + _POOL_LOADING * max(float(np.mean(np.real(np.diag(cov)))), 1e-300) * np.eye(cov.shape[0])
+
+
 def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
                  fit: slice | None = None, pool=None) -> np.ndarray | None:
     """Weights that read one heartbeat's fundamental from several channels' gains, their floors cancelling.
@@ -287,10 +299,7 @@ def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
     on = np.abs(fz - heart_hz) <= _WIDTH * heart_hz
     if not off.any() or not on.any():
         return None
-    zo = z[:, off, :].reshape(n_ch, -1)
-    zl = z[:, on, :].reshape(n_ch, -1)
-    floor = (zo @ zo.conj().T) / zo.shape[1]
-    line = (zl @ zl.conj().T) / zl.shape[1]
+    floor, line = _bin_covariance(z, off), _bin_covariance(z, on)
     diag_f = np.maximum(np.real(np.diag(floor)), 1e-300)
     # the strongest lines over their own floors, the reference always among them
     snr = np.real(np.diag(line)) / diag_f
@@ -299,8 +308,7 @@ def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
     if len(order) < 2:
         return None
     use = np.array(sorted(order[:_POOL_MAX]))
-    s_use = floor[np.ix_(use, use)]
-    s_use = s_use + _POOL_LOADING * np.mean(diag_f[use]) * np.eye(use.size)
+    s_use = _loaded(floor[np.ix_(use, use)])
     try:
         _, vecs = linalg.eigh(line[np.ix_(use, use)], s_use)
     except (linalg.LinAlgError, ValueError):
@@ -417,13 +425,10 @@ def _shape_weights(resid: np.ndarray, k: np.ndarray, rate: float, hz: np.ndarray
     out = np.zeros((n_ch, len(hz)), dtype=np.complex128)
     for j, h in enumerate(hz):
         near = np.abs(fz - h) <= 1.0
-        zs = z[:, near, :].reshape(n_ch, -1)
-        if not zs.shape[1]:
+        if not near.any() or not z.shape[-1]:
             continue
-        cov = (zs @ zs.conj().T) / zs.shape[1]
-        cov = cov + _POOL_LOADING * max(float(np.mean(np.real(np.diag(cov)))), 1e-300) * np.eye(n_ch)
         try:
-            v = linalg.solve(cov, k, assume_a="her")
+            v = linalg.solve(_loaded(_bin_covariance(z, near)), k, assume_a="her")
         except (linalg.LinAlgError, ValueError):
             continue
         norm = float(np.real(np.vdot(k, v)))
