@@ -28,6 +28,30 @@ def test_two_workers_equal_one(method, short_dac):
     np.testing.assert_array_equal(one, two)
 
 
+def test_block_plans_do_not_depend_on_the_workers(mod20_dac):
+    """A block plan spreads its DAC search, its groups of channels and the heartbeat's rows over the
+    workers it is given: the plan is the serial one to the bit (pickled bytes), with a DAC grid, a pulse
+    model whose track pools every channel, and a phase response in it."""
+    import pickle
+    from concurrent.futures import ThreadPoolExecutor
+
+    from artifactclean.estimators.base import _fit_model
+
+    x, fs = mod20_dac.data, mod20_dac.fs
+    model = _fit_model(x, fs, None, None)
+    plans = []
+    with warnings.catch_warnings(), ThreadPoolExecutor(3) as pool:
+        warnings.simplefilter("ignore")
+        for mapper in (map, pool.map):
+            est = TemplateSubtraction()
+            est.prepare(array_reader(x), model, fs, mapper=mapper)
+            plans.append(est._plans)
+    (serial,), (threaded,) = (p.values() for p in plans)
+    assert serial.grid is not None and serial.response.phase is not None
+    assert serial.response.pulse is not None and len(serial.response.pulse.pooled()) > 1
+    assert pickle.dumps(serial) == pickle.dumps(threaded)
+
+
 def test_groups_see_the_reference_channel_they_need(short_dac):
     """With a DAC grid the template settles tick edges on the plan's reference channel: a group
     without it fits on it too, and drops it."""

@@ -13,6 +13,7 @@
 
 from __future__ import annotations
 
+import functools
 import warnings
 from typing import NamedTuple
 
@@ -20,6 +21,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..clipping import find_clipped
+from ..parallel import channel_groups
 from ..stimulation import ramp_level
 from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, join_tracks, relative_deviation
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
@@ -37,6 +39,11 @@ _PLAN_S = 20.0
 #: seconds of the reference channel read at a time for the heartbeat's track over a block (plus its band-pass
 #: context): memory follows this, not the block
 _TRACK_S = 30.0
+
+#: groups of channels a block plan's per-channel work is spread over (fixed, so that the plan does not depend
+#: on the workers; each group pays the stretch's phase arithmetic once: single channels cost a 16-channel
+#: plan 0.25 s more)
+_PLAN_GROUPS = 4
 
 #: steps per second (far above noise) that reveal a staircase no locked grid explains
 _UNLOCKED_STEPS = 50.0
@@ -136,7 +143,11 @@ def block_key(blk) -> tuple:
 
 def trapezoid(n: int, blk, offset: int) -> np.ndarray:
     """Block envelope on samples ``offset .. offset + n``: ramps of the block's shape, plateau 1, 0 outside."""
-    i = np.arange(offset, offset + n, dtype=np.float64)
+    return envelope_at(np.arange(offset, offset + n, dtype=np.float64), blk)
+
+
+def envelope_at(i: np.ndarray, blk) -> np.ndarray:
+    """:func:`trapezoid` at samples ``i`` only (float)."""
     start, up_stop, down_start, stop = blk.geometry()  # the whole block's ramps, in a piece too
     up = (i - start) / max(up_stop - start, 1) if up_stop > start else np.where(i >= start, 1.0, 0.0)
     down = (stop - i) / max(stop - down_start, 1) if stop > down_start else np.where(i < stop, 1.0, 0.0)
@@ -323,21 +334,26 @@ class CycleEstimator(ArtifactEstimator):
         """:class:`BlockPlan` of each block (``bounds``: its work range), the work spread by ``mapper``."""
         if not blocks:
             return []
-        stretch = list(mapper(lambda b: self._stretch_plan(read, b, fs), blocks))
+        # one block after another, each one's channels side by side (a block's plan waits for its jobs, so
+        # blocks planned on the pool themselves could leave no worker for them)
+        stretch = [self._stretch_plan(read, b, fs, mapper) for b in blocks]
         # a heartbeat's phase over each whole block, once, from its reference channel: tasks on other channels
         # then need neither that channel nor the band-pass's context
         pulsed = [i for i, st in enumerate(stretch) if getattr(st[3], "pulse", None) is not None]
-        # the tracks' parts of every block side by side (a part per _TRACK_S s; one map, not one per block,
-        # so no task waits on others in the same pool)
-        jobs = [(i, part) for i in pulsed for part in _track_parts(bounds[i], fs)]
+        # the tracks' parts of every block, one channel each, side by side (a part per _TRACK_S s; one map,
+        # not one per block, so no task waits on others in the same pool)
+        parts = [(i, ab) for i in pulsed for ab in _track_parts(bounds[i], fs)]
+        jobs = [(i, ab, row) for i, ab in parts for row in stretch[i][3].pulse.pooled()]
+
+        def row_part(job):
+            i, ab, row = job
+            return self._heart_row(read, blocks[i], fs, bounds[i], ab, row)
+
+        rows = iter(list(mapper(row_part, jobs)))
         done: dict[int, list] = {i: [] for i in pulsed}
-
-        def part(job):
-            i, ab = job
-            return self._heart_part(read, blocks[i], fs, bounds[i], stretch[i][3].pulse, ab)
-
-        for (i, _), res in zip(jobs, mapper(part, jobs)):
-            done[i].append(res)
+        for i, ab in parts:
+            pulse = stretch[i][3].pulse
+            done[i].append(self._heart_part(blocks[i], pulse, ab, [next(rows) for _ in pulse.pooled()]))
         for i in pulsed:
             model = stretch[i][3].pulse
             track = join_tracks(done[i], model.heart_hz, fs)
@@ -357,19 +373,11 @@ class CycleEstimator(ArtifactEstimator):
             decided.setdefault(i, []).extend(part)
         return [BlockPlan(*stretch[i][:4], decided.get(i), stretch[i][4]) for i in range(len(blocks))]
 
-    def _heart_part(self, read, blk, fs, bounds, pulse, part):
-        """One part of the heartbeat's track (the plan's :class:`~artifactclean.pulse.PulseModel`
-        ``pulse``) over a block's work range ``bounds``: ``(positions, amplitude, phase)`` of the
-        fundamental at positions (samples) from ``blk.ref_sample`` within ``part = (a, b)`` (see
-        :func:`_track_parts`), for :func:`artifactclean.pulse.join_tracks`.
-
-        Read from the raw gains of the channels the model pools (or its
-        reference's; as the model was fitted) over the part with twice
-        :data:`~artifactclean.pulse.PULSE_HALF_S` on each side (the band-pass
-        and the smoothing), so memory follows :data:`_TRACK_S` and not the
-        block's length.
-        """
-        heart_hz, rows = pulse.heart_hz, pulse.pooled()
+    def _heart_row(self, read, blk, fs, bounds, part, row):
+        """One channel's share of a part of the heartbeat's track (see :meth:`_heart_part`): ``(positions,
+        rate, deviation)`` of channel ``row``'s raw gain, read over the part ``(a, b)`` with twice
+        :data:`~artifactclean.pulse.PULSE_HALF_S` on each side (the band-pass and the smoothing) within the
+        block's work range ``bounds``, so memory follows :data:`_TRACK_S` and not the block's length."""
         s, e = bounds
         a, b = part
         f = blk.freq_hz
@@ -377,21 +385,26 @@ class CycleEstimator(ArtifactEstimator):
         margin = int(2 * PULSE_HALF_S * fs) + int(fs / f) + 1
         lo, hi = max(s, a - margin), min(e, b + margin)
         cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        x = np.asarray(read(lo, hi, [row]), dtype=np.float64)
+        raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
+        del x
+        # segment k covers cycles [first + k, first + k + 1) / per_cycle
+        centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
+        t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
+        env = envelope_at(lo + np.clip(np.round(t - lo), 0, hi - lo - 1), blk)
+        return t, rate, relative_deviation(raw[0], float(plateau_level(raw, env)[0]), env)
 
-        def deviations():
-            # one channel at a time: the track's memory is one channel's whatever the pool
-            for row in rows:
-                x = np.asarray(read(lo, hi, [row]), dtype=np.float64)
-                raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
-                del x
-                # segment k covers cycles [first + k, first + k + 1) / per_cycle
-                centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
-                t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
-                env = trapezoid(hi - lo, blk, lo)[np.clip(np.round(t - lo).astype(np.int64), 0, hi - lo - 1)]
-                yield t, rate, relative_deviation(raw[0], float(plateau_level(raw, env)[0]), env)
-
-        weights = None if pulse.weights is None else pulse.weights[rows]
-        t, amp, ph = fundamental_of_rows(deviations(), heart_hz, weights)
+    @staticmethod
+    def _heart_part(blk, pulse, part, rows):
+        """One part of the heartbeat's track (the plan's :class:`~artifactclean.pulse.PulseModel`
+        ``pulse``): ``(positions, amplitude, phase)`` of the fundamental at positions (samples) from
+        ``blk.ref_sample`` within ``part = (a, b)`` (see :func:`_track_parts`), for
+        :func:`artifactclean.pulse.join_tracks`, from the :meth:`_heart_row` of each channel the model
+        pools (or its reference's; as the model was fitted), in ``pulse.pooled()`` order.
+        """
+        a, b = part
+        weights = None if pulse.weights is None else pulse.weights[pulse.pooled()]
+        t, amp, ph = fundamental_of_rows(rows, pulse.heart_hz, weights)
         keep = (t >= a) & (t < b)
         # positions from the block's reference sample: a window of the recording (a file piece) keeps them
         return t[keep] - blk.ref_sample, amp[keep], ph[keep]
@@ -440,8 +453,14 @@ class CycleEstimator(ArtifactEstimator):
         """Per-channel choices made once per block, for the channels ``rows`` (one dict each)."""
         raise NotImplementedError
 
-    def _stretch_plan(self, read, blk, fs):
-        """Reference channel, DAC grid, unlocked step rate, gain response and waveform harmonics, from the plateau's middle."""
+    def _stretch_plan(self, read, blk, fs, mapper=map):
+        """Reference channel, DAC grid, unlocked step rate, gain response and waveform harmonics, from the plateau's middle.
+
+        ``mapper`` spreads the DAC search and the gain response's share of
+        each group of channels (:data:`_PLAN_GROUPS`, whatever the workers)
+        over workers. It must not map onto a pool this call itself runs on
+        (the call waits for its jobs).
+        """
         f = blk.freq_hz
         n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
         # at most _PLAN_S s, less for many channels (memory), never under a second
@@ -454,86 +473,119 @@ class CycleEstimator(ArtifactEstimator):
         if b - a < 16:
             return ref, None, 0.0, None, None
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        per_cycle = segments_per_cycle(self.tracking_hz, f)
+        first = int(np.floor(cycles[0] * per_cycle))  # the gain segments' first number
+        # a shift needs seconds of cycles
+        shift = getattr(self, "track_phase", False) and (b - a) * f / fs >= 40
 
-        def make_response(plain: bool):
-            """The gain response; unless ``plain``, a line of the raw gain must also show beside the
-            fundamental (not with a DAC or on clipped data: a DAC's period or a rail's edges put lines of
-            their own in the raw gain)."""
-            if not self.track_amplitude:
-                return None
-            per_cycle = segments_per_cycle(self.tracking_hz, f)
-            usable = (~find_clipped(x)).astype(np.float64)
-            raw, rate = segment_gain(x, usable, cycles, fs, f, per_cycle)
-            # a pulsatile heartbeat's harmonics are modelled from its fundamental's phase; the response is
-            # designed without them, so it passes neither them nor the floor under them
-            pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact)) \
-                if getattr(self, "model_pulse", False) else None
-            if pulse is not None:
-                raw = raw - pulse.parts(raw, rate)[0]
-            response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
-            response.pulse = pulse
-            # means over ~1/32 cycle (modulations and the shift live in the first harmonics)
-            xd, wd, ud, fsd = _block_means(x, usable, cycles, fs, max(1, int(fs // (32 * f))))
+        def channel(rows):
+            """Channels ``rows``' raw gains, their means over ~1/32 cycle (modulations and the shift live in the
+            first harmonics) and phase shifts, and whether none of their samples is clipped."""
+            xc = x[rows[0]:rows[-1] + 1]
+            usable = (~find_clipped(xc)).astype(np.float64)
+            raw, rate = segment_gain(xc, usable, cycles, fs, f, per_cycle)
+            xd, wd, ud, fsd = _block_means(xc, usable, cycles, fs, max(1, int(fs // (32 * f))))
+            eta = segment_phase(xd, wd, ud, fsd, f, per_cycle, segments=(first, raw.shape[1]))[0] if shift else None
+            return bool(usable.all()), raw, rate, xd, wd, ud, fsd, eta
+
+        def dac():
+            """The DAC grid and the rate of steps no grid explains."""
+            if self.dac != "auto":
+                return None, 0.0
+            grid = find_dac_grid(x[ref], cycles, fs, f)
+            # a few samples a tick: no single step stands out, their rate and edges do when pooled; and
+            # where the steps give the ticks, the edges from every pair's difference are the sharper
+            pooled = find_fast_dac(x[ref], cycles, fs, f, max_period=24 if self._dac_periods else 1,
+                                   ticks=None if grid is None else (grid.ticks_per_cycle, grid.cycles_per_period))
+            if grid is None or pooled is not None:
+                grid = pooled
+            # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
+            # unless its ticks repeat every few cycles and the estimator models periods of cycles
+            # the four strongest channels (one DAC drives them all: a weaker reference shows few steps;
+            # a clipped one shows them between its rails)
+            strong = x[[ref] + [int(c) for c in np.argsort(spread)[::-1] if c != ref][:3]]
+            # steps per second from 2 s of each (a rate, not a grid: a few thousand steps are plenty)
+            unlocked = max(step_rate(row[: int(2 * fs)], fs) for row in strong) if grid is None else 0.0
+            # a fast DAC's steps are small (7.5 kHz at 40 Hz: at most 130-260 uV, four samples a tick) and
+            # few pass 8 SDs; at 6 they show (370 a second) where neural data alone give none. What is
+            # reported and warned about stays the count at 8 SDs unless a grid is found
+            look = unlocked > _UNLOCKED_STEPS or (grid is None and self._dac_periods and max(
+                step_rate(row[: int(2 * fs)], fs, z_threshold=_SMALL_STEPS_Z) for row in strong) > _UNLOCKED_STEPS)
+            if look and self._dac_periods:
+                grid = find_dac_period(strong, cycles, fs, f)
+                if grid is None:
+                    grid = find_dac_clock(strong, cycles, fs, f)  # ticks at any phase: read where they held
+                    # nearly whole updates per cycle or two or three (a DAC on a clock of its own, ppm from the
+                    # waveform's): the held phases form a cluster or two in each tick and most of the clock's
+                    # bins stay empty; the same ticks are a period grid whose offset moves along a line.
+                    # Longer periods spread their held phases over the tick, and the clock bins them well
+                    grid = (grid and clock_as_grid(grid, max_period=3)) or grid
+                if grid is not None:
+                    unlocked = 0.0
+            return grid, unlocked
+
+        # the DAC search beside the channels' shares: the gain response needs its verdict only at the end
+        groups = channel_groups(n_ch, _PLAN_GROUPS) if self.track_amplitude else []
+        jobs = [dac] + [functools.partial(channel, rows) for rows in groups]
+        (grid, unlocked), *parts = mapper(_call, jobs)
+        response = None
+        if parts:
+            # a line of the raw gain must also show beside the fundamental, not with a DAC or on clipped data:
+            # a DAC's period or a rail's edges put lines of their own in the raw gain
+            plain = self.dac != "auto" or grid is not None or unlocked > 0
+            response = self._gain_response(parts, groups, f, ref, intact, plain, first, mapper)
+        # the waveform's harmonics on an unclipped reference (clipping makes its own); with a DAC
+        # below half the tick count, where the staircase's images start
+        ticks = getattr(grid, "ticks_per_cycle", None)
+        harmonics = waveform_harmonics(x[ref], cycles, fs, f, below=ticks / 2 if ticks else None) \
+            if intact.any() else None
+        return ref, grid, unlocked, response, harmonics
+
+    def _gain_response(self, parts, groups, f, ref, intact, plain, first, mapper):
+        """The plan's :class:`~artifactclean.modulation.GainResponse` from the ``parts`` of channel ``groups``
+        (see :meth:`_stretch_plan`); unless ``plain``, a line of the raw gain must also show beside the
+        fundamental."""
+        whole = all(p[0] for p in parts)
+        raw = np.concatenate([p[1] for p in parts])
+        xd, wd = (np.concatenate([p[k] for p in parts]) for k in (3, 4))
+        rate, ud, fsd = parts[0][2], parts[0][5], parts[0][6]
+        per_cycle = segments_per_cycle(self.tracking_hz, f)
+        # a pulsatile heartbeat's harmonics are modelled from its fundamental's phase; the response is
+        # designed without them, so it passes neither them nor the floor under them
+        pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact)) \
+            if getattr(self, "model_pulse", False) else None
+        if pulse is not None:
+            raw = raw - pulse.parts(raw, rate)[0]
+        response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
+        response.pulse = pulse
+        check = None if plain or not whole else raw
+
+        def support(rows):
             # a line of the gain passes only as far as both its sidebands show: a neural rhythm near the
             # fundamental is one line, and following it would put its mirror image beside the fundamental
-            check = None if plain or not usable.all() else raw
-            both = sideband_support(xd, wd, ud, fsd, f, response.freqs, above_hz=follow_below(f), gain=check,
-                                    gain_rate=rate)
-            response.response = np.minimum(response.response, both)
-            if getattr(self, "track_phase", False) and (b - a) * f / fs >= 40:  # a shift needs seconds of cycles
-                # the phase shift's own lines pass, nothing always does: without a phase modulation
-                # the shift is the neural floor, which the derivative would copy onto every harmonic
-                eta, _ = segment_phase(xd, wd, ud, fsd, f, per_cycle,
-                                       segments=(int(np.floor(cycles[0] * per_cycle)), raw.shape[1]))
-                response.phase = np.minimum(
-                    design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f),
-                                         over_subtraction=4.0).response, both)
-                # kept only where following it takes artifact off beside the fundamental
-                response.phase[~phase_helps(xd, wd, ud, fsd, f, per_cycle, raw, eta, response,
-                                            first=int(np.floor(cycles[0] * per_cycle)))] = 0.0
+            at = slice(rows[0], rows[-1] + 1)
+            return sideband_support(xd[at], wd[at], ud, fsd, f, response.freqs, above_hz=follow_below(f),
+                                    gain=None if check is None else check[at], gain_rate=rate)
+
+        both = np.concatenate(list(mapper(support, groups)))
+        response.response = np.minimum(response.response, both)
+        if parts[0][7] is None:
             return response
+        # the phase shift's own lines pass, nothing always does: without a phase modulation
+        # the shift is the neural floor, which the derivative would copy onto every harmonic
+        eta = np.concatenate([p[7] for p in parts])
+        response.phase = np.minimum(
+            design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f),
+                                 over_subtraction=4.0).response, both)
 
-        def harmonics(grid=None):
-            # the waveform's harmonics on an unclipped reference (clipping makes its own); with a DAC
-            # below half the tick count, where the staircase's images start
-            if not intact.any():
-                return None
-            ticks = getattr(grid, "ticks_per_cycle", None)
-            return waveform_harmonics(x[ref], cycles, fs, f, below=ticks / 2 if ticks else None)
+        def helps(rows):
+            # kept only where following it takes artifact off beside the fundamental
+            at = slice(rows[0], rows[-1] + 1)
+            return phase_helps(xd[at], wd[at], ud, fsd, f, per_cycle, raw[at], eta[at], response.rows(rows),
+                               first=first)
 
-        if self.dac != "auto":
-            return ref, None, 0.0, make_response(plain=True), harmonics()
-        grid = find_dac_grid(x[ref], cycles, fs, f)
-        # a few samples a tick: no single step stands out, their rate and edges do when pooled; and
-        # where the steps give the ticks, the edges from every pair's difference are the sharper
-        pooled = find_fast_dac(x[ref], cycles, fs, f, max_period=24 if self._dac_periods else 1,
-                               ticks=None if grid is None else (grid.ticks_per_cycle, grid.cycles_per_period))
-        if grid is None or pooled is not None:
-            grid = pooled
-        # steps that fit no grid locked to the cycle: a staircase this estimator cannot follow,
-        # unless its ticks repeat every few cycles and the estimator models periods of cycles
-        # the four strongest channels (one DAC drives them all: a weaker reference shows few steps;
-        # a clipped one shows them between its rails)
-        strong = x[[ref] + [int(c) for c in np.argsort(spread)[::-1] if c != ref][:3]]
-        # steps per second from 2 s of each (a rate, not a grid: a few thousand steps are plenty)
-        unlocked = max(step_rate(row[: int(2 * fs)], fs) for row in strong) if grid is None else 0.0
-        # a fast DAC's steps are small (7.5 kHz at 40 Hz: at most 130-260 uV, four samples a tick) and
-        # few pass 8 SDs; at 6 they show (370 a second) where neural data alone give none. What is
-        # reported and warned about stays the count at 8 SDs unless a grid is found
-        look = unlocked > _UNLOCKED_STEPS or (grid is None and self._dac_periods and max(
-            step_rate(row[: int(2 * fs)], fs, z_threshold=_SMALL_STEPS_Z) for row in strong) > _UNLOCKED_STEPS)
-        if look and self._dac_periods:
-            grid = find_dac_period(strong, cycles, fs, f)
-            if grid is None:
-                grid = find_dac_clock(strong, cycles, fs, f)  # ticks at any phase: read where they held
-                # nearly whole updates per cycle or two or three (a DAC on a clock of its own, ppm from the
-                # waveform's): the held phases form a cluster or two in each tick and most of the clock's
-                # bins stay empty; the same ticks are a period grid whose offset moves along a line.
-                # Longer periods spread their held phases over the tick, and the clock bins them well
-                grid = (grid and clock_as_grid(grid, max_period=3)) or grid
-            if grid is not None:
-                unlocked = 0.0
-        return ref, grid, unlocked, make_response(plain=grid is not None or unlocked > 0), harmonics(grid)
+        response.phase[~np.concatenate(list(mapper(helps, groups)))] = 0.0
+        return response
 
     def _validate_params(self) -> None:
         """The parameters every cycle estimator shares (subclasses add their own)."""
@@ -565,6 +617,11 @@ class CycleEstimator(ArtifactEstimator):
                 f"cycle: {type(self).__name__} cannot follow it and a spike-band residual will remain; check "
                 "the result with the validation figures", stacklevel=5)
         return plan
+
+
+def _call(job):
+    """``job()``: a mapper's function for a list of different jobs."""
+    return job()
 
 
 def _block_means(x, w, cycles, fs, q):
