@@ -50,10 +50,15 @@ def subset_clip(clip_level, fit: list[int]):
     return hi[fit], lo[fit]
 
 
-def _fit_group(est, x, n_keep: int, fit_kwargs: dict):
-    """Fit ``est`` on rows ``x`` and return the first ``n_keep`` rows of artifact and lost mask, and the report."""
-    est.fit(x, **fit_kwargs)
-    return est.artifact_[:n_keep], est.lost_[:n_keep], est.report_
+def _clean_group(est, x, n_keep: int, fit_kwargs: dict, out: np.ndarray):
+    """Clean rows ``x`` with ``est`` in place (the caller hands them over) and leave the first ``n_keep``
+    in ``out`` (rows of the cleaned array; ``x`` may be those rows already); return their lost mask and
+    the report."""
+    est._adopt_input = True
+    y = est.fit_transform(x, **fit_kwargs)[:n_keep]
+    if not np.shares_memory(y, out):
+        out[...] = y
+    return est.lost_[:n_keep], est.report_
 
 
 def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_reference=None,
@@ -101,18 +106,20 @@ def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_
     with ThreadPoolExecutor(max_workers=len(groups)) as pool:
         if hasattr(est, "prepare"):
             est.prepare(array_reader(x_model), model, fs, mapper=pool.map)  # blocks planned side by side
+        tasks = []
         for g in groups:
             sub, fit = est.for_channels(g)
             kwargs = dict(fs=fs, stim_model=model, clip_level=subset_clip(clip_level, fit),
                           stim_reference=monitor, nan_policy=nan_policy)
-            jobs.append(pool.submit(_fit_group, sub, x[fit], len(g), kwargs))
+            rows = x[g[0]:g[-1] + 1]  # groups are contiguous: their rows of x, cleaned in place
+            # a group that also fits another group's channel (a DAC grid's reference) works in a copy, taken
+            # before any group starts cleaning its rows
+            tasks.append((sub, rows if fit == list(g) else x[fit], len(g), kwargs, rows))
+        jobs = [pool.submit(_clean_group, *task) for task in tasks]
+        del tasks
         parts = [j.result() for j in jobs]
-    artifact = np.concatenate([p[0] for p in parts], axis=0)
-    lost = np.concatenate([p[1] for p in parts], axis=0)
-    with np.errstate(invalid="ignore"):
-        x -= artifact
-    x[lost] = 0.0
-    reports = [dict(channels=g, **p[2]) for g, p in zip(groups, parts)]
+    lost = np.concatenate([p[0] for p in parts], axis=0)
+    reports = [dict(channels=g, **p[1]) for g, p in zip(groups, parts)]
     return (x[0] if squeeze else x), lost, reports
 
 
