@@ -117,11 +117,14 @@ class DatWriter(_Writer):
         self._fhs = [open(p, "wb") for p in self._spools]
 
     def _put(self, k: int, chunk_uv: np.ndarray) -> None:
-        q = np.rint((chunk_uv - self.offset_uv) / self.gain_uv)
-        over = (q > 32767) | (q < -32768)
-        self.saturated += int(over.sum())
+        # in one temporary, cast and transposed in one pass: this runs on the main thread beside the
+        # cleaning workers (the former five temporaries took 0.84 s of an 8 ch x 120 s run there)
+        q = chunk_uv - self.offset_uv  # a new array, of the chunk's float type as before
+        q /= self.gain_uv
+        np.rint(q, out=q)
+        self.saturated += int(np.count_nonzero(q > 32767)) + int(np.count_nonzero(q < -32768))
         np.clip(q, -32768, 32767, out=q)
-        self._fhs[k].write(np.ascontiguousarray(q.T).astype("<i2").tobytes())
+        self._fhs[k].write(np.ascontiguousarray(q.T, dtype="<i2").data)
 
     def _interleave(self, rows_per_read: int = 2**22) -> None:
         """Spools (samples x group channels) into the file (samples x all channels), a few MiB at a time."""
