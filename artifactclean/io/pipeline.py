@@ -319,18 +319,25 @@ def clean_recording(
             # planned on the worker threads (the reader is locked); a row estimator's choices run
             # its passes over up to 20 s of every channel, so they report progress too
             base_map = map if pool is None else pool.map
+            # jobs done of those mapped so far, over all of prepare's maps (a block plan maps several times):
+            # one progress line, completed once prepare returns
+            planned = [0, 0]
 
             def planning_map(fn, items):
                 items = list(items)
+                planned[1] += len(items)
                 out = []
-                for i, res in enumerate(base_map(fn, items)):
+                for res in base_map(fn, items):
                     out.append(res)
+                    planned[0] += 1
                     if progress:
-                        progress(i + 1, len(items), "planning")
+                        progress(planned[0], planned[1] + 1, "planning")
                 return out
 
             est.prepare(lambda a, b, rows=None: read_all(a, b, channels if rows is None else [channels[i] for i in rows]),
                         model, fs, mapper=planning_map)
+            if progress:
+                progress(1, 1, "planning")
             # the plans' temporaries stay in this thread's heap unless handed back: the worker
             # threads allocate from heaps of their own (8 ch x 480 s, 2 workers: 1070 -> 960 MiB peak)
             _release_memory()
