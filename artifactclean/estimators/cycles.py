@@ -320,9 +320,11 @@ class CycleEstimator(ArtifactEstimator):
         ``rows`` (indices; all channels by default). The DAC grid
         (and the channel it is read from) comes from the middle of the
         block's plateau, at most ``_PLAN_S`` seconds, exactly as when the
-        whole array is cleaned at once. ``mapper`` spreads the blocks over
-        workers (``ThreadPoolExecutor.map``; ``read`` must then be safe to
-        call from several threads).
+        whole array is cleaned at once. Blocks are planned one after
+        another; ``mapper`` spreads each block's work (its DAC search,
+        groups of channels and heartbeat rows) over workers
+        (``ThreadPoolExecutor.map``; ``read`` must then be safe to call from
+        several threads). It must not map onto a pool this call runs on.
         """
         ranges = {block_key(b): (s, e) for s, e, b in self.work_ranges(model, fs)}
         blocks = list(model.blocks)
@@ -478,7 +480,7 @@ class CycleEstimator(ArtifactEstimator):
         # a shift needs seconds of cycles
         shift = getattr(self, "track_phase", False) and (b - a) * f / fs >= 40
 
-        def channel(rows):
+        def group_share(rows):
             """Channels ``rows``' raw gains, their means over ~1/32 cycle (modulations and the shift live in the
             first harmonics) and phase shifts, and whether none of their samples is clipped."""
             xc = x[rows[0]:rows[-1] + 1]
@@ -526,7 +528,7 @@ class CycleEstimator(ArtifactEstimator):
 
         # the DAC search beside the channels' shares: the gain response needs its verdict only at the end
         groups = channel_groups(n_ch, _PLAN_GROUPS) if self.track_amplitude else []
-        jobs = [dac] + [functools.partial(channel, rows) for rows in groups]
+        jobs = [dac] + [functools.partial(group_share, rows) for rows in groups]
         (grid, unlocked), *parts = mapper(_call, jobs)
         response = None
         if parts:
