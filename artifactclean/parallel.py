@@ -102,10 +102,9 @@ def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_
         warnings.warn(f"no stimulation found{hint}: the data are returned unchanged. If the "
                       "frequency hint may be wrong, run `artifactclean survey` without it", stacklevel=3)
     groups = channel_groups(x.shape[0], workers)
-    jobs = []
     with ThreadPoolExecutor(max_workers=len(groups)) as pool:
         if hasattr(est, "prepare"):
-            est.prepare(array_reader(x_model), model, fs, mapper=pool.map)  # blocks planned side by side
+            est.prepare(array_reader(x_model), model, fs, mapper=pool.map)  # each block's work on the workers
         tasks = []
         for g in groups:
             sub, fit = est.for_channels(g)
