@@ -33,6 +33,7 @@ from scipy import signal
 
 from .phase_stats import fdr_bh, mean_direction_ci, plv, ppc, ppc_across, preferred_phase, rayleigh, tost_ind
 from .stimulation import StimulationModel
+from ._numeric import fractional_part
 
 __all__ = ["check_spike_times", "condition_stretches", "spike_phases", "lfp_phase", "residue_null_ppc", "residue_p_value", "lock_table"]
 
@@ -99,7 +100,7 @@ def spike_phases(samples: np.ndarray, model: StimulationModel, stretches: list[d
             b = st["block"]
             # the block's linear phase model, continued outside it for off stretches
             cyc = (samples[sel] - b.ref_sample) * (b.freq_hz / model.fs) + b.phase_ref / (2 * np.pi)
-            ph[sel] = 2 * np.pi * np.mod(cyc, 1.0)
+            ph[sel] = 2 * np.pi * fractional_part(cyc)
             cond[sel] = st["condition"]
             grp[sel] = st["block_index"]
     return ph, cond, grp

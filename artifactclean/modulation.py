@@ -25,6 +25,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from .estimators._kernels import gain_sums, quadrature_sums, segment_stats
+from ._numeric import fractional_part
 
 __all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
            "phase_highpass", "phase_shift", "segment_gain", "segment_phase", "segments_per_cycle", "shift_centres", "sideband_support",
@@ -168,7 +169,7 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         Gain samples per second.
     """
     n_bins = max(8, int(round(fs / f)))
-    b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
+    b = np.floor(fractional_part(u) * n_bins).astype(np.int64)
     useg = u * per_cycle
     seg = np.floor(useg).astype(np.int64)
     seg -= seg[0]
@@ -317,7 +318,7 @@ def segment_phase(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: flo
         Samples of ``eta`` per second.
     """
     n_bins = max(8, int(round(fs / f)))
-    b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
+    b = np.floor(fractional_part(u) * n_bins).astype(np.int64)
     seg = np.floor(u * per_cycle).astype(np.int64)
     starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
     first, n_out = (int(seg[0]), starts.size) if segments is None else segments
@@ -332,7 +333,7 @@ def segment_phase(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: flo
         keep = w[ch] > 0
         # read at each sample's own phase (linear between bin centres): at few bins per cycle a
         # bin's value is off by the waveform's change across the bin
-        at_u = np.mod(u, 1.0) * n_bins - 0.5
+        at_u = fractional_part(u) * n_bins - 0.5
         t_s, d_s = (np.interp(at_u, np.arange(n_bins), v, period=n_bins) for v in (tmpl, deriv))
         xh, th, dh = (signal.sosfiltfilt(sos, v * keep)[None] for v in (x[ch], t_s, d_s))
         e, ok = phase_shift(xh, th, dh, w[ch:ch + 1], starts)
@@ -367,7 +368,7 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
     ``f / 2``).
     """
     n_bins = max(8, int(round(fs / f)))
-    b = np.floor(np.mod(u, 1.0) * n_bins).astype(np.int64)
+    b = np.floor(fractional_part(u) * n_bins).astype(np.int64)
     first = np.floor(u[0] * per_cycle) if first is None else first  # the segments' first number
     centres = (first + np.arange(gain.shape[1]) + 0.5) / per_cycle
     sos = phase_highpass(f, fs)
@@ -384,7 +385,7 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
         deriv = _smooth_derivative(tmpl)
         g = np.interp(u, centres, ndimage.convolve1d(gain[ch], response.taps(ch), mode="nearest"))
         e = np.interp(u, centres, ndimage.convolve1d(eta[ch], taps, mode="nearest"))
-        at_u = np.mod(u, 1.0) * n_bins - 0.5
+        at_u = fractional_part(u) * n_bins - 0.5
         t_s, d_s = (np.interp(at_u, np.arange(n_bins), v, period=n_bins) for v in (tmpl, deriv))
         r0 = (x[ch] - g * t_s) * (w[ch] > 0)
         r1 = r0 - g * e * d_s * (w[ch] > 0)

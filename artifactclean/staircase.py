@@ -32,6 +32,7 @@ import numpy as np
 from scipy import signal
 
 from .clipping import find_clipped
+from ._numeric import fractional_part
 
 __all__ = ["DacClock", "DacGrid", "clock_as_grid", "find_dac_clock", "find_dac_grid", "find_dac_period", "find_fast_dac", "step_rate"]
 
@@ -89,7 +90,7 @@ class DacGrid:
 
     def edge_distance(self, cycles: np.ndarray) -> np.ndarray:
         """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
-        return np.mod(self._position(cycles), 1.0)
+        return fractional_part(self._position(cycles))
 
 
 @dataclass(frozen=True)
@@ -129,7 +130,7 @@ class DacClock:
 
     def edge_distance(self, cycles: np.ndarray) -> np.ndarray:
         """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
-        return np.mod(self.ticks_per_cycle * cycles - self.offset, 1.0)
+        return fractional_part(self.ticks_per_cycle * cycles - self.offset)
 
     def held_cycles(self, ticks: np.ndarray) -> np.ndarray:
         """Stimulation phase (unwrapped cycles) at which each tick sampled the waveform."""
@@ -159,7 +160,7 @@ def find_dac_clock(x: np.ndarray, cycles: np.ndarray, fs: float, freq: float, *,
     slope = (cycles[-1] - cycles[0]) / max(cycles.size - 1, 1)
     # tick k at sample t0 + k * period, i.e. at phase cycles[0] + (t0 + k * period) * slope
     offset = float(rho * (cycles[0] + t0 * slope))
-    frac = np.mod(rho * (cycles[0] + t * slope) - offset, 1.0)
+    frac = fractional_part(rho * (cycles[0] + t * slope) - offset)
     conc = float(np.abs(np.mean(np.exp(2j * np.pi * frac))))
     if conc < min_concentration:
         return None
@@ -759,7 +760,7 @@ def _fold_concentration(u: np.ndarray, ms: np.ndarray, width: int = 64) -> np.nd
     a table of the second for ``k < width`` and one matrix-vector product per
     ``width`` candidates take the place of an exponential per candidate and step.
     """
-    u = np.mod(u, 1.0)
+    u = fractional_part(u)
     table = np.exp(2j * np.pi * np.outer(np.arange(width), u))
     r = np.empty(ms.size)
     for c0 in range(0, ms.size, width):
@@ -784,7 +785,7 @@ def _vote_offset(m: int, u_lo: np.ndarray, u_hi: np.ndarray, weights: np.ndarray
     With ``weights`` each interval votes with its weight (a pair of samples
     with the power of its difference).
     """
-    a = np.mod(m * u_lo, 1.0)
+    a = fractional_part(m * u_lo)
     w = m * (u_hi - u_lo)
     start = np.floor(a * nb).astype(int)
     width = np.maximum(1, np.round(w * nb).astype(int))

@@ -28,6 +28,7 @@ from scipy import fft as sp_fft
 from scipy import ndimage, optimize, signal
 
 from .clipping import mask_runs
+from ._numeric import fractional_part
 
 __all__ = [
     "decimate_reader",
@@ -159,7 +160,7 @@ class StimulationModel:
         for b in self.blocks:
             lo, hi = max(start, b.start), min(stop, b.stop)
             if hi > lo:
-                out[lo - start:hi - start] = 2 * np.pi * np.mod(self.cycles(b, lo, hi), 1.0)
+                out[lo - start:hi - start] = 2 * np.pi * fractional_part(self.cycles(b, lo, hi))
         return out
 
     def stim_mask(self) -> np.ndarray:
@@ -969,7 +970,7 @@ def _sham_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: flo
         return  # a clipped reference keeps the envelope's sham (see _choose_ramp_shape)
     centres, tmpl, offset = got[:3]
     x = np.asarray(read(lo, hi), dtype=np.float64) - offset
-    t = np.interp(np.mod(model.cycles(blk, lo, hi), 1.0), centres, tmpl, period=1.0)
+    t = np.interp(fractional_part(model.cycles(blk, lo, hi)), centres, tmpl, period=1.0)
     h = int(max(1, min(max(round(fs / 1000.0), (hi - lo) // 2000), ramp // 16)))
     sums = _chunk_sums(x, t, h)
     m = x.size
@@ -1322,7 +1323,7 @@ def _cycle_template(read, model: StimulationModel, blk: StimBlock, a: int, b: in
     cyc = model.fs / blk.freq_hz
     x = np.asarray(read(a, b), dtype=np.float64)
     n_bins = int(max(8, min(256, cyc)))
-    ph = np.mod(model.cycles(blk, a, b), 1.0)
+    ph = fractional_part(model.cycles(blk, a, b))
     k = np.minimum((ph * n_bins).astype(np.int64), n_bins - 1)
     cnt = np.bincount(k, minlength=n_bins)
     if np.any(cnt == 0):
@@ -1366,7 +1367,7 @@ def _step_sample(read, model: StimulationModel, blk: StimBlock, edge: int, fs_ds
         return int(edge)
     centres, tmpl, offset = got[:3]
     w = np.asarray(read(lo, hi), dtype=np.float64) - offset
-    t = np.interp(np.mod(model.cycles(blk, lo, hi), 1.0), centres, tmpl, period=1.0)
+    t = np.interp(fractional_part(model.cycles(blk, lo, hi)), centres, tmpl, period=1.0)
     e = t * t - 2.0 * w * t
     if rising:  # cost of the artifact starting at lo + j: sum of e from j on
         cost = np.concatenate((np.cumsum(e[::-1])[::-1], [0.0]))
@@ -1498,7 +1499,7 @@ def _ramp_window(read, model: StimulationModel, blk: StimBlock, foot: int, corne
     if got is None:
         return None
     centres, tmpl, offset, railed, rails = got
-    ph = np.mod(model.cycles(blk, lo, hi), 1.0)
+    ph = fractional_part(model.cycles(blk, lo, hi))
     t = np.interp(ph, centres, tmpl, period=1.0)
     x = np.asarray(read(lo, hi), dtype=np.float64)
     if railed.any():

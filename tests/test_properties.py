@@ -133,3 +133,17 @@ def test_row_models_are_scale_equivariant(seed, scale):
         a = cls().fit(rec.data, fs=rec.fs, stim_model=model).artifact_
         b = cls().fit(scale * rec.data, fs=rec.fs, stim_model=model).artifact_
         np.testing.assert_allclose(b, scale * a, rtol=1e-6, atol=1e-6 * scale * np.abs(a).max())
+
+
+@settings(max_examples=200, deadline=None, derandomize=True)
+@given(u=st.lists(st.floats(allow_nan=False, allow_infinity=False), min_size=1, max_size=50),
+       v=st.lists(st.floats(allow_nan=False, allow_infinity=False, width=32), min_size=1, max_size=50))
+def test_fractional_part_is_numpy_mod_to_the_bit(u, v):
+    # reference: numpy.mod(u, 1.0), which the phase arithmetic used before (plans and outputs must not move)
+    from artifactclean._numeric import fractional_part
+
+    for x, bits in ((np.asarray(u, dtype=np.float64), np.uint64), (np.asarray(v, dtype=np.float32), np.uint32),
+                    (np.array([-0.0, -1e-300, -1.0, 2.0**53 + 2, -(2.0**60)]), np.uint64)):
+        got, want = fractional_part(x), np.mod(x, 1.0)
+        assert got.dtype == want.dtype
+        np.testing.assert_array_equal(got.view(bits), want.view(bits))

@@ -11,6 +11,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage, signal
 
+from .._numeric import fractional_part
+
 try:  # numba installs from wheels on the common platforms; the library runs without it
     import numba
 
@@ -111,7 +113,7 @@ def phase_position(u, row0, n_bins, stride, n_groups):
     """``(i0, i1, beta, b0, b1, alpha)`` of phases ``u`` (cycles): the two group templates and the two
     bin centres each phase lies between (row ``row0`` starts group 0), for :func:`grouped_eval`."""
     uc = u - row0
-    bpos = np.mod(uc, 1.0) * n_bins - 0.5
+    bpos = fractional_part(uc) * n_bins - 0.5
     b0f = np.floor(bpos).astype(np.int64)
     alpha = bpos - b0f
     dt = index_dtype(n_bins)

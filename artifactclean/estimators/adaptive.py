@@ -41,6 +41,7 @@ import numpy as np
 
 from ._kernels import HAVE_NUMBA, _jit
 from .cycles import CycleEstimator, waveform_harmonics
+from .._numeric import fractional_part
 
 __all__ = ["AdaptiveCanceller", "rls_filter", "nlms_filter"]
 
@@ -236,7 +237,7 @@ class AdaptiveCanceller(CycleEstimator):
             m = np.pad(monitor, half, mode="edge")
             return np.stack([m[k:k + monitor.size] for k in range(int(self.n_taps))], axis=1)
         k = np.arange(1, h + 1)
-        ph = 2 * np.pi * np.outer(np.mod(u, 1.0), k)
+        ph = 2 * np.pi * np.outer(fractional_part(u), k)
         return np.hstack([np.cos(ph), np.sin(ph)])
 
     def _fit(self, refs, d, use, fs):

@@ -30,6 +30,7 @@ from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_respo
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, piece_bounds, widen_flags
 from .base import ArtifactEstimator
+from .._numeric import fractional_part
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
            "noise_of_sequences", "plan_stretch", "settle_edges", "spike_outliers", "trapezoid"]
@@ -110,7 +111,7 @@ def waveform_harmonics(x: np.ndarray, cycles: np.ndarray, fs: float, f: float, *
     least 1.
     """
     n_bins = max(8, int(round(fs / f)))
-    b = np.floor(np.mod(cycles, 1.0) * n_bins).astype(np.int64)
+    b = np.floor(fractional_part(cycles) * n_bins).astype(np.int64)
     cnt = np.maximum(np.bincount(b, w, n_bins), 1e-12)
     mean = np.bincount(b, x if w is None else w * x, n_bins) / cnt
     amp = np.abs(np.fft.rfft(mean - mean.mean()))[1:]
