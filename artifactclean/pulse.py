@@ -52,8 +52,18 @@ __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental",
 HEART_HZ = (0.6, 3.5)
 #: half-length (s) of the complex band-pass that reads the heartbeat's phase from the gain
 PULSE_HALF_S = 2.0
-#: the heartbeat's phase and amplitude are smoothed to this (Hz): they change more slowly than the floor does
-_SMOOTH_HZ = 0.3
+#: the heartbeat's phase and amplitude, where the model is applied, are smoothed to this (Hz), which must pass
+#: the heart rate's changes with breathing (respiratory sinus arrhythmia: heart-rate variability's
+#: high-frequency band, 0.15-0.4 Hz; Task Force of the ESC and NASPE 1996, Circulation 93:1043, from memory);
+#: the floor's faster wander is smoothed off. 0.3 lagged the rate, and the phase error, times each harmonic's
+#: number, left the pulse's harmonics in the LFP (session 22, `benchmarks/acceptance.py --seeds 1 2 3 4`,
+#: pulsatile, LFP away: 20 Hz 0.043-0.056 -> 0.028-0.036, 10 Hz 0.067-0.090 -> 0.043-0.069, 40 Hz seed 4
+#: 0.041 -> 0.028; 0.8 and 1.2 gave the same within 0.005)
+_SMOOTH_HZ = 0.6
+#: the same for the regressors the pulse's shape is fitted on (:func:`fit_pulse`): its test of each harmonic
+#: takes the regressors for independent of the floor, and a phase passing more of the floor's wander breaks
+#: that (a sinusoidal heartbeat on channels of one sign got a 2nd harmonic of 0.071 at 0.6, 0.034 at 0.3)
+_FIT_SMOOTH_HZ = 0.3
 #: half-width of that band-pass, a fraction of the heart rate: wide enough for the rate's wander over a block,
 #: narrow enough to keep respiration and the second harmonic out (this project's choice)
 _WIDTH = 0.35
@@ -229,20 +239,22 @@ def _analytic(dev: np.ndarray, rate: float, heart_hz: float) -> np.ndarray:
             + 1j * ndimage.convolve1d(dev, taps.imag, axis=-1, mode="nearest"))
 
 
-def _smooth_fundamental(c: np.ndarray, rate: float) -> tuple[np.ndarray, np.ndarray]:
-    """Amplitude and unwrapped phase of the complex fundamental ``c``, smoothed to :data:`_SMOOTH_HZ`."""
+def _smooth_fundamental(c: np.ndarray, rate: float,
+                        smooth_hz: float = _SMOOTH_HZ) -> tuple[np.ndarray, np.ndarray]:
+    """Amplitude and unwrapped phase of the complex fundamental ``c``, smoothed to ``smooth_hz``."""
     # the band holds neural floor besides the line; the heartbeat's rate and strength change more slowly than
     # that floor, so phase and amplitude are smoothed further (a linear phase passes a symmetric FIR unchanged)
-    lp = signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(_SMOOTH_HZ, 0.45 * rate), fs=rate)
+    lp = signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(smooth_hz, 0.45 * rate), fs=rate)
     lp /= lp.sum()
     ph = ndimage.convolve1d(np.unwrap(np.angle(c)), lp, mode="nearest")
     amp = ndimage.convolve1d(np.abs(c), lp, mode="nearest")
     return amp, ph
 
 
-def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float) -> tuple[np.ndarray, np.ndarray]:
+def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float,
+                     smooth_hz: float = _SMOOTH_HZ) -> tuple[np.ndarray, np.ndarray]:
     """Amplitude ``a(t)`` and unwrapped phase ``phi(t)`` of the heartbeat's fundamental in ``dev``."""
-    return _smooth_fundamental(_analytic(dev, rate, heart_hz), rate)
+    return _smooth_fundamental(_analytic(dev, rate, heart_hz), rate, smooth_hz)
 
 
 def _bin_covariance(z: np.ndarray, bins: np.ndarray) -> np.ndarray:
@@ -324,26 +336,28 @@ def pool_weights(dev: np.ndarray, rate: float, heart_hz: float, ref: int,
     return w
 
 
-def fundamental(dev: np.ndarray, rate: float, heart_hz: float,
-                weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+def fundamental(dev: np.ndarray, rate: float, heart_hz: float, weights: np.ndarray | None = None,
+                smooth_hz: float = _SMOOTH_HZ) -> tuple[np.ndarray, np.ndarray]:
     """Amplitude and unwrapped phase of the heartbeat's fundamental in a relative gain deviation ``dev``.
 
     ``dev`` is a reference channel's gain over its plateau level, less the
     block's envelope (0 where the envelope is below the foot), ``rate``
     samples a second; or, with ``weights`` (:func:`pool_weights`, one per
-    row), such rows of several channels, pooled. The first
+    row), such rows of several channels, pooled. Both are smoothed to
+    ``smooth_hz`` (:data:`_SMOOTH_HZ` where the model is applied,
+    :data:`_FIT_SMOOTH_HZ` where its shape is fitted). The first
     :data:`PULSE_HALF_S` s at each end hold the edge values: a track is
     read away from them, or from a whole block.
     """
     dev = np.asarray(dev, dtype=np.float64)
     if weights is None:
-        return _amplitude_phase(dev, rate, heart_hz)
+        return _amplitude_phase(dev, rate, heart_hz, smooth_hz)
     rows = np.atleast_2d(dev)[np.flatnonzero(weights)]
-    return fundamental_of_rows(((None, rate, row) for row in rows), heart_hz, weights)[1:]
+    return fundamental_of_rows(((None, rate, row) for row in rows), heart_hz, weights, smooth_hz)[1:]
 
 
-def fundamental_of_rows(rows, heart_hz: float,
-                        weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def fundamental_of_rows(rows, heart_hz: float, weights: np.ndarray | None = None,
+                        smooth_hz: float = _SMOOTH_HZ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """:func:`fundamental` of relative gain deviations that arrive one channel at a time.
 
     ``rows`` yields ``(positions, rate, dev)`` per channel, in the order of
@@ -356,13 +370,13 @@ def fundamental_of_rows(rows, heart_hz: float,
     total, pos, rate = None, None, None
     for k, (pos, rate, dev) in enumerate(rows):
         if use is None:
-            amp, ph = _amplitude_phase(np.asarray(dev, dtype=np.float64), rate, heart_hz)
+            amp, ph = _amplitude_phase(np.asarray(dev, dtype=np.float64), rate, heart_hz, smooth_hz)
             return pos, amp, ph
         c = np.conj(use[k]) * _analytic(np.asarray(dev, dtype=np.float64), rate, heart_hz)
         total = c if total is None else total + c
     if total is None:
         raise ValueError("no rows to read the heartbeat's fundamental from")
-    amp, ph = _smooth_fundamental(total, rate)
+    amp, ph = _smooth_fundamental(total, rate, smooth_hz)
     return pos, amp, ph
 
 
@@ -392,7 +406,7 @@ def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray,
                 weights: np.ndarray | None = None) -> np.ndarray:
     """``a(t) exp(i h phi(t))`` for each harmonic number in ``hs``, from the fundamental of ``dev``
     (one row, or rows pooled with ``weights``)."""
-    amp, ph = fundamental(dev, rate, heart_hz, weights)
+    amp, ph = fundamental(dev, rate, heart_hz, weights, _FIT_SMOOTH_HZ)
     return amp[None, :] * np.exp(1j * np.asarray(hs)[:, None] * ph[None, :])
 
 
