@@ -67,8 +67,12 @@ _FIT_SMOOTH_HZ = 0.3
 #: half-width of that band-pass, a fraction of the heart rate: wide enough for the rate's wander over a block,
 #: narrow enough to keep respiration and the second harmonic out (this project's choice)
 _WIDTH = 0.35
-#: a fundamental this many times its floor (mean over channels) is taken for a heartbeat (this project's choice)
-_HEART_LINE = 4.0
+#: a fundamental this many times its floor (mean over channels) is taken for a heartbeat (this project's choice;
+#: session 22 lowered it from 4: a person's resting 1.2 Hz heart with 6% breathing arrhythmia stood 3.5 times its
+#: floor at 10 Hz and went unmodelled, LFP away 0.25 -> 0.08. Lines of the neural floor reach 2.5-3.6, and a
+#: rhythm beside the fundamental 9, without a heartbeat; they pass here but no harmonic of theirs stands out of
+#: the floor (`_SIGNIFICANCE`), so no pulse is modelled: the acceptance traces are unchanged)
+_HEART_LINE = 3.0
 #: each harmonic of the pooled shape is multiplied by ``1 - this / z``, z its fitted power over what the
 #: floor alone gives such a fit (its expectation, 2 S / (T a^2)): none below this, nearly all far above
 #: (this project's choice: with 2 a sinusoidal heartbeat's floor, fitted at 4 times its mean on every
