@@ -297,6 +297,20 @@ def test_a_resting_heart_that_speeds_up_with_each_breath_is_found():
     assert away < 0.12, away
 
 
+
+def test_a_slow_heart_is_not_taken_for_its_second_harmonic():
+    # a 0.9 Hz heart with 8% breathing arrhythmia, 40 Hz stimulation: its fundamental's line stood 2.6 times
+    # its floor, its 2nd harmonic's 4.4, and the pulse was modelled at 1.79 Hz, leaving 4.6 times the neural
+    # power within +-3 Hz of a harmonic (goal 2); from the fundamental 0.6
+    rec = _breathing_heart(40.0, 0.9, 0.08, 13)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        est = TemplateSubtraction()
+        band = max(score_cleaning(rec, est.fit_transform(rec.data, fs=rec.fs))["lfp_band_ratio"])
+    block = [b for b in est.report_["blocks"] if b["kind"] == "active"][0]
+    assert block["heart_rate_hz"] == pytest.approx(0.9, abs=0.05)
+    assert band < 2.0, band
+
 @pytest.mark.parametrize("seed", [4, 5])
 def test_a_line_in_the_gain_without_a_heartbeat_is_not_modelled_as_a_pulse(seed):
     # no heartbeat: the gain's strongest line in the heart band (a neural rhythm beside the fundamental,
