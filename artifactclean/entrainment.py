@@ -31,9 +31,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import signal
 
+from ._numeric import fractional_part
 from .phase_stats import fdr_bh, mean_direction_ci, plv, ppc, ppc_across, preferred_phase, rayleigh, tost_ind
 from .stimulation import StimulationModel
-from ._numeric import fractional_part
 
 __all__ = ["check_spike_times", "condition_stretches", "spike_phases", "lfp_phase", "residue_null_ppc", "residue_p_value", "lock_table"]
 

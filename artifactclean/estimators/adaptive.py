@@ -39,9 +39,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from .._numeric import fractional_part
 from ._kernels import HAVE_NUMBA, _jit
 from .cycles import CycleEstimator, waveform_harmonics
-from .._numeric import fractional_part
 
 __all__ = ["AdaptiveCanceller", "rls_filter", "nlms_filter"]
 

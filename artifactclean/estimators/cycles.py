@@ -20,6 +20,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import ndimage, signal
 
+from .._numeric import fractional_part
 from ..clipping import find_clipped
 from ..parallel import channel_groups
 from ..stimulation import ramp_level
@@ -30,7 +31,6 @@ from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_respo
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, piece_bounds, widen_flags
 from .base import ArtifactEstimator
-from .._numeric import fractional_part
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
            "noise_of_sequences", "plan_stretch", "settle_edges", "spike_outliers", "trapezoid"]
