@@ -145,7 +145,7 @@ def segments_per_cycle(tracking_hz: float, f: float) -> int:
 
 
 def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
-                 per_cycle: int, *, compiled: bool = True) -> tuple[np.ndarray, float]:
+                 per_cycle: int, *, compiled: bool = True, return_shift: bool = False):
     """Raw gain of each channel per part of a cycle against the stretch's mean cycle.
 
     Parameters
@@ -160,6 +160,8 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         Gain samples per cycle.
     compiled : bool
         Compiled sums (numba) when installed; the same numbers as numpy's.
+    return_shift : bool
+        Return also where each gain stood before :func:`to_middles` moved it.
 
     Returns
     -------
@@ -167,6 +169,9 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         Least-squares scale of the mean cycle in each segment, relative to 1.
     rate : float
         Gain samples per second.
+    shift : ndarray, shape (n_channels, n_segments)
+        With ``return_shift``: where each gain stood, in segments from its
+        segment's middle (0 where unknown), as :func:`to_middles` took it.
     """
     n_bins = max(8, int(round(fs / f)))
     b = np.floor(fractional_part(u) * n_bins).astype(np.int64)
@@ -192,7 +197,10 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         ok = den[ch] > 0.1 * np.median(den[ch])
         if ok.sum() >= 2:
             g[ch] = np.interp(np.arange(n_seg), np.flatnonzero(ok), num[ch, ok] / den[ch, ok])
-    return to_middles(g, np.where(den > 0.1 * np.median(den, axis=1, keepdims=True), shift, 0.0), per_cycle), f * per_cycle
+    shift = np.where(den > 0.1 * np.median(den, axis=1, keepdims=True), shift, 0.0)
+    if return_shift:
+        return to_middles(g, shift, per_cycle), f * per_cycle, shift
+    return to_middles(g, shift, per_cycle), f * per_cycle
 
 
 def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int, slope: np.ndarray | None = None) -> np.ndarray:
@@ -219,6 +227,30 @@ def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int, slope: np.ndarr
     if slope is None:
         slope = cycle_slope(g, per_cycle)
     return g - slope * np.clip(np.nan_to_num(shift), -3.0, 3.0)
+
+
+def as_moved(seq: np.ndarray, shift: np.ndarray, per_cycle: int, slope: np.ndarray | None = None) -> np.ndarray:
+    """A smooth modulation ``seq`` (at the segments' middles) as :func:`to_middles` leaves it in the gains.
+
+    A gain standing ``shift`` segments from its middle holds the modulation
+    there, about ``seq + shift slope`` (``slope``: the modulation's
+    derivative per segment; by default ``numpy.gradient``, which a
+    modulation near the segment rate's Nyquist frequency outruns: give it
+    exactly where it is known), and is moved back by the slope of a cycle's
+    mean: a modulation near the stimulation frequency keeps ``shift (slope
+    - cycle_slope(seq))`` (a cycle's mean takes most of its slope off).
+    ``seq`` may be complex; ``shift`` broadcasts against it.
+    """
+    seq = np.asarray(seq)
+    if seq.shape[-1] < 2:
+        return seq.copy()
+    if slope is None:
+        slope = np.gradient(seq, axis=-1)
+    if np.iscomplexobj(seq):
+        kept = slope - (cycle_slope(seq.real, per_cycle) + 1j * cycle_slope(seq.imag, per_cycle))
+    else:
+        kept = slope - cycle_slope(seq, per_cycle)
+    return seq + np.clip(np.nan_to_num(shift), -3.0, 3.0) * kept
 
 
 def cycle_slope(g: np.ndarray, per_cycle: int) -> np.ndarray:

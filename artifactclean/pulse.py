@@ -42,7 +42,7 @@ import numpy as np
 from scipy import linalg, ndimage, signal
 
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
-from .modulation import _FOOT, _MAX_BOOST, plateau_level
+from .modulation import _FOOT, _MAX_BOOST, as_moved, plateau_level
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "join_tracks",
            "pool_weights", "relative_deviation"]
@@ -150,7 +150,7 @@ class PulseModel:
 
     def relative(self, ref_gain: np.ndarray | None, rate: float, envelope: np.ndarray | None = None,
                  level: float | None = None, n_rows: int | None = None,
-                 times: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+                 times: np.ndarray | None = None, slope: bool = False) -> tuple[np.ndarray, ...]:
         """Each channel's pulse harmonics relative to its plateau level, as fitted and as carried.
 
         With a :attr:`track` and ``times`` (the sample position of each
@@ -166,6 +166,10 @@ class PulseModel:
         what a mean over each segment and the linear interpolation between
         segment centres take off, as the gain filter restores for what it
         passes. ``n_rows`` channels are returned (the model's by default).
+        With ``slope``, a third array: the second's derivative per element,
+        from the fundamental's slow amplitude and phase (a difference of the
+        harmonics themselves, ``numpy.gradient``, takes 0.76 of a 6 Hz
+        harmonic's slope at 30 elements a second).
         """
         if self.track is not None and times is not None:
             t, a, p = self.track
@@ -178,22 +182,30 @@ class PulseModel:
             if level is None:
                 level = _plateau_median(ref_gain, envelope) if envelope is not None else float(np.mean(ref_gain))
             amp, ph = _amplitude_phase(relative_deviation(ref_gain, level, envelope), rate, self.heart_hz)
-        return self._evaluate(amp, ph, rate, n_rows)
+        return self._evaluate(amp, ph, rate, n_rows, slope)
 
     def _evaluate(self, amp: np.ndarray, ph: np.ndarray, rate: float,
-                  n_rows: int | None) -> tuple[np.ndarray, np.ndarray]:
-        """The harmonics, fitted and carried (see :meth:`relative`), from the fundamental's amplitude and phase."""
+                  n_rows: int | None, slope: bool = False) -> tuple[np.ndarray, ...]:
+        """The harmonics, fitted and carried (see :meth:`relative`), from the fundamental's amplitude and phase;
+        with ``slope``, the carried ones' derivative per element too."""
         hs = np.arange(2, self.coefs.shape[1] + 2)
         n_rows = self.coefs.shape[0] if n_rows is None else n_rows
         coefs = self.coefs[np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)] * (hs * self.heart_hz < 0.45 * rate)
         reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
         fitted = np.real(np.einsum("ch,hn->chn", coefs, reg))
         boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate) ** 3, 1.0 / _MAX_BOOST)
-        return fitted.sum(axis=1), (fitted * boost[None, :, None]).sum(axis=1)
+        out = (fitted.sum(axis=1), (fitted * boost[None, :, None]).sum(axis=1))
+        if not slope:
+            return out
+        if amp.size < 2:
+            return out + (np.zeros_like(out[1]),)
+        d_reg = reg * (np.gradient(amp) / np.maximum(amp, 1e-300) + 1j * hs[:, None] * np.gradient(ph))
+        return out + (np.real(np.einsum("ch,hn->cn", coefs * boost[None, :], d_reg)),)
 
     def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-              scale=None, times: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """The pulse's harmonics in each gain sequence (one per row of the model), fitted and carried.
+              scale=None, times: np.ndarray | None = None, slope: bool = False) -> tuple[np.ndarray, ...]:
+        """The pulse's harmonics in each gain sequence (one per row of the model), fitted and carried
+        (and with ``slope`` the carried ones' derivative per element, see :meth:`relative`).
 
         As :meth:`relative`: from the track at ``times``, or from the rows
         of ``gain`` the fundamental is read from (:meth:`pooled`); ``scale``
@@ -210,11 +222,11 @@ class PulseModel:
         if self.weights is not None and (self.track is None or times is None):
             # the fundamental pooled over channels, read as :meth:`relative` reads the reference's
             dev = relative_deviation(gain, levels[:, None], envelope)
-            fitted, whole = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0])
+            out = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0], slope)
         else:
-            fitted, whole = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0],
-                                          times=times)
-        return fitted * levels[:, None], whole * levels[:, None]
+            out = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0], times=times,
+                                slope=slope)
+        return tuple(a * levels[:, None] for a in out)
 
 
 def relative_deviation(gain: np.ndarray, level, envelope: np.ndarray | None = None) -> np.ndarray:
@@ -411,11 +423,19 @@ def join_tracks(parts, heart_hz: float, fs: float) -> tuple[np.ndarray, np.ndarr
 
 
 def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray,
-                weights: np.ndarray | None = None) -> np.ndarray:
+                weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """``a(t) exp(i h phi(t))`` for each harmonic number in ``hs``, from the fundamental of ``dev``
-    (one row, or rows pooled with ``weights``)."""
+    (one row, or rows pooled with ``weights``), and their derivatives per sample.
+
+    The derivatives are ``(a' / a + i h phi')`` times the regressors: ``a`` and
+    ``phi`` are slow, and their differences exact where a harmonic's own
+    (``numpy.gradient``: 0.76 of the slope of a 6 Hz harmonic at 30 a second) are not.
+    """
     amp, ph = fundamental(dev, rate, heart_hz, weights, _FIT_SMOOTH_HZ)
-    return amp[None, :] * np.exp(1j * np.asarray(hs)[:, None] * ph[None, :])
+    hs = np.asarray(hs)
+    reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
+    rel = np.gradient(amp) / np.maximum(amp, 1e-300)
+    return reg, reg * (rel[None, :] + 1j * hs[:, None] * np.gradient(ph)[None, :])
 
 
 def _variance_of_fit(freqs: np.ndarray, psd: np.ndarray, hz: float, t_fit: float, amp2: float) -> float:
@@ -480,7 +500,8 @@ def _pooled_variance(resid: np.ndarray, a: np.ndarray, rate: float, hz: np.ndarr
     return out
 
 
-def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None) -> PulseModel | None:
+def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None,
+              shift: np.ndarray | None = None, per_cycle: int = 1) -> PulseModel | None:
     """Find a heartbeat in ``gain`` and fit its harmonics' ratios to its fundamental.
 
     Parameters
@@ -498,6 +519,12 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
         of up to :data:`_POOL_MAX` - 1 more rows of ``pool`` (indices; all
         by default; leave out clipped channels, whose gains show the rails'
         edges) where they can be pooled (:func:`pool_weights`).
+    shift : ndarray, shape of ``gain``, optional
+        Where each raw gain stood before it was moved to its segment's
+        middle (``per_cycle`` segments a cycle; see
+        :func:`artifactclean.modulation.segment_gain`): each channel's
+        harmonics are fitted as the move left them in its gains
+        (:func:`artifactclean.modulation.as_moved`), not as at the middles.
 
     Returns
     -------
@@ -547,14 +574,27 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     # the heartbeat's phase from every strong channel, their shared floor cancelled; the reference's alone
     # where it cannot be pooled
     weights = pool_weights(dev, rate, heart, ref, fit, pool)
-    r = _regressors(dev[ref] if weights is None else dev, rate, heart, hs, weights)[:, fit]
-    design = np.concatenate((r.real, r.imag)).T
+    r_all, dr_all = _regressors(dev[ref] if weights is None else dev, rate, heart, hs, weights)
+    r = r_all[:, fit]
     amp2 = np.mean(np.abs(r[0]) ** 2)  # a(t)^2: the same for every harmonic
-    # each channel's fit: its fundamental relative to the reference's (k) and its harmonics (beta)
-    sol, *_ = np.linalg.lstsq(design, dev[:, fit].T, rcond=None)
-    b = (sol[:hs.size] - 1j * sol[hs.size:]).T  # Re(b z) = Re(b) Re(z) - Im(b) Im(z)
+    # each channel's fit: its fundamental relative to the reference's (k) and its harmonics (beta); with the
+    # gains' shifts, on the regressors as the move to the middles left them in that channel's gains (a cycle's
+    # mean takes half the slope of a 6 Hz harmonic at 10 Hz off: its fitted phase was 0.1 rad behind)
+    b = np.empty((dev.shape[0], hs.size), dtype=np.complex128)
+    resid = np.empty_like(dev[:, fit])
+
+    def solve(rc, rows):
+        design = np.concatenate((rc.real, rc.imag)).T
+        sol, *_ = np.linalg.lstsq(design, dev[rows, fit].T, rcond=None)
+        b[rows] = (sol[:hs.size] - 1j * sol[hs.size:]).T  # Re(b z) = Re(b) Re(z) - Im(b) Im(z)
+        resid[rows] = dev[rows, fit] - (design @ sol).T
+
+    if shift is None:
+        solve(r, slice(None))
+    else:
+        for c in range(dev.shape[0]):
+            solve(as_moved(r_all, shift[c], per_cycle, dr_all)[:, fit], slice(c, c + 1))
     k, beta = b[:, 0], b[:, 1:]
-    resid = dev[:, fit] - (design @ sol).T
     nper_fit = min(nper, resid.shape[1] // 2 * 2)
     # one heartbeat, one pulse shape: channels differ in how strongly they carry it (k) over floors they partly
     # share, so the shape is pooled over channels by generalised least squares of beta = k B

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, design_gain_response, ramp_cutoff, segment_gain, \
-    shift_centres, sideband_support, smooth_gain
+from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, as_moved, design_gain_response, ramp_cutoff, segment_gain, \
+    shift_centres, sideband_support, smooth_gain, to_middles
 
 
 def _gain_series(rng, rate=40.0, seconds=20.0, lines=((2.0, 0.02), (4.0, 0.01))):
@@ -90,6 +90,26 @@ def test_segment_gain_ignores_offsets(rng):
     centres = ((np.arange(g.shape[1]) + 0.5) / 4 * fs / f).astype(int)
     # the first and last two segments read the gain's slope from one side only
     np.testing.assert_allclose(g[0, 2:-2], g_true[np.minimum(centres, n - 1)][2:-2], atol=0.015)
+
+
+@pytest.mark.parametrize("hz", [2.0, 6.0, 8.0])
+def test_a_modulation_as_the_move_to_the_middles_leaves_it(hz):
+    # gains standing off their middles by a pattern repeating every cycle (3 segments), moved back by a
+    # cycle's slope (to_middles): as_moved predicts what is left, to second order in the shift, where
+    # a cycle's mean takes most of a fast modulation's slope off
+    rate, per_cycle = 30.0, 3
+    k = np.arange(600)
+    shift = np.resize([0.12, -0.05, 0.1], k.size)
+    mod = lambda t: 0.02 * np.cos(2 * np.pi * hz * t + 0.4)  # noqa: E731
+    moved = to_middles(mod((k + 0.5 + shift) / rate), shift, per_cycle)
+    middles = mod((k + 0.5) / rate)
+    exact = -0.02 * 2 * np.pi * hz / rate * np.sin(2 * np.pi * hz * (k + 0.5) / rate + 0.4)
+    inner = slice(3, -3)
+    err = np.abs(as_moved(middles, shift, per_cycle, exact) - moved)[inner].max()
+    left = np.abs(middles - moved)[inner].max()
+    # the second-order term: amplitude x (2 pi hz shift / rate)^2 / 2
+    assert err <= 0.02 * (2 * np.pi * hz * np.abs(shift).max() / rate) ** 2 / 2, (err, left)
+    assert err < left / 3, (err, left)
 
 
 def test_heartbeat_lines_pass_through_the_ramps(rng):

@@ -486,10 +486,10 @@ class CycleEstimator(ArtifactEstimator):
             first harmonics) and phase shifts, and whether none of their samples is clipped."""
             xc = x[rows[0]:rows[-1] + 1]
             usable = (~find_clipped(xc)).astype(np.float64)
-            raw, rate = segment_gain(xc, usable, cycles, fs, f, per_cycle)
+            raw, rate, moved = segment_gain(xc, usable, cycles, fs, f, per_cycle, return_shift=True)
             xd, wd, ud, fsd = _block_means(xc, usable, cycles, fs, max(1, int(fs // (32 * f))))
             eta = segment_phase(xd, wd, ud, fsd, f, per_cycle, segments=(first, raw.shape[1]))[0] if shift else None
-            return bool(usable.all()), raw, rate, xd, wd, ud, fsd, eta
+            return bool(usable.all()), raw, rate, xd, wd, ud, fsd, eta, moved
 
         def dac():
             """The DAC grid and the rate of steps no grid explains."""
@@ -555,8 +555,9 @@ class CycleEstimator(ArtifactEstimator):
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         # a pulsatile heartbeat's harmonics are modelled from its fundamental's phase; the response is
         # designed without them, so it passes neither them nor the floor under them
-        pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact)) \
-            if getattr(self, "model_pulse", False) else None
+        moved = np.concatenate([p[8] for p in parts])
+        pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact),
+                          shift=moved, per_cycle=per_cycle) if getattr(self, "model_pulse", False) else None
         if pulse is not None:
             raw = raw - pulse.parts(raw, rate)[0]
         response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
