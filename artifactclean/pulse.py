@@ -85,6 +85,9 @@ _HALF_LINE = 2.0
 _SIGNIFICANCE = 5.0
 #: harmonics modelled at most (2 ... this + 1)
 _MAX_HARMONICS = 8
+#: a block's heartbeat is read where the band-pass covers at least this fraction of the best-covered element's
+#: weight (the envelope squared, :func:`_baseband_fundamental`); the rest holds the nearest such element's reading
+_COVERED = 0.05
 #: channels whose gains are pooled for the heartbeat's phase at most (this project's choice: each is read
 #: over every block again for the track)
 _POOL_MAX = 4
@@ -243,12 +246,75 @@ def _plateau_median(seq: np.ndarray, envelope: np.ndarray | None) -> float:
     return float(np.median(seq)) if envelope is None else float(plateau_level(seq, envelope)[0])
 
 
+def _band_lowpass(heart_hz: float, rate: float) -> np.ndarray:
+    """The low-pass that, moved to ``heart_hz``, is :func:`_band`."""
+    return signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(_WIDTH * heart_hz, 0.45 * rate), fs=rate)
+
+
 def _band(heart_hz: float, rate: float) -> np.ndarray:
     """Complex FIR taps passing ``heart_hz`` +- :data:`_WIDTH` of it, positive frequencies only, unit gain."""
-    n = 2 * int(PULSE_HALF_S * rate) + 1
-    lp = signal.firwin(n, min(_WIDTH * heart_hz, 0.45 * rate), fs=rate)
-    t = (np.arange(n) - n // 2) / rate
+    lp = _band_lowpass(heart_hz, rate)
+    t = (np.arange(lp.size) - lp.size // 2) / rate
     return lp * np.exp(2j * np.pi * heart_hz * t)
+
+
+def _weighted_lowpass(seq: np.ndarray, weights: np.ndarray, taps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``seq`` (one sequence, complex or real) low-passed by ``taps`` with ``weights`` (normalised
+    convolution), read at each element itself, and the weights' coverage there (0 where too little).
+
+    Where the weights fall off (a block's edges and ramps) the taps see one
+    side: the normalised mean stands for the weights' centroid, ``c`` elements
+    away, and is moved back by ``c`` times its own slope. Where the weights
+    are 1 over the taps' reach, the plain convolution (``taps`` sum to 1).
+    Elements covered by less than :data:`_COVERED` of the best take the
+    nearest covered element's mean: there is nothing there to read.
+    """
+    conv = lambda x: ndimage.convolve1d(x, taps, mode="constant")  # noqa: E731
+    h = taps.size // 2
+    s0 = conv(weights)
+    good = s0 > _COVERED * max(float(np.max(s0)), 1e-300)
+    if not good.any():
+        return np.zeros_like(seq), np.zeros_like(s0)
+    # convolve1d takes element n - j with tap h + j: its offset from n is -j
+    s1 = ndimage.convolve1d(weights, -taps * (np.arange(taps.size) - h), mode="constant")
+    div = np.where(good, s0, 1.0)
+    idx, at = np.arange(s0.size), np.flatnonzero(good)
+
+    def held(x):
+        return np.interp(idx, at, x[at])
+
+    if np.iscomplexobj(seq):
+        mean = held(conv(weights * seq.real) / div) + 1j * held(conv(weights * seq.imag) / div)
+    else:
+        mean = held(conv(weights * seq) / div)
+    if mean.size < 2:
+        return mean, np.where(good, s0, 0.0)
+    centroid = np.where(good, s1 / div, 0.0)
+    return mean - centroid * np.gradient(mean), np.where(good, s0, 0.0)
+
+
+def _baseband_fundamental(dev: np.ndarray, rate: float, heart_hz: float,
+                          envelope: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The heartbeat's fundamental in a block's relative gain deviation ``dev`` (one sequence), read through
+    its ramps, at baseband (times ``exp(-2 pi i heart_hz n / rate)``), and where it can be read (coverage).
+
+    ``dev`` is the modulation times the block's ``envelope`` over a floor that
+    the envelope does not scale. Divided by the envelope and weighted by it,
+    the band-pass is a normalised convolution whose taps see one side at the
+    block's edges (see :func:`_weighted_lowpass`; a plain band-pass of
+    ``dev``, a mean over a one-sided window of a heartbeat off the band's
+    centre, stood 0.1-0.3 rad off its phase within a ramp). The weights
+    trade the floor, which the envelope's square would weigh down, against
+    a ramp's own reading (session 23, 10 Hz acceptance traces, LFP away:
+    squared 0.056 / 0.055 / 0.055, the envelope 0.054 / 0.054 / 0.055, none
+    0.055 / 0.059 / 0.067).
+    """
+    env = np.asarray(envelope, dtype=np.float64)
+    inside = env >= _FOOT
+    weights = np.where(inside, env, 0.0)
+    mod = np.where(inside, dev / np.where(inside, env, 1.0), 0.0)
+    rot = np.exp(-2j * np.pi * heart_hz * np.arange(mod.shape[-1]) / rate)
+    return _weighted_lowpass(mod * rot, weights, _band_lowpass(heart_hz, rate))
 
 
 def _analytic(dev: np.ndarray, rate: float, heart_hz: float) -> np.ndarray:
@@ -259,16 +325,32 @@ def _analytic(dev: np.ndarray, rate: float, heart_hz: float) -> np.ndarray:
             + 1j * ndimage.convolve1d(dev, taps.imag, axis=-1, mode="nearest"))
 
 
+def _smoothing_taps(rate: float, smooth_hz: float) -> np.ndarray:
+    lp = signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(smooth_hz, 0.45 * rate), fs=rate)
+    return lp / lp.sum()
+
+
 def _smooth_fundamental(c: np.ndarray, rate: float,
                         smooth_hz: float = _SMOOTH_HZ) -> tuple[np.ndarray, np.ndarray]:
     """Amplitude and unwrapped phase of the complex fundamental ``c``, smoothed to ``smooth_hz``."""
     # the band holds neural floor besides the line; the heartbeat's rate and strength change more slowly than
     # that floor, so phase and amplitude are smoothed further (a linear phase passes a symmetric FIR unchanged)
-    lp = signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(smooth_hz, 0.45 * rate), fs=rate)
-    lp /= lp.sum()
+    lp = _smoothing_taps(rate, smooth_hz)
     ph = ndimage.convolve1d(np.unwrap(np.angle(c)), lp, mode="nearest")
     amp = ndimage.convolve1d(np.abs(c), lp, mode="nearest")
     return amp, ph
+
+
+def _smooth_baseband(cb: np.ndarray, coverage: np.ndarray, rate: float, heart_hz: float, envelope: np.ndarray,
+                     smooth_hz: float = _SMOOTH_HZ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_smooth_fundamental` of a block's baseband fundamental ``cb`` read through its ramps
+    (:func:`_baseband_fundamental`): phase and amplitude smoothed with the band-pass's ``coverage`` as weights,
+    the amplitude given back times the ``envelope`` (as a deviation from the plateau carries it)."""
+    lp = _smoothing_taps(rate, smooth_hz)
+    ph, _ = _weighted_lowpass(np.unwrap(np.angle(cb)), coverage, lp)
+    amp, _ = _weighted_lowpass(np.abs(cb), coverage, lp)
+    amp = np.maximum(amp, 0.0) * np.asarray(envelope, dtype=np.float64)
+    return amp, ph + 2 * np.pi * heart_hz * np.arange(cb.shape[-1]) / rate
 
 
 def _amplitude_phase(dev: np.ndarray, rate: float, heart_hz: float,
@@ -384,19 +466,30 @@ def fundamental_of_rows(rows, heart_hz: float, weights: np.ndarray | None = None
     the nonzero ``weights`` (one row without weights), all on the same
     positions; each row's band-passed fundamental is added in as it comes,
     so only one row is held at a time. Returns the positions, amplitude
-    and unwrapped phase.
+    and unwrapped phase. A row ``(positions, rate, dev, envelope)`` is a
+    block's, read through its ramps (:func:`_baseband_fundamental`); every
+    row then has the same envelope.
     """
     use = None if weights is None else np.asarray(weights)[np.flatnonzero(weights)]
-    total, pos, rate = None, None, None
-    for k, (pos, rate, dev) in enumerate(rows):
-        if use is None:
-            amp, ph = _amplitude_phase(np.asarray(dev, dtype=np.float64), rate, heart_hz, smooth_hz)
-            return pos, amp, ph
-        c = np.conj(use[k]) * _analytic(np.asarray(dev, dtype=np.float64), rate, heart_hz)
+    total, pos, rate, env, cover = None, None, None, None, None
+    for k, (pos, rate, dev, *more) in enumerate(rows):
+        dev = np.asarray(dev, dtype=np.float64)
+        env = more[0] if more else None
+        if env is not None:
+            c, cover = _baseband_fundamental(dev, rate, heart_hz, env)
+        else:
+            c = _analytic(dev, rate, heart_hz)
+        if use is not None:
+            c = np.conj(use[k]) * c
         total = c if total is None else total + c
+        if use is None:
+            break
     if total is None:
         raise ValueError("no rows to read the heartbeat's fundamental from")
-    amp, ph = _smooth_fundamental(total, rate, smooth_hz)
+    if env is not None:
+        amp, ph = _smooth_baseband(total, cover, rate, heart_hz, env, smooth_hz)
+    else:
+        amp, ph = _smooth_fundamental(total, rate, smooth_hz)
     return pos, amp, ph
 
 

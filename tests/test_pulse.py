@@ -224,6 +224,27 @@ def test_the_carried_harmonics_slope_is_their_derivative():
     assert np.abs(np.gradient(whole[0]) - fd[0]).max() > 0.1 * np.abs(fd).max()
 
 
+def test_a_blocks_heartbeat_is_read_through_its_ramps():
+    # a block's gain deviation is the modulation times its envelope (1 s ramps): read through the ramps
+    # (normalised convolution, moved back from the weights' centroid), the phase of a heartbeat whose rate
+    # wanders 3% stays within a few hundredths of a radian there, where the plain band-pass, a mean over a
+    # one-sided window, stood 0.1 rad off; on the plateau the two read the same
+    rate = 30.0
+    t = (np.arange(int(20 * rate)) + 0.5) / rate
+    env = np.maximum(np.clip(np.minimum(t - 1.0, 19.0 - t), 0.0, 1.0), 1e-3)
+    phi = 2 * np.pi * 2.0 * (t - 0.03 / (2 * np.pi * 0.2) * np.cos(2 * np.pi * 0.2 * t)) + 1.0
+    dev = np.where(env >= 0.02, env * 0.01 * np.cos(phi), 0.0)
+    _, amp, ph = fundamental_of_rows([(t, rate, dev, env)], 2.0)
+    _, amp0, ph0 = fundamental_of_rows([(t, rate, dev)], 2.0)
+    ramps = ((t > 1.2) & (t < 2.0)) | ((t > 18.0) & (t < 18.8))
+    err = lambda p: np.sqrt(np.mean(np.angle(np.exp(1j * (p - phi)[ramps])) ** 2))  # noqa: E731
+    assert err(ph) < 0.04 < 0.08 < err(ph0), (err(ph), err(ph0))
+    np.testing.assert_allclose(amp[ramps], 0.005 * env[ramps], rtol=0.03)
+    plateau = (t > 6.2) & (t < 13.8)  # beyond both filters' reach (2 s each) of the ramps
+    np.testing.assert_allclose(np.angle(np.exp(1j * (ph - ph0)[plateau])), 0.0, atol=1e-9)
+    np.testing.assert_allclose(amp[plateau], amp0[plateau], rtol=1e-9)
+
+
 def test_parts_of_a_track_join_into_one_unwrapped_phase():
     # a phase read in parts, each unwrapped on its own (each off by whole turns), joins into the
     # continuous phase; positions and amplitudes are kept in order

@@ -378,7 +378,7 @@ class CycleEstimator(ArtifactEstimator):
 
     def _heart_row(self, read, blk, fs, bounds, part, row):
         """One channel's share of a part of the heartbeat's track (see :meth:`_heart_part`): ``(positions,
-        rate, deviation)`` of channel ``row``'s raw gain, read over the part ``(a, b)`` with twice
+        rate, deviation, envelope)`` of channel ``row``'s raw gain, read over the part ``(a, b)`` with twice
         :data:`~artifactclean.pulse.PULSE_HALF_S` on each side (the band-pass and the smoothing) within the
         block's work range ``bounds``, so memory follows :data:`_TRACK_S` and not the block's length."""
         s, e = bounds
@@ -395,7 +395,7 @@ class CycleEstimator(ArtifactEstimator):
         centre = (np.floor(cycles[0] * per_cycle) + np.arange(raw.shape[1]) + 0.5) / per_cycle
         t = blk.ref_sample + (centre - blk.phase_ref / (2 * np.pi)) * (fs / f)
         env = envelope_at(lo + np.clip(np.round(t - lo), 0, hi - lo - 1), blk)
-        return t, rate, relative_deviation(raw[0], float(plateau_level(raw, env)[0]), env)
+        return t, rate, relative_deviation(raw[0], float(plateau_level(raw, env)[0]), env), env
 
     @staticmethod
     def _heart_part(blk, pulse, part, rows):
