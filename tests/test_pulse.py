@@ -11,7 +11,7 @@ from artifactclean.evaluation import score_cleaning
 from artifactclean.modulation import to_middles
 from artifactclean.estimators import TemplateSubtraction
 from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _pooled_variance, _smooth_fundamental, fit_pulse,
-                                 fundamental, fundamental_of_rows, join_tracks, pool_weights)
+                                 fundamental, fundamental_of_rows, harmonic_phase, join_tracks, pool_weights)
 from artifactclean.scenarios import SCENARIOS, locked_units
 from artifactclean.synthetic import NeuralSpec, simulate_recording
 
@@ -243,6 +243,39 @@ def test_a_blocks_heartbeat_is_read_through_its_ramps():
     plateau = (t > 6.2) & (t < 13.8)  # beyond both filters' reach (2 s each) of the ramps
     np.testing.assert_allclose(np.angle(np.exp(1j * (ph - ph0)[plateau])), 0.0, atol=1e-9)
     np.testing.assert_allclose(amp[plateau], amp0[plateau], rtol=1e-9)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_the_pulses_harmonics_sharpen_its_phase(seed):
+    # three channels carry one pulsatile heartbeat (harmonics at half and a quarter of the fundamental) over
+    # floors of their own: read from the fundamental alone, then refined with the fitted harmonics, the
+    # phase is nearer the truth (here 0.55-0.78 of its error); without harmonics in the model, or above
+    # up_to_hz, it is left as it was
+    rng = np.random.default_rng(seed)
+    n = int(40 * RATE)
+    t = np.arange(n) / RATE
+    phi = 2 * np.pi * 2.0 * (t - 0.03 / (2 * np.pi * 0.2) * np.cos(2 * np.pi * 0.2 * t)) + 1.0
+    shape = np.cos(phi) + 0.5 * np.cos(2 * phi + 0.3) + 0.25 * np.cos(3 * phi + 0.6)
+    depths = np.array([0.02, -0.014, 0.01])[:, None]
+    gain = 1 + depths * shape[None] + 0.006 * rng.standard_normal((3, n))
+    model = fit_pulse(gain, RATE, max_hz=10.0, ref=0)
+    assert model is not None and model.harmonics()[:2] == [2, 3]
+    chans = model.pooled()
+    rows = [(t, RATE, gain[c] - gain[c].mean()) for c in chans]
+    weights = None if model.weights is None else model.weights[chans]
+    _, _, ph = fundamental_of_rows(rows, model.heart_hz, weights)
+    refined = harmonic_phase(rows, model, ph)
+    mid = slice(int(5 * RATE), n - int(5 * RATE))
+
+    def rms(p):
+        d = np.angle(np.exp(1j * (p - phi)[mid]))
+        return np.sqrt(np.mean(np.angle(np.exp(1j * (d - np.angle(np.mean(np.exp(1j * d)))))) ** 2))
+
+    assert rms(refined) < 0.9 * rms(ph), (rms(refined), rms(ph))
+    plain = PulseModel(model.heart_hz, np.zeros_like(model.coefs), model.ref, weights=model.weights)
+    np.testing.assert_array_equal(harmonic_phase(rows, plain, ph), ph)
+    # harmonics above up_to_hz are not read (the 2nd is at 4 Hz)
+    np.testing.assert_array_equal(harmonic_phase(rows, model, ph, up_to_hz=3.9), ph)
 
 
 def test_parts_of_a_track_join_into_one_unwrapped_phase():

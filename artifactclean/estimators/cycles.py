@@ -24,7 +24,7 @@ from .._numeric import fractional_part
 from ..clipping import find_clipped
 from ..parallel import channel_groups
 from ..stimulation import ramp_level
-from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, join_tracks, relative_deviation
+from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, relative_deviation
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
     sideband_support
@@ -408,6 +408,9 @@ class CycleEstimator(ArtifactEstimator):
         a, b = part
         weights = None if pulse.weights is None else pulse.weights[pulse.pooled()]
         t, amp, ph = fundamental_of_rows(rows, pulse.heart_hz, weights)
+        # the pulse's harmonics hold the phase too (a third of what is known of it at 10 Hz), those a heart rate
+        # or more below the stimulation frequency
+        ph = harmonic_phase(rows, pulse, ph, up_to_hz=blk.freq_hz - pulse.heart_hz)
         keep = (t >= a) & (t < b)
         # positions from the block's reference sample: a window of the recording (a file piece) keeps them
         return t[keep] - blk.ref_sample, amp[keep], ph[keep]
