@@ -297,6 +297,27 @@ def _rail_samples(xb: np.ndarray, wb: np.ndarray, censored: np.ndarray):
     return at, hi[at], xb[at].copy()
 
 
+def _add_pulse(out, model, seg_rate, grid, trap):
+    """Add the heartbeat's harmonics (:meth:`artifactclean.pulse.PulseModel.at_times`) to the gains ``out``
+    (n_channels, n) at every sample, relative to ``trap`` when given. ``grid = (t0, step)``: the range's
+    first sample from the block's reference sample, and the spacing (samples) of the grid the harmonics are
+    evaluated on and interpolated from, whole multiples of it from the reference sample (a piece of a block
+    reads the same grid as the whole block)."""
+    n = out.shape[1]
+    if not model.harmonics() or n < 2:
+        return
+    t0, step = grid
+    k = np.arange(np.floor(t0 / step) - 1, np.ceil((t0 + n - 1) / step) + 2)
+    at = k * step - t0
+    vals = model.at_times(k * step, seg_rate, n_rows=out.shape[0])
+    if trap is not None:
+        env = trap[np.clip(np.round(at), 0, n - 1).astype(np.int64)]
+        vals = np.where(env > _FOOT, vals / np.where(env > _FOOT, env, 1.0), 0.0)
+    idx = np.arange(n, dtype=np.float64)
+    for ch in range(out.shape[0]):
+        out[ch] += np.interp(idx, at, vals[ch])
+
+
 class TemplateSubtraction(CycleEstimator):
     """Moving-window template subtraction with phase alignment and amplitude tracking.
 
@@ -535,6 +556,8 @@ class TemplateSubtraction(CycleEstimator):
         # where each segment stands, in samples from the block's reference sample (which a window of the
         # recording keeps): the heartbeat's track is read there (pulse.PulseModel)
         seg_times = offset - blk.ref_sample + (seg_starts + np.append(seg_starts[1:], n)) / 2.0
+        # the heartbeat's harmonics are evaluated every eighth of a segment from the block's reference sample
+        pulse_grid = (offset - blk.ref_sample, fs / (8.0 * f * per_cycle))
         b_start, b_up, b_down, b_stop = blk.geometry()
         # an active block's ramps are placed at the full rate (stimulation._ramp_fit): its gain is read
         # relative to them; a sham block's ramps, from the decimated envelope only, keep segment values
@@ -579,7 +602,7 @@ class TemplateSubtraction(CycleEstimator):
                 # the new gain depends only on the template: it overwrites the old one
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
                                   trap if relative else None, seg_env, ramp_hz, seg_first, out=gain,
-                                  seg_times=seg_times)
+                                  seg_times=seg_times, pulse_grid=pulse_grid)
             if self.robust and it == passes - 2:
                 # filled rail samples are not data: judged as lost, then put back
                 # without clipping the block's weights are not needed again: the new ones take their place
@@ -630,7 +653,8 @@ class TemplateSubtraction(CycleEstimator):
             # to it (a waveform with harmonics; segments off its extrema): part of the shift's modulation went
             # into the gain. Fitted again on the template with its shift
             gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
-                              trap if relative else None, seg_env, ramp_hz, seg_first, out=gain, seg_times=seg_times)
+                              trap if relative else None, seg_env, ramp_hz, seg_first, out=gain, seg_times=seg_times,
+                              pulse_grid=pulse_grid)
             shifted = True
         info["phase_shift_followed"] = shifted
         return np.multiply(gain, t_n, out=t_n), info, censored
@@ -772,7 +796,7 @@ class TemplateSubtraction(CycleEstimator):
         return _shape(s, g, n_bins, k_groups, denoise, stride, complete=complete, failed=failed)
 
     def _gain(self, xb, w, t_n, seg_starts, seg_u, seg_pos, seg_rate, response, trap, seg_env, ramp_hz, seg_first,
-              out, seg_times=None):
+              out, seg_times=None, pulse_grid=None):
         # with ``trap`` given the gain is fitted relative to the block's envelope and multiplied by it
         # sample by sample: read from segment values, the envelope turns a step into a ramp one
         # segment long (up to the whole artifact left there) and rounds a ramp's corners over a
@@ -834,7 +858,15 @@ class TemplateSubtraction(CycleEstimator):
                 part, d_part = pulse(g)
                 slope = slope - cycle_slope(part, per_cycle) + d_part
             g = smooth(to_middles(g, shift, per_cycle, slope=slope))
+        fine = response is not None and response.pulse is not None and response.pulse.track is not None \
+            and pulse_grid is not None
+        if fine:
+            # the heartbeat's harmonics are read back at the samples from the track, not between segment
+            # centres (whose interpolation puts their images beside the stimulation frequency)
+            g = g - part
         out = lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
+        if fine:
+            _add_pulse(out, response.pulse, seg_rate, pulse_grid, trap)
         if trap is not None:
             out *= trap
         return out
