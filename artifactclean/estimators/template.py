@@ -572,6 +572,9 @@ class TemplateSubtraction(CycleEstimator):
         w = wb
         n_out = 0
         passes = 3 if self.robust else 2
+        # the phase shift is followed where the block's plan found it modulated (heartbeat, respiration)
+        follow_shift = self.track_phase and self.track_amplitude and response is not None and n > 64 and any(
+            response.phase_taps(min(ch, response.response.shape[0] - 1)) is not None for ch in range(n_ch))
         for it in range(passes):
             if fill is not None and it > 0:
                 self._fill_rails(xb, wb, gain, t_n, fill, u, max(4, k_half // 2))
@@ -600,9 +603,12 @@ class TemplateSubtraction(CycleEstimator):
                 t_n = reader.read(tmpl, out=None if it == 0 else t_n, compiled=self.compiled)
             if self.track_amplitude:
                 # the new gain depends only on the template: it overwrites the old one
+                # the heartbeat's harmonics at every sample only in the gain that is subtracted (they cost a
+                # tenth of the template's time at 20 Hz; the templates average the segment values' images off)
+                last = it == passes - 1 and not follow_shift
                 gain = self._gain(xb, w, t_n, seg_starts, seg_u, seg_pos, f * per_cycle, response,
                                   trap if relative else None, seg_env, ramp_hz, seg_first, out=gain,
-                                  seg_times=seg_times, pulse_grid=pulse_grid)
+                                  seg_times=seg_times, pulse_grid=pulse_grid if last else None)
             if self.robust and it == passes - 2:
                 # filled rail samples are not data: judged as lost, then put back
                 # without clipping the block's weights are not needed again: the new ones take their place
@@ -636,10 +642,8 @@ class TemplateSubtraction(CycleEstimator):
             unlocked_dac_steps_per_s=float(unlocked),
         )
         shifted = False
-        if self.track_phase and self.track_amplitude and response is not None and n > 64 and any(
-                response.phase_taps(min(ch, response.response.shape[0] - 1)) is not None for ch in range(n_ch)):
-            # the phase shift, where the block's plan found it modulated (heartbeat, respiration);
-            # the derivative is read one channel at a time (an array of the data's size fewer)
+        if follow_shift:
+            # the phase shift; the derivative is read one channel at a time (an array of the data's size fewer)
             d_tmpl = _phase_derivative(tmpl, n_bins)
             if free:
                 read_d = lambda ch: read_free(d_tmpl[ch:ch + 1], ticks)[0]  # noqa: E731
