@@ -87,7 +87,7 @@ _SIGNIFICANCE = 5.0
 #: harmonics modelled at most (2 ... this + 1)
 _MAX_HARMONICS = 8
 #: a block's heartbeat is read where the band-pass covers at least this fraction of the best-covered element's
-#: weight (the envelope squared, :func:`_baseband_fundamental`); the rest holds the nearest such element's reading
+#: weight (the envelope, :func:`_read_through`); the rest holds the nearest such element's reading
 _COVERED = 0.05
 #: where a block's envelope is above this, its plateau: the floors' densities and the harmonics' mean phases
 #: are read there (:func:`harmonic_phase`)
@@ -199,10 +199,8 @@ class PulseModel:
                   n_rows: int | None, slope: bool = False) -> tuple[np.ndarray, ...]:
         """The harmonics, fitted and carried (see :meth:`relative`), from the fundamental's amplitude and phase;
         with ``slope``, the carried ones' derivative per element too."""
-        hs = np.arange(2, self.coefs.shape[1] + 2)
-        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
-        coefs = self.coefs[np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)] * (hs * self.heart_hz < 0.45 * rate)
-        reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
+        hs, coefs = self._carried(rate, n_rows)
+        reg = _harmonic_regressors(amp, ph, hs)
         fitted = np.real(np.einsum("ch,hn->chn", coefs, reg))
         boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate) ** 3, 1.0 / _MAX_BOOST)
         out = (fitted.sum(axis=1), (fitted * boost[None, :, None]).sum(axis=1))
@@ -210,8 +208,16 @@ class PulseModel:
             return out
         if amp.size < 2:
             return out + (np.zeros_like(out[1]),)
-        d_reg = reg * (np.gradient(amp) / np.maximum(amp, 1e-300) + 1j * hs[:, None] * np.gradient(ph))
+        d_reg = reg * _log_slope(amp, ph, hs)
         return out + (np.real(np.einsum("ch,hn->cn", coefs * boost[None, :], d_reg)),)
+
+    def _carried(self, rate: float, n_rows: int | None) -> tuple[np.ndarray, np.ndarray]:
+        """Harmonic numbers and ``n_rows`` channels' coefficients, 0 for harmonics a sequence at ``rate``
+        does not carry (at or above 0.45 ``rate``)."""
+        hs = np.arange(2, self.coefs.shape[1] + 2)
+        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
+        rows = np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)
+        return hs, self.coefs[rows] * (hs * self.heart_hz < 0.45 * rate)
 
     def at_times(self, times: np.ndarray, rate: float, n_rows: int | None = None) -> np.ndarray:
         """Each channel's harmonics at sample positions ``times`` from the :attr:`track`, relative to the
@@ -226,12 +232,9 @@ class PulseModel:
         """
         t, a, p = self.track
         times = np.asarray(times, dtype=np.float64)
-        amp, ph = np.interp(times, t, a), np.interp(times, t, p)
-        hs = np.arange(2, self.coefs.shape[1] + 2)
-        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
-        coefs = self.coefs[np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)] * (hs * self.heart_hz < 0.45 * rate)
+        hs, coefs = self._carried(rate, n_rows)
         boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate), 1.0 / _MAX_BOOST)
-        reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
+        reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)
         return np.real(np.einsum("ch,hn->cn", coefs * boost[None, :], reg))
 
     def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
@@ -338,12 +341,18 @@ def _baseband_fundamental(dev: np.ndarray, rate: float, heart_hz: float,
     squared 0.056 / 0.055 / 0.055, the envelope 0.054 / 0.054 / 0.055, none
     0.055 / 0.059 / 0.067).
     """
-    env = np.asarray(envelope, dtype=np.float64)
-    inside = env >= _FOOT
-    weights = np.where(inside, env, 0.0)
-    mod = np.where(inside, dev / np.where(inside, env, 1.0), 0.0)
+    mod, weights = _read_through(dev, envelope)
     rot = np.exp(-2j * np.pi * heart_hz * np.arange(mod.shape[-1]) / rate)
     return _weighted_lowpass(mod * rot, weights, _band_lowpass(heart_hz, rate))
+
+
+def _read_through(dev: np.ndarray, envelope: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A block's relative gain deviation divided by its ``envelope`` (the modulation; 0 below the foot), and
+    the weights it is read with (the envelope; see :func:`_baseband_fundamental`)."""
+    env = np.asarray(envelope, dtype=np.float64)
+    inside = env >= _FOOT
+    mod = np.where(inside, np.asarray(dev, dtype=np.float64) / np.where(inside, env, 1.0), 0.0)
+    return mod, np.where(inside, env, 0.0)
 
 
 def _analytic(dev: np.ndarray, rate: float, heart_hz: float) -> np.ndarray:
@@ -355,6 +364,7 @@ def _analytic(dev: np.ndarray, rate: float, heart_hz: float) -> np.ndarray:
 
 
 def _smoothing_taps(rate: float, smooth_hz: float) -> np.ndarray:
+    """The low-pass (unit sum) that smooths the heartbeat's phase and amplitude to ``smooth_hz``."""
     lp = signal.firwin(2 * int(PULSE_HALF_S * rate) + 1, min(smooth_hz, 0.45 * rate), fs=rate)
     return lp / lp.sum()
 
@@ -522,23 +532,25 @@ def fundamental_of_rows(rows, heart_hz: float, weights: np.ndarray | None = None
     return pos, amp, ph
 
 
-def _harmonic_readings(rows, model: "PulseModel", phase: np.ndarray, smooth_hz: float, densities: bool = False):
-    """Per harmonic number ``h`` (1 the fundamental) of ``model``: the ``rows`` (see :func:`harmonic_phase`)
-    demodulated at ``h phase``, combined over channels as the model reads that harmonic and smoothed to
-    ``smooth_hz``; with ``densities``, also the combination's floor density beside it on the plateau and the
-    plateau's mask. Yields ``(h, reading)`` or ``(h, reading, density, plateau)``."""
+def _harmonic_readings(rows, model: "PulseModel", phase: np.ndarray, smooth_hz: float, densities: bool = False,
+                       harmonics=None):
+    """Per harmonic number ``h`` (1 the fundamental) of ``model`` (those in ``harmonics`` only, when given):
+    the ``rows`` (see :func:`harmonic_phase`) demodulated at ``h phase``, combined over channels as the model
+    reads that harmonic and smoothed to ``smooth_hz``; with ``densities``, also the combination's floor density
+    beside it on the plateau and the plateau's mask. Yields ``(h, reading)`` or ``(h, reading, density,
+    plateau)``."""
     rows = list(rows)
     rate = rows[0][1]
-    n = len(rows[0][2])
-    env = np.asarray(rows[0][3], dtype=np.float64) if len(rows[0]) > 3 else np.ones(n)
-    inside = env >= _FOOT
-    weights = np.where(inside, env, 0.0)
-    mods = [np.where(inside, np.asarray(r[2], dtype=np.float64) / np.where(inside, env, 1.0), 0.0) for r in rows]
+    env = np.asarray(rows[0][3], dtype=np.float64) if len(rows[0]) > 3 else np.ones(len(rows[0][2]))
+    read = [_read_through(r[2], env) for r in rows]
+    mods, weights = [m for m, _ in read], read[0][1]
     plateau = env > _PLATEAU_ENV
     nper = min(int(4 * rate), int(plateau.sum())) // 2 * 2
     chans = model.pooled()
     lp = _smoothing_taps(rate, smooth_hz)
     for h in range(1, model.coefs.shape[1] + 2):
+        if harmonics is not None and h not in harmonics:
+            continue
         if h == 1:
             comb = np.ones(len(chans)) if model.weights is None else np.conj(model.weights[chans])
         else:
@@ -618,9 +630,8 @@ def harmonic_phase(rows, model: "PulseModel", phase: np.ndarray, smooth_hz: floa
     if not use or not total > 0:
         return phase
     moved = 0.0
-    for h, r in _harmonic_readings(rows, model, phase, smooth_hz):
-        if h in use:
-            moved = moved + info[h - 1] * np.angle(r * np.exp(-1j * h * offset[h - 1])) / h
+    for h, r in _harmonic_readings(rows, model, phase, smooth_hz, harmonics=use):
+        moved = moved + info[h - 1] * np.angle(r * np.exp(-1j * h * offset[h - 1])) / h
     return phase + moved / total
 
 
@@ -651,15 +662,24 @@ def _regressors(dev: np.ndarray, rate: float, heart_hz: float, hs: np.ndarray,
     """``a(t) exp(i h phi(t))`` for each harmonic number in ``hs``, from the fundamental of ``dev``
     (one row, or rows pooled with ``weights``), and their derivatives per sample.
 
-    The derivatives are ``(a' / a + i h phi')`` times the regressors: ``a`` and
-    ``phi`` are slow, and their differences exact where a harmonic's own
-    (``numpy.gradient``: 0.76 of the slope of a 6 Hz harmonic at 30 a second) are not.
+    The derivatives are :func:`_log_slope` times the regressors.
     """
     amp, ph = fundamental(dev, rate, heart_hz, weights, _FIT_SMOOTH_HZ)
-    hs = np.asarray(hs)
-    reg = amp[None, :] * np.exp(1j * hs[:, None] * ph[None, :])
+    reg = _harmonic_regressors(amp, ph, hs)
+    return reg, reg * _log_slope(amp, ph, hs)
+
+
+def _harmonic_regressors(amp: np.ndarray, ph: np.ndarray, hs) -> np.ndarray:
+    """``a exp(i h phi)``, one row per harmonic number in ``hs``."""
+    return amp[None, :] * np.exp(1j * np.asarray(hs)[:, None] * ph[None, :])
+
+
+def _log_slope(amp: np.ndarray, ph: np.ndarray, hs) -> np.ndarray:
+    """``a' / a + i h phi'`` per element (rows: ``hs``): the slope of :func:`_harmonic_regressors` over
+    themselves. ``a`` and ``phi`` are slow and their differences exact where a harmonic's own
+    (``numpy.gradient``: 0.76 of the slope of a 6 Hz harmonic at 30 a second) are not."""
     rel = np.gradient(amp) / np.maximum(amp, 1e-300)
-    return reg, reg * (rel[None, :] + 1j * hs[:, None] * np.gradient(ph)[None, :])
+    return rel[None, :] + 1j * np.asarray(hs)[:, None] * np.gradient(ph)[None, :]
 
 
 def _variance_of_fit(freqs: np.ndarray, psd: np.ndarray, hz: float, t_fit: float, amp2: float) -> float:
