@@ -291,8 +291,9 @@ def _band(heart_hz: float, rate: float) -> np.ndarray:
 
 
 def _weighted_lowpass(seq: np.ndarray, weights: np.ndarray, taps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``seq`` (one sequence, complex or real) low-passed by ``taps`` with ``weights`` (normalised
-    convolution), read at each element itself, and the weights' coverage there (0 where too little).
+    """``seq`` (sequences along the last axis, complex or real) low-passed by ``taps`` with ``weights`` (one
+    per element, normalised convolution), read at each element itself, and the weights' coverage there (0
+    where too little); the weights' sums are taken once for every sequence.
 
     Where the weights fall off (a block's edges and ramps) the taps see one
     side: the normalised mean stands for the weights' centroid, ``c`` elements
@@ -301,7 +302,7 @@ def _weighted_lowpass(seq: np.ndarray, weights: np.ndarray, taps: np.ndarray) ->
     Elements covered by less than :data:`_COVERED` of the best take the
     nearest covered element's mean: there is nothing there to read.
     """
-    conv = lambda x: ndimage.convolve1d(x, taps, mode="constant")  # noqa: E731
+    conv = lambda x: ndimage.convolve1d(x, taps, axis=-1, mode="constant")  # noqa: E731
     h = taps.size // 2
     s0 = conv(weights)
     good = s0 > _COVERED * max(float(np.max(s0)), 1e-300)
@@ -313,16 +314,16 @@ def _weighted_lowpass(seq: np.ndarray, weights: np.ndarray, taps: np.ndarray) ->
     idx, at = np.arange(s0.size), np.flatnonzero(good)
 
     def held(x):
-        return np.interp(idx, at, x[at])
+        return np.apply_along_axis(lambda row: np.interp(idx, at, row[at]), -1, x)
 
     if np.iscomplexobj(seq):
         mean = held(conv(weights * seq.real) / div) + 1j * held(conv(weights * seq.imag) / div)
     else:
         mean = held(conv(weights * seq) / div)
-    if mean.size < 2:
+    if mean.shape[-1] < 2:
         return mean, np.where(good, s0, 0.0)
     centroid = np.where(good, s1 / div, 0.0)
-    return mean - centroid * np.gradient(mean), np.where(good, s0, 0.0)
+    return mean - centroid * np.gradient(mean, axis=-1), np.where(good, s0, 0.0)
 
 
 def _baseband_fundamental(dev: np.ndarray, rate: float, heart_hz: float,
@@ -386,8 +387,7 @@ def _smooth_baseband(cb: np.ndarray, coverage: np.ndarray, rate: float, heart_hz
     (:func:`_baseband_fundamental`): phase and amplitude smoothed with the band-pass's ``coverage`` as weights,
     the amplitude given back times the ``envelope`` (as a deviation from the plateau carries it)."""
     lp = _smoothing_taps(rate, smooth_hz)
-    ph, _ = _weighted_lowpass(np.unwrap(np.angle(cb)), coverage, lp)
-    amp, _ = _weighted_lowpass(np.abs(cb), coverage, lp)
+    (ph, amp), _ = _weighted_lowpass(np.stack((np.unwrap(np.angle(cb)), np.abs(cb))), coverage, lp)
     amp = np.maximum(amp, 0.0) * np.asarray(envelope, dtype=np.float64)
     return amp, ph + 2 * np.pi * heart_hz * np.arange(cb.shape[-1]) / rate
 
@@ -547,7 +547,7 @@ def _harmonic_readings(rows, model: "PulseModel", phase: np.ndarray, smooth_hz: 
     plateau = env > _PLATEAU_ENV
     nper = min(int(4 * rate), int(plateau.sum())) // 2 * 2
     chans = model.pooled()
-    lp = _smoothing_taps(rate, smooth_hz)
+    demod = []
     for h in range(1, model.coefs.shape[1] + 2):
         if harmonics is not None and h not in harmonics:
             continue
@@ -555,10 +555,12 @@ def _harmonic_readings(rows, model: "PulseModel", phase: np.ndarray, smooth_hz: 
             comb = np.ones(len(chans)) if model.weights is None else np.conj(model.weights[chans])
         else:
             comb = np.conj(model.coefs[chans, h - 2])
-        if not np.any(comb != 0):
-            continue
-        q = sum(c * m for c, m in zip(comb, mods)) * np.exp(-1j * h * phase)
-        r, _ = _weighted_lowpass(q, weights, lp)
+        if np.any(comb != 0):
+            demod.append((h, sum(c * m for c, m in zip(comb, mods)) * np.exp(-1j * h * phase)))
+    if not demod:
+        return
+    readings, _ = _weighted_lowpass(np.stack([q for _, q in demod]), weights, _smoothing_taps(rate, smooth_hz))
+    for (h, q), r in zip(demod, readings):
         if not densities:
             yield h, r
             continue
