@@ -29,7 +29,7 @@ from ._numeric import fractional_part
 
 __all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
            "phase_highpass", "phase_shift", "segment_gain", "segment_phase", "segments_per_cycle", "shift_centres", "sideband_support",
-           "smooth_gain",
+           "smooth_gain", "segment_transfer", "as_seen",
            "to_middles", "cycle_slope"]
 
 #: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
@@ -145,7 +145,7 @@ def segments_per_cycle(tracking_hz: float, f: float) -> int:
 
 
 def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float,
-                 per_cycle: int, *, compiled: bool = True, return_shift: bool = False):
+                 per_cycle: int, *, compiled: bool = True, return_shift: bool = False, return_cycle: bool = False):
     """Raw gain of each channel per part of a cycle against the stretch's mean cycle.
 
     Parameters
@@ -162,6 +162,9 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         Compiled sums (numba) when installed; the same numbers as numpy's.
     return_shift : bool
         Return also where each gain stood before :func:`to_middles` moved it.
+    return_cycle : bool
+        Return also the mean cycle the gains are fitted against (for
+        :func:`segment_transfer`).
 
     Returns
     -------
@@ -171,7 +174,12 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         Gain samples per second.
     shift : ndarray, shape (n_channels, n_segments)
         With ``return_shift``: where each gain stood, in segments from its
-        segment's middle (0 where unknown), as :func:`to_middles` took it.
+        segment's middle, as :func:`to_middles` took it; NaN (taken as 0)
+        where the segment held too little of the cycle to be fitted and its
+        gain was interpolated from its neighbours'.
+    cycle : ndarray, shape (n_channels, n_bins)
+        With ``return_cycle``: each channel's mean cycle less its mean, on
+        ``n_bins`` equal bins of the phase (last).
     """
     n_bins = max(8, int(round(fs / f)))
     b = np.floor(fractional_part(u) * n_bins).astype(np.int64)
@@ -185,7 +193,8 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
     # with an offset per segment: the slow LFP is an offset over part of a cycle, and
     # the part of a cycle a segment covers has a non-zero mean
     pos = useg - np.floor(useg[0])  # in segments from the first segment's start
-    sw, sx, st, sxt, stt, spt, sptt = gain_sums(x, w, b, seg, n_bins, n_seg, pos, compiled=compiled)
+    sw, sx, st, sxt, stt, spt, sptt, cycle = gain_sums(x, w, b, seg, n_bins, n_seg, pos, compiled=compiled,
+                                                       return_cycle=True)
     sw = np.maximum(sw, 1e-12)
     mx, mt = sx / sw, st / sw
     num = sxt - sw * mx * mt
@@ -197,10 +206,92 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
         ok = den[ch] > 0.1 * np.median(den[ch])
         if ok.sum() >= 2:
             g[ch] = np.interp(np.arange(n_seg), np.flatnonzero(ok), num[ch, ok] / den[ch, ok])
-    shift = np.where(den > 0.1 * np.median(den, axis=1, keepdims=True), shift, 0.0)
-    if return_shift:
-        return to_middles(g, shift, per_cycle), f * per_cycle, shift
-    return to_middles(g, shift, per_cycle), f * per_cycle
+    shift = np.where(den > 0.1 * np.median(den, axis=1, keepdims=True), shift, np.nan)
+    out = (to_middles(g, shift, per_cycle), f * per_cycle) + ((shift,) if return_shift else ())
+    return out + ((cycle,) if return_cycle else ())
+
+
+def segment_transfer(cycle: np.ndarray, per_cycle: int, f: float, hz) -> np.ndarray:
+    """How the gain of each part of a cycle sees a modulation of the artifact, per part and frequency.
+
+    A segment's gain is the least-squares scale of the mean cycle ``t`` over
+    the segment, about the segment's means (:func:`segment_gain`,
+    :func:`artifactclean.estimators._kernels.segment_stats`): of an artifact
+    ``a(tau) t`` it is ``sum a t (t - mean t) / sum (t - mean t)^2``, a
+    weighted mean of ``a`` whose weights change sign where ``t`` and its
+    deviation from the segment's mean differ in sign. For ``a = exp(2 pi i
+    nu tau)``, ``tau`` from the segment's middle, that is ``H_k(nu)``: not a
+    segment's plain mean (``sinc``), and larger than 1 at a few hertz where
+    the weights change sign (the 3rd harmonic of a 2 Hz pulse at 5 Hz
+    stimulation, 5 segments a cycle: 1.09, where a plain mean gives 0.91).
+
+    Parameters
+    ----------
+    cycle : ndarray, shape (n_channels, n_bins)
+        Mean cycle of each channel on equal bins of the phase (its mean
+        does not matter), as :func:`segment_gain` returns it.
+    per_cycle : int
+        Segments per cycle; segment ``k`` holds the phases ``[k, k + 1) /
+        per_cycle`` of the cycle.
+    f : float
+        Stimulation frequency (Hz).
+    hz : array_like
+        Modulation frequencies (Hz).
+
+    Returns
+    -------
+    ndarray, complex, shape (n_channels, per_cycle, n_hz)
+    """
+    cycle = np.atleast_2d(np.asarray(cycle, dtype=np.float64))
+    hz = np.atleast_1d(np.asarray(hz, dtype=np.float64))
+    n_bins = cycle.shape[1]
+    ph = (np.arange(n_bins) + 0.5) / n_bins
+    part = np.minimum(np.floor(ph * per_cycle).astype(np.int64), per_cycle - 1)
+    out = np.ones((cycle.shape[0], per_cycle, hz.size), dtype=np.complex128)
+    for k in range(per_cycle):
+        sel = part == k
+        t = cycle[:, sel]
+        dev = t - t.mean(axis=1, keepdims=True)
+        den = np.sum(dev * dev, axis=1, keepdims=True)
+        ok = den[:, 0] > 0
+        tau = (ph[sel] - (k + 0.5) / per_cycle) / f
+        out[ok, k] = (t * dev)[ok] / den[ok] @ np.exp(2j * np.pi * np.outer(tau, hz))
+    return out
+
+
+def as_seen(seq: np.ndarray, transfer: np.ndarray, first: int, shift: np.ndarray, per_cycle: int) -> np.ndarray:
+    """Modulations ``seq`` at the segments' middles as :func:`segment_gain`'s gains hold them.
+
+    Each segment's gain sees a modulation through its part of the cycle's
+    weights (``transfer``, :func:`segment_transfer` at the modulations'
+    frequencies) and is then moved to its middle by a cycle's slope
+    (:func:`to_middles`): exact for modulations whose frequency changes
+    little over a segment, where :func:`as_moved` is right to first order.
+
+    Parameters
+    ----------
+    seq : ndarray, complex, shape (n_mod, n_segments)
+        Each modulation ``exp(2 pi i nu t)`` (times a slow amplitude) at the
+        segments' middles.
+    transfer : ndarray, shape (per_cycle, n_mod)
+        One channel's :func:`segment_transfer` at the modulations' frequencies.
+    first : int
+        Number of the first segment (its part of the cycle is ``first %
+        per_cycle``).
+    shift : ndarray, shape (n_segments,)
+        Where each gain stood (:func:`segment_gain` with ``return_shift``;
+        NaN where a gain was interpolated from its neighbours', as it is here).
+    per_cycle : int
+    """
+    seq = np.asarray(seq)
+    k = (first + np.arange(seq.shape[-1])) % per_cycle
+    raw = seq * transfer[k].T
+    ok = np.isfinite(shift)
+    if 2 <= ok.sum() < ok.size:
+        at, known = np.arange(ok.size), np.flatnonzero(ok)
+        raw = np.array([np.interp(at, known, r.real[ok]) + 1j * np.interp(at, known, r.imag[ok]) for r in raw])
+    slope = cycle_slope(raw.real, per_cycle) + 1j * cycle_slope(raw.imag, per_cycle)
+    return raw - np.clip(np.nan_to_num(shift), -3.0, 3.0) * slope
 
 
 def to_middles(g: np.ndarray, shift: np.ndarray, per_cycle: int, slope: np.ndarray | None = None) -> np.ndarray:
@@ -731,9 +822,12 @@ def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
 
     ``times`` (each gain sample's position in the recording) lets a pulse
     model with a track read the heartbeat there (:meth:`artifactclean.pulse.PulseModel.parts`).
+    The sequences are segment gains (:func:`segment_gain`): the pulse's
+    harmonics are taken out as segments hold them.
     """
     out = np.empty_like(gain)
-    parts = None if response.pulse is None else response.pulse.parts(gain, rate, envelope, scale, times=times)
+    parts = None if response.pulse is None else response.pulse.parts(gain, rate, envelope, scale, times=times,
+                                                                     segments=True)
     for ch in range(gain.shape[0]):
         row = min(ch, response.response.shape[0] - 1)
         out[ch] = filter_sequences(gain[ch:ch + 1], response.taps(row, rate), rate, envelope, max_hz, scale,

@@ -43,7 +43,7 @@ import numpy as np
 from scipy import linalg, ndimage, signal
 
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
-from .modulation import _FOOT, _MAX_BOOST, as_moved, plateau_level
+from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, segment_transfer
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase",
            "join_tracks", "phase_information", "pool_weights", "relative_deviation"]
@@ -114,7 +114,9 @@ class PulseModel:
         Heart rate (Hz) the band-pass is centred on.
     coefs : ndarray, complex, shape (n_channels, n_harmonics)
         ``k B_h`` of harmonics ``2 ... n_harmonics + 1``, relative to half the
-        reference's fundamental (0 where one did not stand out of the floor).
+        reference's fundamental (0 where one did not stand out of the floor),
+        in the artifact's modulation: what a gain sequence holds of them is
+        :meth:`seen_coefs`.
     ref : int
         Row of the reference channel.
     """
@@ -133,6 +135,10 @@ class PulseModel:
     #: mean error (:func:`phase_information`); None: the phase is read from the fundamental alone
     phase_info: np.ndarray | None = None
     phase_offset: np.ndarray | None = None
+    #: how the segment gains the model was fitted on see each channel's harmonics (complex, the shape of
+    #: ``coefs``: the mean over a cycle's segments of :func:`artifactclean.modulation.segment_transfer`, as
+    #: moved to the middles); None: as a plain mean over each element does (``sinc``)
+    seen: np.ndarray | None = None
 
     def pooled(self) -> list[int]:
         """The channels the heartbeat's fundamental is read from."""
@@ -143,13 +149,15 @@ class PulseModel:
     def rows(self, rows) -> "PulseModel | None":
         """The model of channels ``rows`` only; None if it needs channels that are not among them."""
         rows = list(rows)
+        seen = None if self.seen is None else self.seen[rows]
         if self.track is not None:
             return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref) if self.ref in rows else -1,
-                              self.track, phase_info=self.phase_info, phase_offset=self.phase_offset)
+                              self.track, phase_info=self.phase_info, phase_offset=self.phase_offset, seen=seen)
         if not set(self.pooled()) <= set(rows):
             return None
         return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref), None,
-                          None if self.weights is None else self.weights[rows], self.phase_info, self.phase_offset)
+                          None if self.weights is None else self.weights[rows], self.phase_info, self.phase_offset,
+                          seen)
 
     def with_track(self, track: tuple[np.ndarray, np.ndarray, np.ndarray] | None) -> "PulseModel":
         """The same model with the heartbeat's fundamental read from ``track`` (see :func:`join_tracks`)."""
@@ -159,9 +167,19 @@ class PulseModel:
         """The harmonic numbers modelled on any channel."""
         return [int(h) for h in np.flatnonzero(np.any(self.coefs != 0, axis=0)) + 2]
 
+    def seen_coefs(self, rate: float, segments: bool = True) -> np.ndarray:
+        """:attr:`coefs` as a gain sequence at ``rate`` holds them: as the template's segments see them
+        (:attr:`seen`) with ``segments``, else (or without :attr:`seen`) as a mean over each element, whose
+        ``sinc(f / rate)`` (a boxcar's Fourier transform) takes a harmonic at ``f`` down."""
+        if segments and self.seen is not None:
+            return self.coefs * self.seen
+        hs = np.arange(2, self.coefs.shape[1] + 2)
+        return self.coefs * np.sinc(hs * self.heart_hz / rate)[None, :]
+
     def relative(self, ref_gain: np.ndarray | None, rate: float, envelope: np.ndarray | None = None,
                  level: float | None = None, n_rows: int | None = None,
-                 times: np.ndarray | None = None, slope: bool = False) -> tuple[np.ndarray, ...]:
+                 times: np.ndarray | None = None, slope: bool = False,
+                 segments: bool = False) -> tuple[np.ndarray, ...]:
         """Each channel's pulse harmonics relative to its plateau level, as fitted and as carried.
 
         With a :attr:`track` and ``times`` (the sample position of each
@@ -172,11 +190,14 @@ class PulseModel:
         :func:`artifactclean.modulation.filter_sequences`) its deviation from
         ``level`` times the envelope is read, as the gain filter reads it.
         Harmonics at or above 0.45 ``rate`` are left out (rows of one cycle at
-        10 Hz hold 4 Hz, not 6). The second array is the first with each
-        harmonic divided by ``sinc(f / rate)^3`` (at most :data:`_MAX_BOOST`):
-        what a mean over each segment and the linear interpolation between
-        segment centres take off, as the gain filter restores for what it
-        passes. ``n_rows`` channels are returned (the model's by default).
+        10 Hz hold 4 Hz, not 6). The first array is the harmonics as the
+        sequence holds them (:meth:`seen_coefs`; ``segments``: the template's
+        segment gains, else means over each element); the second is the
+        harmonics divided by ``sinc(f / rate)^2`` (at most :data:`_MAX_BOOST`):
+        what the linear interpolation between the elements' centres takes off
+        (a triangle kernel's Fourier transform), as the gain filter restores
+        for what it passes. ``n_rows`` channels are returned (the model's by
+        default).
         With ``slope``, a third array: the second's derivative per element,
         from the fundamental's slow amplitude and phase (a difference of the
         harmonics themselves, ``numpy.gradient``, takes 0.76 of a 6 Hz
@@ -193,52 +214,53 @@ class PulseModel:
             if level is None:
                 level = _plateau_median(ref_gain, envelope) if envelope is not None else float(np.mean(ref_gain))
             amp, ph = _amplitude_phase(relative_deviation(ref_gain, level, envelope), rate, self.heart_hz)
-        return self._evaluate(amp, ph, rate, n_rows, slope)
+        return self._evaluate(amp, ph, rate, n_rows, slope, segments)
 
     def _evaluate(self, amp: np.ndarray, ph: np.ndarray, rate: float,
-                  n_rows: int | None, slope: bool = False) -> tuple[np.ndarray, ...]:
+                  n_rows: int | None, slope: bool = False, segments: bool = False) -> tuple[np.ndarray, ...]:
         """The harmonics, fitted and carried (see :meth:`relative`), from the fundamental's amplitude and phase;
         with ``slope``, the carried ones' derivative per element too."""
         hs, coefs = self._carried(rate, n_rows)
+        _, held = self._carried(rate, n_rows, self.seen_coefs(rate, segments))
         reg = _harmonic_regressors(amp, ph, hs)
-        fitted = np.real(np.einsum("ch,hn->chn", coefs, reg))
-        boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate) ** 3, 1.0 / _MAX_BOOST)
-        out = (fitted.sum(axis=1), (fitted * boost[None, :, None]).sum(axis=1))
+        boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate) ** 2, 1.0 / _MAX_BOOST)
+        carried = coefs * boost[None, :]
+        out = (np.real(np.einsum("ch,hn->cn", held, reg)), np.real(np.einsum("ch,hn->cn", carried, reg)))
         if not slope:
             return out
         if amp.size < 2:
             return out + (np.zeros_like(out[1]),)
         d_reg = reg * _log_slope(amp, ph, hs)
-        return out + (np.real(np.einsum("ch,hn->cn", coefs * boost[None, :], d_reg)),)
+        return out + (np.real(np.einsum("ch,hn->cn", carried, d_reg)),)
 
-    def _carried(self, rate: float, n_rows: int | None) -> tuple[np.ndarray, np.ndarray]:
-        """Harmonic numbers and ``n_rows`` channels' coefficients, 0 for harmonics a sequence at ``rate``
-        does not carry (at or above 0.45 ``rate``)."""
+    def _carried(self, rate: float, n_rows: int | None, coefs: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Harmonic numbers and ``n_rows`` channels' coefficients (:attr:`coefs` by default), 0 for harmonics a
+        sequence at ``rate`` does not carry (at or above 0.45 ``rate``)."""
         hs = np.arange(2, self.coefs.shape[1] + 2)
-        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
-        rows = np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)
-        return hs, self.coefs[rows] * (hs * self.heart_hz < 0.45 * rate)
+        coefs = self.coefs if coefs is None else coefs
+        n_rows = coefs.shape[0] if n_rows is None else n_rows
+        rows = np.minimum(np.arange(n_rows), coefs.shape[0] - 1)
+        return hs, coefs[rows] * (hs * self.heart_hz < 0.45 * rate)
 
     def at_times(self, times: np.ndarray, rate: float, n_rows: int | None = None) -> np.ndarray:
         """Each channel's harmonics at sample positions ``times`` from the :attr:`track`, relative to the
         plateau level, as a gain read at every sample holds them.
 
         The harmonics a gain sequence at ``rate`` carries (below 0.45
-        ``rate``, as :meth:`relative`), each divided by ``sinc(f / rate)``
-        (at most :data:`_MAX_BOOST`): what a mean over a segment takes off,
-        where the shape was fitted. Interpolating the sequence instead puts
-        images of the harmonics at the rate less them, beside the
-        stimulation frequency (30 - 4 Hz: f + 6 Hz at 10 Hz).
+        ``rate``, as :meth:`relative`), as the artifact's modulation holds
+        them (:attr:`coefs`). Interpolating the sequence instead puts images
+        of the harmonics at the rate less them, beside the stimulation
+        frequency (30 - 4 Hz: f + 6 Hz at 10 Hz).
         """
         t, a, p = self.track
         times = np.asarray(times, dtype=np.float64)
         hs, coefs = self._carried(rate, n_rows)
-        boost = 1.0 / np.maximum(np.sinc(hs * self.heart_hz / rate), 1.0 / _MAX_BOOST)
         reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)
-        return np.real(np.einsum("ch,hn->cn", coefs * boost[None, :], reg))
+        return np.real(np.einsum("ch,hn->cn", coefs, reg))
 
     def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
-              scale=None, times: np.ndarray | None = None, slope: bool = False) -> tuple[np.ndarray, ...]:
+              scale=None, times: np.ndarray | None = None, slope: bool = False,
+              segments: bool = False) -> tuple[np.ndarray, ...]:
         """The pulse's harmonics in each gain sequence (one per row of the model), fitted and carried
         (and with ``slope`` the carried ones' derivative per element, see :meth:`relative`).
 
@@ -257,10 +279,11 @@ class PulseModel:
         if self.weights is not None and (self.track is None or times is None):
             # the fundamental pooled over channels, read as :meth:`relative` reads the reference's
             dev = relative_deviation(gain, levels[:, None], envelope)
-            out = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0], slope)
+            out = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0], slope,
+                                 segments)
         else:
             out = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0], times=times,
-                                slope=slope)
+                                slope=slope, segments=segments)
         return tuple(a * levels[:, None] for a in out)
 
 
@@ -554,7 +577,7 @@ def _harmonic_readings(rows, model: "PulseModel", phase: np.ndarray, smooth_hz: 
         if h == 1:
             comb = np.ones(len(chans)) if model.weights is None else np.conj(model.weights[chans])
         else:
-            comb = np.conj(model.coefs[chans, h - 2])
+            comb = np.conj(model.seen_coefs(rate)[chans, h - 2])
         if np.any(comb != 0):
             demod.append((h, sum(c * m for c, m in zip(comb, mods)) * np.exp(-1j * h * phase)))
     if not demod:
@@ -747,7 +770,8 @@ def _pooled_variance(resid: np.ndarray, a: np.ndarray, rate: float, hz: np.ndarr
 
 
 def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None,
-              shift: np.ndarray | None = None, per_cycle: int = 1) -> PulseModel | None:
+              shift: np.ndarray | None = None, per_cycle: int = 1, cycle: np.ndarray | None = None,
+              first: int = 0) -> PulseModel | None:
     """Find a heartbeat in ``gain`` and fit its harmonics' ratios to its fundamental.
 
     Parameters
@@ -770,7 +794,17 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
         middle (``per_cycle`` segments a cycle; see
         :func:`artifactclean.modulation.segment_gain`): each channel's
         harmonics are fitted as the move left them in its gains
-        (:func:`artifactclean.modulation.as_moved`), not as at the middles.
+        (:func:`artifactclean.modulation.as_moved`, to first order), not as
+        at the middles.
+    cycle : ndarray, shape (n_channels, n_bins), optional
+        With ``shift``: the mean cycles the gains were fitted against
+        (:func:`artifactclean.modulation.segment_gain` with
+        ``return_cycle``), ``first`` the number of the first gain's segment.
+        Each channel's harmonics are then fitted as its segments see them
+        exactly (:func:`artifactclean.modulation.segment_transfer`,
+        :func:`artifactclean.modulation.as_seen`), and the model keeps how
+        (:attr:`PulseModel.seen`). Without it a segment is taken for a plain
+        mean of the modulation.
 
     Returns
     -------
@@ -835,8 +869,18 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
         b[rows] = (sol[:hs.size] - 1j * sol[hs.size:]).T  # Re(b z) = Re(b) Re(z) - Im(b) Im(z)
         resid[rows] = dev[rows, fit] - (design @ sol).T
 
+    held = None
     if shift is None:
         solve(r, slice(None))
+    elif cycle is not None:
+        # a segment's gain is a weighted mean of the modulation whose weights change sign within the segment:
+        # 1.09 of a 6 Hz harmonic at 5 Hz, 5 segments a cycle, where a plain mean gives 0.91 (segment_transfer)
+        transfer = segment_transfer(cycle, per_cycle, rate / per_cycle, heart * hs)
+        held = np.empty((dev.shape[0], hs.size), dtype=np.complex128)
+        for c in range(dev.shape[0]):
+            seen = as_seen(r_all, transfer[c], first, shift[c], per_cycle)[:, fit]
+            solve(seen, slice(c, c + 1))
+            held[c] = np.sum(np.conj(r) * seen, axis=1) / np.maximum(np.sum(np.abs(r) ** 2, axis=1), 1e-300)
     else:
         for c in range(dev.shape[0]):
             solve(as_moved(r_all, shift[c], per_cycle, dr_all)[:, fit], slice(c, c + 1))
@@ -850,9 +894,12 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     # shrunk by how far each harmonic stands out of the floor (none at about the floor's own fit)
     shrink = np.clip(1.0 - _SIGNIFICANCE / np.maximum(stat, 1e-300), 0.0, 1.0)
     coefs = k[:, None] * (shape * shrink)[None, :]
+    if held is None:
+        # fitted as the gains hold them; a plain mean over each segment holds sinc(f / rate) of the modulation
+        coefs = coefs / np.sinc(hs[1:] * heart / rate)[None, :]
     if not np.any(coefs != 0):
         return None
-    model = PulseModel(heart, coefs, int(ref), weights=weights)
+    model = PulseModel(heart, coefs, int(ref), weights=weights, seen=None if held is None else held[:, 1:])
     # what each harmonic knows of the phase, measured here once (harmonic_phase), on the phase as applied
     chans = model.pooled()
     _, ph = fundamental(dev[ref] if weights is None else dev, rate, heart, weights)

@@ -4,7 +4,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, as_moved, design_gain_response, ramp_cutoff, segment_gain, \
+from artifactclean.modulation import FOLLOW_HZ, KEEP_HZ, GainResponse, as_moved, as_seen, design_gain_response, ramp_cutoff, \
+    segment_gain, segment_transfer, \
     shift_centres, sideband_support, smooth_gain, to_middles
 
 
@@ -110,6 +111,60 @@ def test_a_modulation_as_the_move_to_the_middles_leaves_it(hz):
     # the second-order term: amplitude x (2 pi hz shift / rate)^2 / 2
     assert err <= 0.02 * (2 * np.pi * hz * np.abs(shift).max() / rate) ** 2 / 2, (err, left)
     assert err < left / 3, (err, left)
+
+
+def _cycle(u):
+    """A cycle with harmonics, as the generator's artifact has them."""
+    return np.sin(2 * np.pi * u) + 0.3 * np.sin(4 * np.pi * u + 1.0) + 0.15 * np.sin(6 * np.pi * u + 0.4)
+
+
+@pytest.mark.parametrize("per_cycle, hz", [(5, 4.0), (5, 6.0), (3, 6.0)])
+def test_a_segments_gain_sees_a_modulation_as_its_least_squares_fit(per_cycle, hz):
+    # reference: numpy.linalg.lstsq of exp(2 pi i hz tau) t on [t, 1] over each part of the cycle (the
+    # segment gain's definition: the mean cycle's scale about the segment's means), tau from its middle
+    f, n_bins = 5.0, 600
+    u = (np.arange(n_bins) + 0.5) / n_bins
+    cycle = _cycle(u)[None]
+    h = segment_transfer(cycle, per_cycle, f, [hz])[0, :, 0]
+    for k in range(per_cycle):
+        sel = np.floor(u * per_cycle) == k
+        t = cycle[0, sel]
+        tau = (u[sel] - (k + 0.5) / per_cycle) / f
+        design = np.stack([t, np.ones_like(t)], axis=1).astype(complex)
+        ref = np.linalg.lstsq(design, np.exp(2j * np.pi * hz * tau) * t, rcond=None)[0][0]
+        assert abs(h[k] - ref) < 1e-9
+    # a mean over a segment would see sinc(hz / rate): the segments' weights change sign and see more
+    assert abs(np.mean(h)) > np.sinc(hz / (f * per_cycle))
+
+
+@pytest.mark.parametrize("hz", [4.0, 6.0])
+def test_a_modulation_as_segment_gains_hold_it(hz):
+    # an artifact modulated at 4 or 6 Hz by 2 %, 5 Hz stimulation, 5 segments a cycle: segment_gain's gains
+    # against as_seen from the stretch's own mean cycle (0.3 % of the modulation off), and against as_moved
+    # (first order in the shifts, a segment taken for a plain mean about its centre: 9 % and 18 % off) and
+    # the modulation at the middles (32 % and 67 %)
+    fs, f, per_cycle = 6000.0, 5.0, 5
+    n = int(20 * fs)
+    t = np.arange(n) / fs
+    u = t * f * (1 + 40e-6) + 0.1234  # samples off the bins' edges, as a drifting stimulator puts them
+    mod = 0.02 * np.cos(2 * np.pi * hz * t + 0.7)
+    x = (1000.0 * (1.0 + mod) * _cycle(u))[None]
+    g, rate, shift, cycle = segment_gain(x, np.ones_like(x), u, fs, f, per_cycle, return_shift=True, return_cycle=True)
+    # what the phase bins' width does to the gains (a few tenths of a per cent where a segment holds a flat
+    # part of the cycle) is the same without the modulation: the modulation's part is the difference
+    g = g - segment_gain(x / (1.0 + mod), np.ones_like(x), u, fs, f, per_cycle)[0]
+    first = int(np.floor(u[0] * per_cycle))
+    mid = (first + np.arange(g.shape[1]) + 0.5) / per_cycle
+    reg = 0.02 * np.exp(1j * (2 * np.pi * hz * (mid - 0.1234) / (f * (1 + 40e-6)) + 0.7))[None]
+    seen = np.real(as_seen(reg, segment_transfer(cycle, per_cycle, f, [hz])[0], first, shift[0], per_cycle))[0]
+    slope = np.real(reg * 2j * np.pi * hz / rate)
+    moved = np.real(as_moved(reg, shift, per_cycle, slope))[0]
+    inner = slice(10, -10)
+    # the mean cycle holds the stretch's mean gain: compared about their means
+    err = lambda pred: np.std((g[0] - pred)[inner]) / 0.02  # noqa: E731
+    err_seen, err_moved = err(seen), err(moved)
+    assert err_seen < 0.01, err_seen
+    assert err_moved > 3 * err_seen, (err_seen, err_moved)
 
 
 def test_heartbeat_lines_pass_through_the_ramps(rng):

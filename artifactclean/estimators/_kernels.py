@@ -531,15 +531,16 @@ _gain_bin_sums_c = _jit(_gain_bin_sums_loop)
 _gain_seg_sums_c = _jit(_gain_seg_sums_loop)
 
 
-def gain_sums(x, w, b, seg, n_bins, n_seg, pos, *, compiled: bool = True):
+def gain_sums(x, w, b, seg, n_bins, n_seg, pos, *, compiled: bool = True, return_cycle: bool = False):
     """Sums behind :func:`artifactclean.modulation.segment_gain`, for all channels.
 
     Returns ``sw, sx, st, sxt, stt, spt, sptt`` (n_ch, n_seg): per segment the
     sums of ``w``, ``w x``, ``w t``, ``w x t``, ``w t t``, ``w pos t`` and
     ``w pos t t``, with ``t`` the weighted mean cycle of each channel
     (``n_bins`` phase bins ``b``) less its mean and ``pos`` each sample's
-    position. The numpy twin is ``numpy.bincount``, which the compiled loops
-    follow addition by addition.
+    position; with ``return_cycle``, that mean cycle (n_ch, n_bins) last.
+    The numpy twin is ``numpy.bincount``, which the compiled loops follow
+    addition by addition.
     """
     n_ch = x.shape[0]
     if compiled and HAVE_NUMBA:
@@ -553,7 +554,7 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, pos, *, compiled: bool = True):
     if compiled and HAVE_NUMBA:
         out = [np.zeros((n_ch, n_seg)) for _ in range(7)]
         _gain_seg_sums_c(x, w, b, seg, tmpl, np.asarray(pos, dtype=np.float64), *out)
-        return tuple(out)
+        return tuple(out) + ((tmpl,) if return_cycle else ())
     out = [np.empty((n_ch, n_seg)) for _ in range(7)]
     for ch in range(n_ch):
         t = tmpl[ch][b]
@@ -564,7 +565,7 @@ def gain_sums(x, w, b, seg, n_bins, n_seg, pos, *, compiled: bool = True):
         out[4][ch] = np.bincount(seg, w[ch] * t * t, n_seg)
         out[5][ch] = np.bincount(seg, w[ch] * pos * t, n_seg)
         out[6][ch] = np.bincount(seg, w[ch] * pos * t * t, n_seg)
-    return tuple(out)
+    return tuple(out) + ((tmpl,) if return_cycle else ())
 
 
 _phase_sums_c = _jit(_phase_sums_loop)

@@ -486,13 +486,15 @@ class CycleEstimator(ArtifactEstimator):
 
         def group_share(rows):
             """Channels ``rows``' raw gains, their means over ~1/32 cycle (modulations and the shift live in the
-            first harmonics) and phase shifts, and whether none of their samples is clipped."""
+            first harmonics) and phase shifts, whether none of their samples is clipped, where the gains stood and
+            the mean cycles they were fitted against."""
             xc = x[rows[0]:rows[-1] + 1]
             usable = (~find_clipped(xc)).astype(np.float64)
-            raw, rate, moved = segment_gain(xc, usable, cycles, fs, f, per_cycle, return_shift=True)
+            raw, rate, moved, cycle = segment_gain(xc, usable, cycles, fs, f, per_cycle, return_shift=True,
+                                                   return_cycle=True)
             xd, wd, ud, fsd = _block_means(xc, usable, cycles, fs, max(1, int(fs // (32 * f))))
             eta = segment_phase(xd, wd, ud, fsd, f, per_cycle, segments=(first, raw.shape[1]))[0] if shift else None
-            return bool(usable.all()), raw, rate, xd, wd, ud, fsd, eta, moved
+            return bool(usable.all()), raw, rate, xd, wd, ud, fsd, eta, moved, cycle
 
         def dac():
             """The DAC grid and the rate of steps no grid explains."""
@@ -560,10 +562,13 @@ class CycleEstimator(ArtifactEstimator):
         # designed without them, so it passes neither them nor the floor under them
         moved = np.concatenate([p[8] for p in parts])
         pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact),
-                          shift=moved, per_cycle=per_cycle) if getattr(self, "model_pulse", False) else None
+                          shift=moved, per_cycle=per_cycle, cycle=np.concatenate([p[9] for p in parts]),
+                          first=first) if getattr(self, "model_pulse", False) else None
         if pulse is not None:
-            raw = raw - pulse.parts(raw, rate)[0]
+            raw = raw - pulse.parts(raw, rate, segments=True)[0]
         response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
+        if pulse is not None:
+            stop_pulse(response, pulse)
         response.pulse = pulse
         check = None if plain or not whole else raw
 
@@ -624,6 +629,23 @@ class CycleEstimator(ArtifactEstimator):
                 f"cycle: {type(self).__name__} cannot follow it and a spike-band residual will remain; check "
                 "the result with the validation figures", stacklevel=5)
         return plan
+
+
+#: half-width (Hz) of the band the gain's response stops around each harmonic of the heartbeat that a channel's
+#: pulse model carries (this project's choice, about the heart rate's wander at the 3rd harmonic: the model
+#: puts the harmonic back whole, and what the response passed there came back twice. 5 Hz artifact alone,
+#: pulsatile heartbeat: the residual's line at 1 Hz, where both of the 2nd and 3rd harmonics' lower sidebands
+#: fall, 2.8 -> 0.7 uV)
+_PULSE_STOP_HZ = 0.5
+
+
+def stop_pulse(response: GainResponse, pulse) -> None:
+    """Stop ``response`` within :data:`_PULSE_STOP_HZ` of each harmonic of ``pulse`` (a
+    :class:`~artifactclean.pulse.PulseModel`) on the channels whose model carries it, in place."""
+    for j, h in enumerate(range(2, pulse.coefs.shape[1] + 2)):
+        rows = np.flatnonzero(pulse.coefs[:, j] != 0)
+        band = np.abs(response.freqs - h * pulse.heart_hz) <= _PULSE_STOP_HZ
+        response.response[np.ix_(rows, band)] = 0.0
 
 
 def _call(job):
