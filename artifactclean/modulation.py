@@ -29,7 +29,7 @@ from ._numeric import fractional_part
 
 __all__ = ["FOLLOW_HZ", "GainResponse", "design_gain_response", "filter_sequences", "follow_below", "lowpass_taps", "plateau_level", "ramp_cutoff",
            "phase_highpass", "phase_shift", "segment_gain", "segment_phase", "segments_per_cycle", "shift_centres", "sideband_support",
-           "smooth_gain", "segment_transfer", "as_seen",
+           "smooth_gain", "segment_transfer", "seen_by_segments", "as_seen",
            "to_middles", "cycle_slope"]
 
 #: below this (Hz) the row estimators' slow sequences pass: respiration (~0.2-0.5 Hz) and the
@@ -80,12 +80,16 @@ class GainResponse:
     rate: float
     phase: np.ndarray | None = None
     pulse: object | None = None
+    #: how the segment gains see a modulation at each of ``freqs`` (n_channels, n_freqs; complex), moved to
+    #: their middles (:func:`seen_by_segments`); None: as a mean over each segment (``sinc``)
+    seen: np.ndarray | None = None
 
     def rows(self, rows) -> "GainResponse":
         """The responses of channels ``rows`` only."""
         return GainResponse(self.freqs, self.response[rows], self.rate,
                             None if self.phase is None else self.phase[rows],
-                            None if self.pulse is None else self.pulse.rows(rows))
+                            None if self.pulse is None else self.pulse.rows(rows),
+                            None if self.seen is None else self.seen[rows])
 
     def phase_taps(self, ch: int, rate: float | None = None) -> np.ndarray | None:
         """Zero-phase FIR taps for channel ``ch``'s phase shift; None where nothing passes.
@@ -99,14 +103,17 @@ class GainResponse:
         phase[:, self.freqs == 0] = 0.0
         return GainResponse(self.freqs, phase, self.rate).taps(ch, rate, unit_dc=False)
 
-    def taps(self, ch: int, rate: float | None = None, unit_dc: bool = True) -> np.ndarray:
+    def taps(self, ch: int, rate: float | None = None, unit_dc: bool = True,
+             segments: bool = False) -> np.ndarray:
         """Symmetric FIR taps (``scipy.signal.firwin2``) for channel ``ch`` at ``rate``.
 
         The response ``r`` is multiplied by ``(1 / sinc(f / rate)^3) ** r``
         (at most :data:`_MAX_BOOST`): a mean over each gain segment and the
         linear interpolation between segment centres take ``sinc^3`` off a
         modulation at ``f`` (boxcar and triangle kernels, textbook Fourier
-        pairs), restored in full where the response passes in full.
+        pairs), restored in full where the response passes in full. With
+        ``segments`` (the template's segment gains) and :attr:`seen`, the
+        segments' own ``|seen|`` takes the place of the boxcar's ``sinc``.
         """
         rate = self.rate if rate is None else rate
         nyq = rate / 2
@@ -118,7 +125,10 @@ class GainResponse:
         # what passes is restored in proportion to how surely it is modulation: a line barely out of
         # the floor (response well below 1) is mostly floor, which a full boost would amplify
         # (measured at 5 Hz: LFP error away from the harmonics 0.28 with this, 0.31 with full boost)
-        boost = 1 / np.maximum(np.sinc(f / rate) ** 3, 1 / _MAX_BOOST)
+        mean = np.sinc(f / rate)
+        if segments and self.seen is not None:
+            mean = np.interp(f, self.freqs, np.abs(self.seen[ch]))
+        boost = 1 / np.maximum(mean * np.sinc(f / rate) ** 2, 1 / _MAX_BOOST)
         r = r * boost ** r
         numtaps = 2 * int(HALF_S * rate) + 1
         taps = signal.firwin2(numtaps, f, r, fs=rate, window="hann")
@@ -256,6 +266,33 @@ def segment_transfer(cycle: np.ndarray, per_cycle: int, f: float, hz) -> np.ndar
         ok = den[:, 0] > 0
         tau = (ph[sel] - (k + 0.5) / per_cycle) / f
         out[ok, k] = (t * dev)[ok] / den[ok] @ np.exp(2j * np.pi * np.outer(tau, hz))
+    return out
+
+
+def seen_by_segments(cycle: np.ndarray, per_cycle: int, f: float, first: int, shift: np.ndarray,
+                     hz) -> np.ndarray:
+    """How each channel's segment gains hold a modulation at each of ``hz``, moved to their middles, on average.
+
+    The least-squares ratio of :func:`as_seen` of ``exp(2 pi i nu t)`` to
+    itself over the segments of ``shift`` (each channel's, from
+    :func:`segment_gain` with ``return_shift``; ``first`` the first one's
+    number): :func:`segment_transfer` averaged over the cycle's parts as
+    the shifts and the move leave it.
+
+    Returns
+    -------
+    ndarray, complex, shape (n_channels, n_hz)
+    """
+    hz = np.atleast_1d(np.asarray(hz, dtype=np.float64))
+    shift = np.atleast_2d(shift)
+    transfer = segment_transfer(cycle, per_cycle, f, hz)
+    n = shift.shape[1]
+    reg = np.exp(2j * np.pi * np.outer(hz, np.arange(n)) / (f * per_cycle))
+    edge = slice(min(per_cycle + 2, n // 4), n - min(per_cycle + 2, n // 4))  # a cycle's slope needs a cycle each side
+    out = np.empty((shift.shape[0], hz.size), dtype=np.complex128)
+    for c in range(shift.shape[0]):
+        seen = as_seen(reg, transfer[c], first, shift[c], per_cycle)
+        out[c] = np.mean((np.conj(reg) * seen)[:, edge], axis=1)
     return out
 
 
@@ -830,6 +867,7 @@ def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
                                                                      segments=True)
     for ch in range(gain.shape[0]):
         row = min(ch, response.response.shape[0] - 1)
-        out[ch] = filter_sequences(gain[ch:ch + 1], response.taps(row, rate), rate, envelope, max_hz, scale,
+        out[ch] = filter_sequences(gain[ch:ch + 1], response.taps(row, rate, segments=True), rate, envelope, max_hz,
+                                   scale,
                                    pulse=None if parts is None else (parts[0][ch], parts[1][ch]))[0]
     return out

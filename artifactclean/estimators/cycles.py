@@ -26,8 +26,8 @@ from ..parallel import channel_groups
 from ..stimulation import ramp_level
 from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, relative_deviation
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
-    lowpass_taps, phase_helps, plateau_level, ramp_cutoff, segment_gain, segment_phase, segments_per_cycle, \
-    sideband_support
+    lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, segment_phase, \
+    segments_per_cycle, sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, piece_bounds, widen_flags
 from .base import ArtifactEstimator
@@ -561,12 +561,16 @@ class CycleEstimator(ArtifactEstimator):
         # a pulsatile heartbeat's harmonics are modelled from its fundamental's phase; the response is
         # designed without them, so it passes neither them nor the floor under them
         moved = np.concatenate([p[8] for p in parts])
+        cycle = np.concatenate([p[9] for p in parts])
         pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact),
-                          shift=moved, per_cycle=per_cycle, cycle=np.concatenate([p[9] for p in parts]),
+                          shift=moved, per_cycle=per_cycle, cycle=cycle,
                           first=first) if getattr(self, "model_pulse", False) else None
         if pulse is not None:
             raw = raw - pulse.parts(raw, rate, segments=True)[0]
         response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
+        # the gain filter restores what segments and the interpolation between them take off what it passes:
+        # these segments' own share (5 Hz: 1.05 of a 2 Hz heartbeat where a segment's plain mean gives 0.99)
+        response.seen = seen_by_segments(cycle, per_cycle, f, first, moved, response.freqs)
         if pulse is not None:
             stop_pulse(response, pulse)
         response.pulse = pulse
