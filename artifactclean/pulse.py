@@ -46,7 +46,7 @@ from scipy import linalg, ndimage, signal
 from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, segment_transfer
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase",
-           "join_tracks", "phase_information", "pool_weights", "relative_deviation"]
+           "join_tracks", "phase_information", "pool_weights", "relative_deviation", "track_smoothing"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -61,6 +61,16 @@ PULSE_HALF_S = 2.0
 #: pulsatile, LFP away: 20 Hz 0.043-0.056 -> 0.028-0.036, 10 Hz 0.067-0.090 -> 0.043-0.070, 40 Hz seed 4
 #: 0.041 -> 0.028; 0.8 and 1.2 gave the same within 0.005)
 _SMOOTH_HZ = 0.6
+#: where the fundamental knows little of the phase (its power over the floor's density beside it, in Hz:
+#: :func:`phase_information`) the floor's wander, not the rate's, is the track's error: below this
+#: information the smoothing is :data:`_SMOOTH_HZ` times (information / this)^(1/4), at least
+#: :data:`_SMOOTH_MIN_HZ` (session 24: the acceptance traces' fundamental held 30-36 at 5 Hz, 530-730 at
+#: 10 Hz; smoothed to 0.3 Hz the 5 Hz LFP error away from the harmonics was 0.076-0.109 instead of
+#: 0.087-0.130, the 10 Hz one 0.051-0.061 instead of 0.048-0.051. The quarter power balances a noise
+#: error growing with the bandwidth against a lag behind a rate that wanders as a random walk, whose
+#: phase's spectrum falls as f^-4: this project's reasoning, not a published rule)
+_INFO_FULL = 500.0
+_SMOOTH_MIN_HZ = 0.2
 #: the same for the regressors the pulse's shape is fitted on (:func:`fit_pulse`): its test of each harmonic
 #: takes the regressors for independent of the floor, and a phase passing more of the floor's wander breaks
 #: that (a sinusoidal heartbeat on channels of one sign got a 2nd harmonic of 0.071 at 0.6, 0.034 at 0.3)
@@ -139,6 +149,9 @@ class PulseModel:
     #: ``coefs``: the mean over a cycle's segments of :func:`artifactclean.modulation.segment_transfer`, as
     #: moved to the middles); None: as a plain mean over each element does (``sinc``)
     seen: np.ndarray | None = None
+    #: what the heartbeat's phase and amplitude are smoothed to where the model is applied (Hz;
+    #: :func:`track_smoothing`)
+    smooth_hz: float = _SMOOTH_HZ
 
     def pooled(self) -> list[int]:
         """The channels the heartbeat's fundamental is read from."""
@@ -152,12 +165,13 @@ class PulseModel:
         seen = None if self.seen is None else self.seen[rows]
         if self.track is not None:
             return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref) if self.ref in rows else -1,
-                              self.track, phase_info=self.phase_info, phase_offset=self.phase_offset, seen=seen)
+                              self.track, phase_info=self.phase_info, phase_offset=self.phase_offset, seen=seen,
+                              smooth_hz=self.smooth_hz)
         if not set(self.pooled()) <= set(rows):
             return None
         return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref), None,
                           None if self.weights is None else self.weights[rows], self.phase_info, self.phase_offset,
-                          seen)
+                          seen, self.smooth_hz)
 
     def with_track(self, track: tuple[np.ndarray, np.ndarray, np.ndarray] | None) -> "PulseModel":
         """The same model with the heartbeat's fundamental read from ``track`` (see :func:`join_tracks`)."""
@@ -905,4 +919,23 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     _, ph = fundamental(dev[ref] if weights is None else dev, rate, heart, weights)
     rows = [(None, rate, dev[c][fit]) for c in chans]
     model.phase_info, model.phase_offset = phase_information(rows, model, ph[fit])
+    model.smooth_hz = track_smoothing(float(model.phase_info[0]))
+    if model.smooth_hz != _SMOOTH_HZ:
+        # each reading's mean error as the track will be smoothed
+        model.phase_info, model.phase_offset = phase_information(rows, model, ph[fit], model.smooth_hz)
     return model
+
+
+def track_smoothing(information: float) -> float:
+    """What the heartbeat's track is smoothed to (Hz), from what its fundamental knows of the phase.
+
+    ``information`` is the fundamental's power over the floor's density
+    beside it (Hz; :func:`phase_information`). A phase read through a floor
+    has an error growing with the smoothing's bandwidth over the
+    information, and a phase smoothed too much lags the heart rate's wander:
+    :data:`_SMOOTH_HZ` from :data:`_INFO_FULL` up, ``(information /
+    _INFO_FULL)^(1/4)`` of it below, at least :data:`_SMOOTH_MIN_HZ`.
+    """
+    if not information > 0:
+        return _SMOOTH_HZ
+    return float(np.clip(_SMOOTH_HZ * (information / _INFO_FULL) ** 0.25, _SMOOTH_MIN_HZ, _SMOOTH_HZ))

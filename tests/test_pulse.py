@@ -319,6 +319,39 @@ def test_the_pulses_harmonics_sharpen_its_phase(seed):
     np.testing.assert_array_equal(harmonic_phase(rows, model, ph, up_to_hz=3.9), ph)
 
 
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_a_heartbeat_read_through_a_strong_floor_is_smoothed_more(seed):
+    # three channels carry a pulse whose rate wanders 3% over 10 s: over a floor of 0.2% the fundamental
+    # knows much of the phase (information 1200-1600 Hz) and the track keeps the 0.6 Hz that follows a
+    # breathing heart rate; over 2% (information 13-18) the floor's wander is the error, and the track
+    # smoothed as track_smoothing says (0.24-0.26 Hz) is 0.13-0.14 rad RMS off where 0.6 Hz was 0.18
+    n = int(40 * RATE)
+    t = np.arange(n) / RATE
+    phi = 2 * np.pi * 2.0 * (t - 0.03 / (2 * np.pi * 0.1) * np.cos(2 * np.pi * 0.1 * t)) + 1.0
+    shape = np.cos(phi) + 0.5 * np.cos(2 * phi + 0.3) + 0.25 * np.cos(3 * phi + 0.6)
+    depths = np.array([0.02, -0.014, 0.01])[:, None]
+    mid = slice(int(5 * RATE), n - int(5 * RATE))
+    for noise in (0.002, 0.02):
+        rng = np.random.default_rng(seed)
+        gain = 1 + depths * shape[None] + noise * rng.standard_normal((3, n))
+        model = fit_pulse(gain, RATE, max_hz=10.0, ref=0)
+        assert model is not None
+        chans = model.pooled()
+        rows = [(t, RATE, gain[c] - gain[c].mean()) for c in chans]
+        weights = None if model.weights is None else model.weights[chans]
+
+        def rms(smooth_hz):
+            _, _, ph = fundamental_of_rows(rows, model.heart_hz, weights, smooth_hz)
+            d = np.angle(np.exp(1j * (ph - phi)[mid]))
+            return np.sqrt(np.mean(np.angle(np.exp(1j * (d - np.angle(np.mean(np.exp(1j * d)))))) ** 2))
+
+        if noise < 0.01:
+            assert model.smooth_hz == 0.6
+        else:
+            assert 0.2 <= model.smooth_hz < 0.35, model.smooth_hz
+            assert rms(model.smooth_hz) < 0.85 * rms(0.6), (rms(model.smooth_hz), rms(0.6))
+
+
 def test_the_pulse_is_read_back_at_every_sample_and_alike_in_pieces():
     # the template's gain takes the heartbeat's harmonics at every sample from a grid anchored at the
     # block's reference sample: a piece of the block reads what the whole block reads there, and the
@@ -389,14 +422,15 @@ def test_the_block_track_frees_file_tasks_of_the_reference(monkeypatch):
     assert rate == pytest.approx(plan.response.pulse.heart_hz, rel=0.05)
 
 
-@pytest.mark.parametrize("freq, seed, gain, bound", [(10.0, 1, 0.4, 0.06), (20.0, 1, 0.75, 0.045), (5.0, 3, 0.5, 0.13)])
+@pytest.mark.parametrize("freq, seed, gain, bound", [(10.0, 1, 0.4, 0.06), (20.0, 1, 0.75, 0.04), (5.0, 3, 0.5, 0.1)])
 def test_a_pulsatile_heartbeat_leaves_the_lfp_away_from_the_harmonics(freq, seed, gain, bound):
     # the built-in modulated scenario: a 2 Hz pulse with harmonics at 4 and 6 Hz, whose sidebands
     # (10 +- 4, 10 +- 6 Hz; 20 +- 4, 20 +- 6 Hz; at 5 Hz, 1 Hz) lie away from the +-3 Hz bands. Filtered,
     # they left 0.197 (10 Hz) and 0.072 (20 Hz); modelled from the reference channel's heartbeat 0.082,
     # 0.046 and 0.311 (5 Hz, seed 3); from the four channels pooled 0.064, 0.043 and 0.125; with the shape
     # pooled over the floors' cross-spectrum 0.070, 0.043 and 0.142; fitted where the gains stand, read
-    # through the ramps and its phase refined with the harmonics 0.049, 0.033 and 0.108
+    # through the ramps and its phase refined with the harmonics 0.049, 0.033 and 0.108; fitted as the
+    # segments see it, put back once and its track smoothed by what it knows 0.048, 0.029 and 0.087
     art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=freq)
     rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=seed)
     with warnings.catch_warnings():

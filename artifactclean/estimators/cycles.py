@@ -407,10 +407,10 @@ class CycleEstimator(ArtifactEstimator):
         """
         a, b = part
         weights = None if pulse.weights is None else pulse.weights[pulse.pooled()]
-        t, amp, ph = fundamental_of_rows(rows, pulse.heart_hz, weights)
+        t, amp, ph = fundamental_of_rows(rows, pulse.heart_hz, weights, pulse.smooth_hz)
         # the pulse's harmonics hold the phase too (a third of what is known of it at 10 Hz), those a heart rate
         # or more below the stimulation frequency
-        ph = harmonic_phase(rows, pulse, ph, up_to_hz=blk.freq_hz - pulse.heart_hz)
+        ph = harmonic_phase(rows, pulse, ph, pulse.smooth_hz, up_to_hz=blk.freq_hz - pulse.heart_hz)
         keep = (t >= a) & (t < b)
         # positions from the block's reference sample: a window of the recording (a file piece) keeps them
         return t[keep] - blk.ref_sample, amp[keep], ph[keep]
