@@ -463,6 +463,12 @@ def test_the_gain_response_stops_where_the_pulse_model_puts_its_harmonics_back()
         assert np.all(response.response[np.ix_(rows, near)] == 0)
     assert np.all(response.response[1, np.abs(freqs - 6.0) <= 0.5] == 1)  # channel 1 carries no 3rd harmonic
     assert np.all(response.response[:, freqs < 3.0] == 1)  # the fundamental passes as before
+    # where everything passes, nothing is stopped: a 1.2 Hz heart taken for 0.6 Hz (10 Hz stimulation, seed 1)
+    # got harmonics the model does not hold at 2.4 Hz, and stopped there its +-3 Hz residue went 0.26 -> 0.82
+    slow = GainResponse(freqs, np.ones((1, freqs.size)), 30.0)
+    stop_pulse(slow, PulseModel(0.6, np.array([[0.8, 0.5, 0.3, 0.2]], dtype=complex), 0), above_hz=2.75)
+    assert np.all(slow.response[0, freqs <= 2.75] == 1)
+    assert np.all(slow.response[0, (freqs > 2.75) & (freqs <= 3.5)] == 0)  # the 5th harmonic (3 Hz), above it
 
 
 def test_the_pulses_sidebands_folded_onto_1_hz_are_taken_off_at_5_hz():

@@ -572,7 +572,9 @@ class CycleEstimator(ArtifactEstimator):
         # these segments' own share (5 Hz: 1.05 of a 2 Hz heartbeat where a segment's plain mean gives 0.99)
         response.seen = seen_by_segments(cycle, per_cycle, f, first, moved, response.freqs)
         if pulse is not None:
-            stop_pulse(response, pulse)
+            # not where everything passes: a heart taken at half its rate (a slow 0.6 Hz one for a 1.2 Hz
+            # one at 10 Hz) has harmonics there that the model does not hold
+            stop_pulse(response, pulse, follow_below(f))
         response.pulse = pulse
         check = None if plain or not whole else raw
 
@@ -643,12 +645,13 @@ class CycleEstimator(ArtifactEstimator):
 _PULSE_STOP_HZ = 0.5
 
 
-def stop_pulse(response: GainResponse, pulse) -> None:
+def stop_pulse(response: GainResponse, pulse, above_hz: float = 0.0) -> None:
     """Stop ``response`` within :data:`_PULSE_STOP_HZ` of each harmonic of ``pulse`` (a
-    :class:`~artifactclean.pulse.PulseModel`) on the channels whose model carries it, in place."""
+    :class:`~artifactclean.pulse.PulseModel`) on the channels whose model carries it, in place; not at or
+    below ``above_hz``, where everything passes (:func:`~artifactclean.modulation.follow_below`)."""
     for j, h in enumerate(range(2, pulse.coefs.shape[1] + 2)):
         rows = np.flatnonzero(pulse.coefs[:, j] != 0)
-        band = np.abs(response.freqs - h * pulse.heart_hz) <= _PULSE_STOP_HZ
+        band = (np.abs(response.freqs - h * pulse.heart_hz) <= _PULSE_STOP_HZ) & (response.freqs > above_hz)
         response.response[np.ix_(rows, band)] = 0.0
 
 
