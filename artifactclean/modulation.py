@@ -270,14 +270,15 @@ def segment_transfer(cycle: np.ndarray, per_cycle: int, f: float, hz) -> np.ndar
 
 
 def seen_by_segments(cycle: np.ndarray, per_cycle: int, f: float, first: int, shift: np.ndarray,
-                     hz) -> np.ndarray:
+                     hz, transfer: np.ndarray | None = None) -> np.ndarray:
     """How each channel's segment gains hold a modulation at each of ``hz``, moved to their middles, on average.
 
     The least-squares ratio of :func:`as_seen` of ``exp(2 pi i nu t)`` to
     itself over the segments of ``shift`` (each channel's, from
     :func:`segment_gain` with ``return_shift``; ``first`` the first one's
     number): :func:`segment_transfer` averaged over the cycle's parts as
-    the shifts and the move leave it.
+    the shifts and the move leave it. ``transfer``: that of ``cycle`` at
+    ``hz``, where it is at hand.
 
     Returns
     -------
@@ -285,7 +286,8 @@ def seen_by_segments(cycle: np.ndarray, per_cycle: int, f: float, first: int, sh
     """
     hz = np.atleast_1d(np.asarray(hz, dtype=np.float64))
     shift = np.atleast_2d(shift)
-    transfer = segment_transfer(cycle, per_cycle, f, hz)
+    if transfer is None:
+        transfer = segment_transfer(cycle, per_cycle, f, hz)
     n = shift.shape[1]
     reg = np.exp(2j * np.pi * np.outer(hz, np.arange(n)) / (f * per_cycle))
     edge = slice(min(per_cycle + 2, n // 4), n - min(per_cycle + 2, n // 4))  # a cycle's slope needs a cycle each side
@@ -867,7 +869,7 @@ def smooth_gain(gain: np.ndarray, response: GainResponse, rate: float,
                                                                      segments=True)
     for ch in range(gain.shape[0]):
         row = min(ch, response.response.shape[0] - 1)
-        out[ch] = filter_sequences(gain[ch:ch + 1], response.taps(row, rate, segments=True), rate, envelope, max_hz,
-                                   scale,
+        taps = response.taps(row, rate, segments=True)
+        out[ch] = filter_sequences(gain[ch:ch + 1], taps, rate, envelope, max_hz, scale,
                                    pulse=None if parts is None else (parts[0][ch], parts[1][ch]))[0]
     return out

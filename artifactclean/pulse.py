@@ -43,7 +43,7 @@ import numpy as np
 from scipy import linalg, ndimage, signal
 
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
-from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, segment_transfer
+from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, seen_by_segments, segment_transfer
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase",
            "join_tracks", "phase_information", "pool_weights", "relative_deviation", "track_smoothing"]
@@ -890,11 +890,9 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
         # a segment's gain is a weighted mean of the modulation whose weights change sign within the segment:
         # 1.09 of a 6 Hz harmonic at 5 Hz, 5 segments a cycle, where a plain mean gives 0.91 (segment_transfer)
         transfer = segment_transfer(cycle, per_cycle, rate / per_cycle, heart * hs)
-        held = np.empty((dev.shape[0], hs.size), dtype=np.complex128)
         for c in range(dev.shape[0]):
-            seen = as_seen(r_all, transfer[c], first, shift[c], per_cycle)[:, fit]
-            solve(seen, slice(c, c + 1))
-            held[c] = np.sum(np.conj(r) * seen, axis=1) / np.maximum(np.sum(np.abs(r) ** 2, axis=1), 1e-300)
+            solve(as_seen(r_all, transfer[c], first, shift[c], per_cycle)[:, fit], slice(c, c + 1))
+        held = seen_by_segments(cycle, per_cycle, rate / per_cycle, first, shift, heart * hs[1:], transfer[:, :, 1:])
     else:
         for c in range(dev.shape[0]):
             solve(as_moved(r_all, shift[c], per_cycle, dr_all)[:, fit], slice(c, c + 1))
@@ -913,7 +911,7 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
         coefs = coefs / np.sinc(hs[1:] * heart / rate)[None, :]
     if not np.any(coefs != 0):
         return None
-    model = PulseModel(heart, coefs, int(ref), weights=weights, seen=None if held is None else held[:, 1:])
+    model = PulseModel(heart, coefs, int(ref), weights=weights, seen=held)
     # what each harmonic knows of the phase, measured here once (harmonic_phase), on the phase as applied
     chans = model.pooled()
     _, ph = fundamental(dev[ref] if weights is None else dev, rate, heart, weights)
