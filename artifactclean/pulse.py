@@ -152,6 +152,9 @@ class PulseModel:
     #: what the heartbeat's phase and amplitude are smoothed to where the model is applied (Hz;
     #: :func:`track_smoothing`)
     smooth_hz: float = _SMOOTH_HZ
+    #: how each part of the cycle's segment gain sees each channel's harmonics (complex, n_channels x parts x
+    #: harmonics: :func:`artifactclean.modulation.segment_transfer`); None where not known
+    seen_by_part: np.ndarray | None = None
 
     def pooled(self) -> list[int]:
         """The channels the heartbeat's fundamental is read from."""
@@ -163,15 +166,16 @@ class PulseModel:
         """The model of channels ``rows`` only; None if it needs channels that are not among them."""
         rows = list(rows)
         seen = None if self.seen is None else self.seen[rows]
+        by_part = None if self.seen_by_part is None else self.seen_by_part[rows]
         if self.track is not None:
             return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref) if self.ref in rows else -1,
                               self.track, phase_info=self.phase_info, phase_offset=self.phase_offset, seen=seen,
-                              smooth_hz=self.smooth_hz)
+                              smooth_hz=self.smooth_hz, seen_by_part=by_part)
         if not set(self.pooled()) <= set(rows):
             return None
         return PulseModel(self.heart_hz, self.coefs[rows], rows.index(self.ref), None,
                           None if self.weights is None else self.weights[rows], self.phase_info, self.phase_offset,
-                          seen, self.smooth_hz)
+                          seen, self.smooth_hz, by_part)
 
     def with_track(self, track: tuple[np.ndarray, np.ndarray, np.ndarray] | None) -> "PulseModel":
         """The same model with the heartbeat's fundamental read from ``track`` (see :func:`join_tracks`)."""
@@ -271,6 +275,30 @@ class PulseModel:
         hs, coefs = self._carried(rate, n_rows)
         reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)
         return np.real(np.einsum("ch,hn->cn", coefs, reg))
+
+    def part_pattern(self, times: np.ndarray, part: np.ndarray, rate: float,
+                     n_rows: int | None = None) -> np.ndarray | None:
+        """What the parts of the cycle see of the harmonics beyond their mean (:attr:`seen`), per segment.
+
+        ``times``: each segment's middle (samples from the block's reference
+        sample, read on the :attr:`track`); ``part``: its part of the cycle.
+        A pattern repeating every cycle times a harmonic puts its images at the
+        segments' cycle rate less the harmonic (5 Hz: 6 - 5 = 1 Hz), where the
+        gain filter passes everything. None without :attr:`seen_by_part` or a
+        :attr:`track`. The harmonics beyond the parts' mean, not beyond
+        :attr:`seen` (the mean as the move to the middles leaves it): with
+        the pattern off, the pulse stands at the middles and is not moved.
+        """
+        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
+        if self.seen_by_part is None or self.track is None:
+            return None
+        t, a, p = self.track
+        hs, coefs = self._carried(rate, n_rows)
+        rows = np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)
+        by_part = self.seen_by_part[rows]
+        beyond = by_part[:, part, :] - by_part.mean(axis=1)[:, None, :]  # (n_rows, n_seg, n_h)
+        reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)  # (n_h, n_seg)
+        return np.real(np.einsum("ch,csh,hs->cs", coefs, beyond, reg))
 
     def parts(self, gain: np.ndarray, rate: float, envelope: np.ndarray | None = None,
               scale=None, times: np.ndarray | None = None, slope: bool = False,
@@ -911,7 +939,8 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
         coefs = coefs / np.sinc(hs[1:] * heart / rate)[None, :]
     if not np.any(coefs != 0):
         return None
-    model = PulseModel(heart, coefs, int(ref), weights=weights, seen=held)
+    model = PulseModel(heart, coefs, int(ref), weights=weights, seen=held,
+                       seen_by_part=None if held is None else transfer[:, :, 1:])
     # what each harmonic knows of the phase, measured here once (harmonic_phase), on the phase as applied
     chans = model.pooled()
     _, ph = fundamental(dev[ref] if weights is None else dev, rate, heart, weights)

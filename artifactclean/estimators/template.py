@@ -812,6 +812,14 @@ class TemplateSubtraction(CycleEstimator):
         u_first, u_step, per_cycle = seg_first
         shift = (u_first + u_step * centre - seg_u) * per_cycle
         g = np.zeros_like(num)
+        # the parts of the cycle see the heartbeat's harmonics differently (pulse.PulseModel.part_pattern): that
+        # pattern comes off the raw gains, whose images of the harmonics would pass where everything passes
+        pattern = None
+        if response is not None and response.pulse is not None and seg_times is not None:
+            part = np.round(seg_u * per_cycle - 0.5).astype(np.int64) % per_cycle
+            pattern = response.pulse.part_pattern(seg_times, part, seg_rate, n_rows=g.shape[0])
+            if pattern is not None and trap is None:
+                pattern = pattern * seg_env
         for ch in range(g.shape[0]):
             # a segment with too little usable template energy (outliers, clipping) takes its
             # gain from its neighbours; clipping removes the peaks of every cycle, so usable
@@ -821,10 +829,11 @@ class TemplateSubtraction(CycleEstimator):
             if trap is not None:
                 ok &= seg_env > _FOOT  # a gain relative to an envelope of nothing is noise over nothing
             shift[ch, ~ok] = 0.0
+            vals = num[ch, ok] / den[ch, ok] - (0.0 if pattern is None else pattern[ch, ok])
             if ok.sum() >= 2:
-                g[ch] = np.interp(seg_u, seg_u[ok], num[ch, ok] / den[ch, ok])
+                g[ch] = np.interp(seg_u, seg_u[ok], vals)
             elif ok.any():
-                g[ch] = (num[ch, ok] / den[ch, ok]).mean()
+                g[ch] = vals.mean()
             else:
                 g[ch] = 1.0
         def smooth(gg):
@@ -860,7 +869,9 @@ class TemplateSubtraction(CycleEstimator):
                 # left, and the shifts' pattern times the rest put lines at 1 and 9 Hz): theirs is exact
                 # (from the heartbeat's phase: a difference of segments takes 0.76 of a 6 Hz slope at 30 a second)
                 part, d_part = pulse(g)
-                slope = slope - cycle_slope(part, per_cycle) + d_part
+                # the exact slope moves a pulse that stands where the parts of the cycle put it; one whose
+                # pattern came off stands at the middles already
+                slope = slope - cycle_slope(part, per_cycle) + (0.0 if pattern is not None else d_part)
             g = smooth(to_middles(g, shift, per_cycle, slope=slope))
         fine = response is not None and response.pulse is not None and response.pulse.track is not None \
             and pulse_grid is not None
