@@ -278,7 +278,7 @@ class PulseModel:
 
     def part_pattern(self, times: np.ndarray, part: np.ndarray, rate: float,
                      n_rows: int | None = None) -> np.ndarray | None:
-        """What the parts of the cycle see of the harmonics beyond their mean (:attr:`seen`), per segment.
+        """What each segment's part of the cycle sees of the harmonics beyond the parts' mean.
 
         ``times``: each segment's middle (samples from the block's reference
         sample, read on the :attr:`track`); ``part``: its part of the cycle.
