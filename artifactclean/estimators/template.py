@@ -816,8 +816,8 @@ class TemplateSubtraction(CycleEstimator):
         # pattern comes off the raw gains, whose images of the harmonics would pass where everything passes
         pattern = None
         if response is not None and response.pulse is not None and seg_times is not None:
-            part = np.round(seg_u * per_cycle - 0.5).astype(np.int64) % per_cycle
-            pattern = response.pulse.part_pattern(seg_times, part, seg_rate, n_rows=g.shape[0])
+            of_cycle = np.round(seg_u * per_cycle - 0.5).astype(np.int64) % per_cycle
+            pattern = response.pulse.part_pattern(seg_times, of_cycle, seg_rate, n_rows=g.shape[0])
             if pattern is not None and trap is None:
                 pattern = pattern * seg_env
         for ch in range(g.shape[0]):
@@ -845,15 +845,20 @@ class TemplateSubtraction(CycleEstimator):
             with np.errstate(invalid="ignore", divide="ignore"):
                 return np.where(seg_env > _FOOT, gg / seg_env, 1.0)
 
-        def pulse(gg):
-            # the heartbeat's harmonics smooth() puts in gg (pulse.PulseModel), and their slope per segment
+        def pulse(gg, slope):
+            # the heartbeat's harmonics smooth() puts in gg (pulse.PulseModel), and with ``slope`` their slope
+            # per segment (else None)
             if trap is None:
-                return response.pulse.parts(gg, seg_rate, seg_env, 1.0, times=seg_times, slope=True)[1:]
-            _, part, d_part = response.pulse.parts(gg * seg_env, seg_rate, seg_env, 1.0, times=seg_times, slope=True)
+                out = response.pulse.parts(gg, seg_rate, seg_env, 1.0, times=seg_times, slope=slope)[1:]
+                return out if slope else (out[0], None)
+            _, part, *d_part = response.pulse.parts(gg * seg_env, seg_rate, seg_env, 1.0, times=seg_times,
+                                                    slope=slope)
             inside = seg_env > _FOOT
             env = np.where(inside, seg_env, 1.0)
+            if not slope:
+                return np.where(inside, part / env, 0.0), None
             return (np.where(inside, part / env, 0.0),
-                    np.where(inside, d_part / env - part * np.gradient(seg_env) / env ** 2, 0.0))
+                    np.where(inside, d_part[0] / env - part * np.gradient(seg_env) / env ** 2, 0.0))
 
         if response is None:
             g = to_middles(g, shift, per_cycle)
@@ -868,10 +873,10 @@ class TemplateSubtraction(CycleEstimator):
                 # slope off when they are near the stimulation frequency (4 Hz at 5 Hz: 0.23 of it is
                 # left, and the shifts' pattern times the rest put lines at 1 and 9 Hz): theirs is exact
                 # (from the heartbeat's phase: a difference of segments takes 0.76 of a 6 Hz slope at 30 a second)
-                part, d_part = pulse(g)
                 # the exact slope moves a pulse that stands where the parts of the cycle put it; one whose
                 # pattern came off stands at the middles already
-                slope = slope - cycle_slope(part, per_cycle) + (0.0 if pattern is not None else d_part)
+                part, d_part = pulse(g, slope=pattern is None)
+                slope = slope - cycle_slope(part, per_cycle) + (0.0 if d_part is None else d_part)
             g = smooth(to_middles(g, shift, per_cycle, slope=slope))
         fine = response is not None and response.pulse is not None and response.pulse.track is not None \
             and pulse_grid is not None
