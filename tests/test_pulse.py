@@ -11,7 +11,8 @@ from artifactclean.evaluation import score_cleaning
 from artifactclean.modulation import to_middles
 from artifactclean.estimators import TemplateSubtraction
 from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _pooled_variance, _smooth_fundamental, fit_pulse,
-                                 fundamental, fundamental_of_rows, harmonic_phase, join_tracks, pool_weights)
+                                 fundamental, fundamental_of_rows, harmonic_phase, heart_rate, join_tracks,
+                                 pool_weights)
 from artifactclean.scenarios import SCENARIOS, locked_units
 from artifactclean.synthetic import NeuralSpec, simulate_recording
 
@@ -560,6 +561,44 @@ def test_a_slow_heart_is_not_taken_for_its_second_harmonic():
     scores, block = _cleaned_scores(_breathing_heart(40.0, 0.9, 0.08, 13))
     assert block["heart_rate_hz"] == pytest.approx(0.9, abs=0.05)
     assert max(scores["lfp_band_ratio"]) < 2.0, scores["lfp_band_ratio"]
+
+
+def _generator_heart(freq, heart_hz, seed):
+    """The modulated scenario at ``freq`` with the generator's own pulse at ``heart_hz``, cleaned."""
+    art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=freq, heart_rate_hz=heart_hz)
+    return _cleaned_scores(simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=seed))
+
+
+def test_respiration_beside_half_a_resting_heart_does_not_make_it_a_candidate():
+    # a 1.2 Hz heart at 10 Hz: half of it (0.6 Hz) was read over a bin on either side, which took in
+    # respiration's 0.25 Hz line; it passed for a fundamental and the pulse was modelled at 0.6 Hz with
+    # spurious odd harmonics (seeds 1 and 3), LFP error away from the harmonics 0.24-0.26 (0.04 at 1.2 Hz)
+    scores, block = _generator_heart(10.0, 1.2, 1)
+    assert block["heart_rate_hz"] == pytest.approx(1.2, abs=0.05)
+    assert max(scores["lfp_error_away"]) < 0.08, scores["lfp_error_away"]
+
+
+@pytest.mark.parametrize("heart_hz, seed", [(1.0, 1), (1.2, 3)])
+def test_a_resting_heart_is_found_at_5_hz(heart_hz, seed):
+    # at 5 Hz the floor beside a 1.0-1.2 Hz line is the strong LFP at 5 -+ 1 Hz, and the floor's 2 Hz window
+    # holds respiration and the pulse's own harmonic: the line stood 2.2-2.8 times its floor, under the former
+    # threshold of 3, and the pulse's 3rd harmonic, beyond what the gain always follows, left 0.19-0.24 of
+    # the LFP away from the harmonics (0.05-0.09 once found)
+    scores, block = _generator_heart(5.0, heart_hz, seed)
+    assert block["heart_rate_hz"] == pytest.approx(heart_hz, abs=0.05)
+    assert max(scores["lfp_error_away"]) < 0.12, scores["lfp_error_away"]
+
+
+def test_the_heart_rate_is_read_where_its_line_peaks():
+    # a strong 1.2 Hz line beside respiration over a low floor, 4 s Hann segments: the floor's running
+    # median falls steeply above the line, so the ratio to it peaked in the line's leakage a bin up, and the
+    # rate was read there (1.28 Hz); the line's power peaks at 1.25 Hz, and read around it, 1.20
+    t = np.arange(int(20 * 20.0)) / 20.0
+    for seed in range(3):
+        rng = np.random.default_rng(seed)
+        dev = (0.01 * np.cos(2 * np.pi * 1.2 * t + rng.uniform(0, 2 * np.pi))
+               + 0.005 * np.sin(2 * np.pi * 0.25 * t))[None] + 1e-4 * rng.standard_normal((3, t.size))
+        assert heart_rate(dev - dev.mean(axis=1, keepdims=True), 20.0) == pytest.approx(1.2, abs=0.01)
 
 
 @pytest.mark.parametrize("seed", [4, 5])
