@@ -650,9 +650,16 @@ def phase_information(rows, model: "PulseModel", phase: np.ndarray,
     The information of harmonic ``h`` is ``h^2`` times its power over its
     floor's density (a sinusoid's phase estimate has a variance of the floor
     over the power: Kay 1993, Fundamentals of Statistical Signal Processing
-    I, the Cramer-Rao bound of a sinusoid's phase, from memory); its mean
-    error is its reading's mean phase over ``h`` on the plateau (what the
-    shape's fit leaves between the harmonic and the fundamental).
+    I, the Cramer-Rao bound of a sinusoid's phase, from memory); its power
+    is that of its reading's mean on the plateau, what stays locked to the
+    phase: a line beside the harmonic that wanders against it, and the
+    floor within the smoothing's band, hold none of the phase (a 0.8 Hz
+    heart at 20 Hz: a 6th harmonic fitted at 0.008 of the fundamental read
+    3.8 times the floor's share from such a line, took 0.64 of the track's
+    weight, and its errors times 2 and 3 on the strong harmonics left 0.091
+    of the LFP away from the stimulation's harmonics; 0.025 with the mean).
+    Its mean error is that mean's phase over ``h`` (what the shape's fit
+    leaves between the harmonic and the fundamental).
 
     Returns
     -------
@@ -664,8 +671,9 @@ def phase_information(rows, model: "PulseModel", phase: np.ndarray,
     offset = np.zeros_like(info)
     for h, r, density, plateau in _harmonic_readings(rows, model, phase, smooth_hz, densities=True):
         if density > 0 and plateau.any():
-            info[h - 1] = h ** 2 * float(np.mean(np.abs(r[plateau]) ** 2)) / density
-            offset[h - 1] = 0.0 if h == 1 else float(np.angle(np.mean(r[plateau]))) / h
+            mean = np.mean(r[plateau])
+            info[h - 1] = h ** 2 * abs(mean) ** 2 / density
+            offset[h - 1] = 0.0 if h == 1 else float(np.angle(mean)) / h
     return info, offset
 
 

@@ -12,7 +12,7 @@ from artifactclean.modulation import to_middles
 from artifactclean.estimators import TemplateSubtraction
 from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _pooled_variance, _smooth_fundamental, fit_pulse,
                                  fundamental, fundamental_of_rows, harmonic_phase, heart_rate, join_tracks,
-                                 pool_weights)
+                                 phase_information, pool_weights)
 from artifactclean.scenarios import SCENARIOS, locked_units
 from artifactclean.synthetic import NeuralSpec, simulate_recording
 
@@ -499,6 +499,24 @@ def test_the_pulses_sidebands_folded_onto_1_hz_are_taken_off_at_5_hz():
     at4, at3 = np.abs(fr - 4.0) <= 0.25, np.abs(fr - 3.0) <= 0.25
     images = np.sqrt(pr[:, at4].sum(axis=1) / pa[:, at3].sum(axis=1))
     assert images.max() < 0.05, images
+
+
+def test_a_line_beside_a_harmonic_holds_none_of_the_heartbeats_phase():
+    # a harmonic's information is h^2 times its power over its floor's density (Kay 1993, Fundamentals of
+    # Statistical Signal Processing I, the Cramer-Rao bound of a sinusoid's phase, from memory): only power
+    # locked to h times the phase counts. A line 0.05 Hz off the 6th harmonic passed the smoothing and read
+    # as a third of a locked harmonic's information; it holds none of the phase
+    t = np.arange(int(40 * RATE)) / RATE
+    rng = np.random.default_rng(2)
+    phi = 2 * np.pi * 1.0 * t + 0.4
+    model = PulseModel(1.0, np.array([[0.0, 0.0, 0.0, 0.0, 0.01]], dtype=complex), 0)
+    info = {}
+    for name, line in (("locked", np.cos(6 * phi + 0.3)), ("beside", np.cos(2 * np.pi * 6.05 * t))):
+        dev = 0.02 * np.cos(phi) + 0.004 * line + 0.0005 * rng.standard_normal(t.size)
+        info[name] = phase_information([(None, RATE, dev)], model, phi)[0]
+    assert info["beside"][5] < 0.01 * info["locked"][5], (info["beside"][5], info["locked"][5])
+    # the fundamental's own is the same either way
+    assert info["beside"][0] == pytest.approx(info["locked"][0], rel=0.1)
 
 
 @pytest.mark.parametrize("heart_hz, depth, breath_hz", [(2.0, 0.04, 0.3), (1.2, 0.06, 0.25)])
