@@ -3,7 +3,8 @@
 For each stimulation frequency (5, 10, 20, 40 Hz by default; any other
 takes the same artifact at that frequency), with and without a DAC
 staircase (1 kHz unless ``--dac-rate``), and for a pulsatile and a sinusoidal
-heartbeat: a 4 mV artifact with harmonics, 2% heartbeat and 1% respiration
+heartbeat (2 Hz unless ``--heart-hz``; a person at rest has about 1-1.2 Hz, a
+macaque 2-3 Hz): a 4 mV artifact with harmonics, 2% heartbeat and 1% respiration
 modulation, 40 ppm drift, 1 s ramps, 4 channels of different gains and
 signs and a unit locked to the stimulation (von Mises kappa = 1). Prints
 the worst channel's spike-band residual (x noise), residual within +-3 Hz
@@ -12,7 +13,7 @@ ratio, worst/best sixth, delta PPC and the locked unit's PLV and phase
 errors. Figures, not seconds: nothing here is timed.
 
     python benchmarks/acceptance.py [--method template] [--seconds 20] [--seeds 1 3] [--freqs 5 10 20 40]
-                                    [--dac-rate 1000]
+                                    [--dac-rate 1000] [--heart-hz 2]
 """
 
 from __future__ import annotations
@@ -34,12 +35,16 @@ def main(argv=None) -> list[dict]:
     ap.add_argument("--seeds", type=int, nargs="+", default=[1])
     ap.add_argument("--freqs", type=float, nargs="+", default=[5, 10, 20, 40])
     ap.add_argument("--dac-rate", type=float, default=1000.0, help="updates per second of the DAC rows (Hz)")
+    ap.add_argument("--heart-hz", type=float, default=SCENARIOS["modulated_20hz"][0].heart_rate_hz,
+                    help="heart rate of the traces (Hz)")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore")
     if not args.dac_rate > 0:
         ap.error(f"--dac-rate must be positive, got {args.dac_rate:g}")
-    print(f"{args.method!r}, {args.seconds:g} s traces, seeds {args.seeds}, DAC rows at {args.dac_rate:g} Hz; "
-          "worst channel")
+    if not args.heart_hz > 0:
+        ap.error(f"--heart-hz must be positive, got {args.heart_hz:g}")
+    print(f"{args.method!r}, {args.seconds:g} s traces, seeds {args.seeds}, DAC rows at {args.dac_rate:g} Hz, "
+          f"heart at {args.heart_hz:g} Hz; worst channel")
     print(f"{'heartbeat':<10} {'Hz':>3} {'DAC':>4} {'seed':>4} {'spike-band':>10} {'+-3 Hz':>7} {'away':>6} "
           f"{'recall':>7} {'sixth':>6} {'dPPC':>9} {'PLV err':>8} {'phase':>6}")
     rows = []
@@ -47,7 +52,7 @@ def main(argv=None) -> list[dict]:
         for f in args.freqs:
             for dac in ("", "_dac"):
                 # the built-in modulated scenarios, at any frequency (5, 10, 20 and 40 Hz are theirs)
-                art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=f,
+                art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=f, heart_rate_hz=args.heart_hz,
                                           dac_rate_hz=args.dac_rate if dac else None)
                 if heart == "sine":
                     art = dataclasses.replace(art, heart_harmonics=())
