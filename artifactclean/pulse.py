@@ -823,15 +823,16 @@ def _pooled_variance(resid: np.ndarray, a: np.ndarray, rate: float, hz: np.ndarr
     return out
 
 
-def heart_rate(dev: np.ndarray, rate: float) -> float | None:
+def heart_rate(dev: np.ndarray, rate: float, band: tuple[float, float] = HEART_HZ) -> float | None:
     """The heart rate (Hz) whose line stands out in gain deviations ``dev``, or None.
 
     ``dev`` (n_channels, n_samples) are gains less their means, ``rate``
     samples a second. Each channel's Welch spectrum (4 s Hann segments) is
     divided by its running median over 2 Hz (the floor) and the ratios are
-    averaged over channels. Lines in :data:`HEART_HZ` that stand
-    :data:`_HEART_LINE` times their floor are candidates, and half of one
-    where its half and one and a half stand :data:`_HALF_LINE` times theirs
+    averaged over channels. Lines in ``band`` (Hz; people and monkeys by
+    default, :data:`HEART_HZ`) that stand :data:`_HEART_LINE` times their
+    floor are candidates, and half of one where its half and one and a half
+    stand :data:`_HALF_LINE` times theirs
     (a slow heart whose 2nd harmonic stands higher than its fundamental);
     the candidate whose first three harmonics stand out most wins (a
     harmonic sum, after Noll 1969, J. Acoust. Soc. Am., from memory). The
@@ -846,26 +847,26 @@ def heart_rate(dev: np.ndarray, rate: float) -> float | None:
     freqs, p = signal.welch(dev, fs=rate, nperseg=nper, detrend="linear", axis=-1)
     floor = ndimage.median_filter(p, size=(1, max(3, int(round(2.0 / freqs[1])) | 1)), mode="nearest")
     score = np.mean(p / np.maximum(floor, 1e-300), axis=0)
-    band = (freqs >= HEART_HZ[0]) & (freqs <= HEART_HZ[1])
-    if not band.any():
+    in_band = (freqs >= band[0]) & (freqs <= band[1])
+    if not in_band.any():
         return None
     # the fundamental, not a harmonic: of the lines in the band, the one whose first harmonics stand out most
     # too (a harmonic sum, after Noll 1969, J. Acoust. Soc. Am., from memory); a slow heart's fundamental
     # shares its floor's window with respiration and its own harmonic, and may stand less high than that
     peak = ndimage.maximum_filter1d(score, 3)
-    lines = np.flatnonzero(band & (peak >= _HEART_LINE) & (score == peak))
+    lines = np.flatnonzero(in_band & (peak >= _HEART_LINE) & (score == peak))
     if not lines.size:
         return None
     # a candidate's multiples are read over a bin on either side, but not from below the band: respiration's
     # line (0.2-0.5 Hz) beside half a 1.2 Hz heart made it pass for one (10 Hz stimulation, seeds 1 and 3: the
     # pulse modelled at 0.6 Hz, LFP error away from the harmonics 0.24-0.26 instead of 0.04)
-    near_band = ndimage.maximum_filter1d(np.where(freqs >= HEART_HZ[0] - freqs[1], score, 0.0), 3)
+    near_band = ndimage.maximum_filter1d(np.where(freqs >= band[0] - freqs[1], score, 0.0), 3)
     at = lambda hz: near_band[min(int(round(hz / freqs[1])), near_band.size - 1)]  # noqa: E731
     # a slow heart's fundamental may stand under the threshold while its 2nd harmonic passes (the floor
     # rises towards the stimulation's carrier): half a passing line competes too where the half and one and
     # a half of it stand out (a false half still needs harmonics phase-locked to it: :func:`fit_pulse`)
     cands = [(freqs[i], i, 1) for i in lines]
-    cands += [(freqs[i] / 2, i, 2) for i in lines if freqs[i] / 2 >= HEART_HZ[0]
+    cands += [(freqs[i] / 2, i, 2) for i in lines if freqs[i] / 2 >= band[0]
               and min(at(freqs[i] / 2), at(1.5 * freqs[i])) >= _HALF_LINE]
     total = [sum(np.log(max(at(h * hz), 1.0)) for h in (1, 2, 3)) for hz, _, _ in cands]
     _, i, div = cands[int(np.argmax(total))]
@@ -880,7 +881,7 @@ def heart_rate(dev: np.ndarray, rate: float) -> float | None:
 
 def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None,
               shift: np.ndarray | None = None, per_cycle: int = 1, cycle: np.ndarray | None = None,
-              first: int = 0) -> PulseModel | None:
+              first: int = 0, band: tuple[float, float] = HEART_HZ) -> PulseModel | None:
     """Find a heartbeat in ``gain`` and fit its harmonics' ratios to its fundamental.
 
     Parameters
@@ -918,7 +919,7 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     Returns
     -------
     PulseModel or None
-        None without a heartbeat line within :data:`HEART_HZ`, or without any
+        None without a heartbeat line within ``band``, or without any
         harmonic that stands out of the floor.
     """
     gain = np.atleast_2d(np.asarray(gain, dtype=np.float64))
@@ -927,7 +928,7 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     if nper < 16 or n < 8 * rate:
         return None  # under about 8 s: too few heartbeats to fit a shape
     dev = gain - gain.mean(axis=1, keepdims=True)
-    heart = heart_rate(dev, rate)
+    heart = heart_rate(dev, rate, band)
     if heart is None:
         return None
     n_harm = int(min(_MAX_HARMONICS, np.floor(min(max_hz, 0.45 * rate) / heart) - 1))

@@ -10,21 +10,34 @@ signs and a unit locked to the stimulation (von Mises kappa = 1). Prints
 the worst channel's spike-band residual (x noise), residual within +-3 Hz
 of the harmonics (x neural), LFP error away from those bands, recall
 ratio, worst/best sixth, delta PPC and the locked unit's PLV and phase
-errors. Figures, not seconds: nothing here is timed.
+errors. ``--param NAME=VALUE`` (repeatable; VALUE a Python literal) passes
+an estimator parameter to ``clean``. Figures, not seconds: nothing here is
+timed.
 
     python benchmarks/acceptance.py [--method template] [--seconds 20] [--seeds 1 3] [--freqs 5 10 20 40]
-                                    [--dac-rate 1000] [--heart-hz 2]
+                                    [--dac-rate 1000] [--heart-hz 2] [--param tracking_hz=20 ...]
 """
 
 from __future__ import annotations
 
 import argparse
+import ast
 import dataclasses
 import warnings
 
 
+def _param(text: str) -> tuple[str, object]:
+    name, sep, value = text.partition("=")
+    if not sep or not name.strip():
+        raise argparse.ArgumentTypeError(f"expected NAME=VALUE, got {text!r}")
+    try:
+        return name.strip(), ast.literal_eval(value.strip())
+    except (ValueError, SyntaxError):
+        return name.strip(), value.strip()  # a bare word: a string (method names, "auto", "off")
+
+
 def main(argv=None) -> list[dict]:
-    from artifactclean import DEFAULT_METHOD, clean
+    from artifactclean import DEFAULT_METHOD, clean, make_estimator
     from artifactclean.evaluation import score_cleaning
     from artifactclean.scenarios import SCENARIOS, locked_units
     from artifactclean.synthetic import NeuralSpec, simulate_recording
@@ -37,14 +50,21 @@ def main(argv=None) -> list[dict]:
     ap.add_argument("--dac-rate", type=float, default=1000.0, help="updates per second of the DAC rows (Hz)")
     ap.add_argument("--heart-hz", type=float, default=SCENARIOS["modulated_20hz"][0].heart_rate_hz,
                     help="heart rate of the traces (Hz)")
+    ap.add_argument("--param", type=_param, action="append", default=[], metavar="NAME=VALUE",
+                    help="an estimator parameter for clean(), e.g. tracking_hz=20 or 'heart_band_hz=(4, 12)'")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore")
     if not args.dac_rate > 0:
         ap.error(f"--dac-rate must be positive, got {args.dac_rate:g}")
     if not args.heart_hz > 0:
         ap.error(f"--heart-hz must be positive, got {args.heart_hz:g}")
+    params = dict(args.param)
+    try:
+        make_estimator(args.method, **params)
+    except (ValueError, TypeError) as exc:
+        ap.error(str(exc))
     print(f"{args.method!r}, {args.seconds:g} s traces, seeds {args.seeds}, DAC rows at {args.dac_rate:g} Hz, "
-          f"heart at {args.heart_hz:g} Hz; worst channel")
+          f"heart at {args.heart_hz:g} Hz{''.join(f', {k}={v!r}' for k, v in params.items())}; worst channel")
     print(f"{'heartbeat':<10} {'Hz':>3} {'DAC':>4} {'seed':>4} {'spike-band':>10} {'+-3 Hz':>7} {'away':>6} "
           f"{'recall':>7} {'sixth':>6} {'dPPC':>9} {'PLV err':>8} {'phase':>6}")
     rows = []
@@ -59,7 +79,7 @@ def main(argv=None) -> list[dict]:
                 for seed in args.seeds:
                     rec = simulate_recording(args.seconds, artifact=art, neural=NeuralSpec(units=locked_units()),
                                              seed=seed)
-                    s = score_cleaning(rec, clean(rec.data, rec.fs, method=args.method))
+                    s = score_cleaning(rec, clean(rec.data, rec.fs, method=args.method, **params))
                     lu = s["locked_units"][0] if s["locked_units"] else {}
                     row = dict(heart=heart, freq_hz=f, dac=bool(dac), seed=seed,
                                spikeband=max(s["spikeband_residual"]), band=max(s["lfp_band_ratio"]),

@@ -22,6 +22,9 @@ def small():
         (dict(stim_freq=-3.0), ValueError, "positive"),
         (dict(n_cycles=-2), ValueError, "n_cycles"),
         (dict(window=3), ValueError, "takes no parameter"),
+        (dict(heart_band_hz=(3.5, 0.6)), ValueError, "heart_band_hz .* low below high"),
+        (dict(heart_band_hz=5.0), ValueError, "heart_band_hz must be two frequencies"),
+        (dict(method="pca", heart_band_hz=(0.0, 3.0)), ValueError, "heart_band_hz"),
     ],
 )
 def test_bad_arguments_name_the_problem(small, kwargs, exc, match):

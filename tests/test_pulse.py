@@ -607,6 +607,23 @@ def test_a_resting_heart_is_found_at_5_hz(heart_hz, seed):
     assert max(scores["lfp_error_away"]) < 0.12, scores["lfp_error_away"]
 
 
+def test_a_rodents_heart_is_modelled_when_its_band_is_given():
+    # a rat's heart (5.5 Hz) at 40 Hz: outside the default band (people and monkeys) nothing is modelled,
+    # its harmonics at 11 and 16.5 Hz are beyond the default tracking_hz, and 0.47 of the LFP away from
+    # the harmonics is left; looked for in 4-12 Hz and followed to 20 Hz, 0.04-0.06
+    art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=40.0, heart_rate_hz=5.5)
+    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        est = TemplateSubtraction(heart_band_hz=(4.0, 12.0), tracking_hz=20.0)
+        away = max(score_cleaning(rec, est.fit_transform(rec.data, fs=rec.fs))["lfp_error_away"])
+        default = TemplateSubtraction().fit(rec.data, fs=rec.fs)
+    block = [b for b in est.report_["blocks"] if b["kind"] == "active"][0]
+    assert block["heart_rate_hz"] == pytest.approx(5.5, abs=0.1)
+    assert [b for b in default.report_["blocks"] if b["kind"] == "active"][0]["heart_rate_hz"] is None
+    assert away < 0.1, away
+
+
 def test_the_heart_rate_is_read_where_its_line_peaks():
     # a strong 1.2 Hz line beside respiration over a low floor, 4 s Hann segments: the floor's running
     # median falls steeply above the line, so the ratio to it peaked in the line's leakage a bin up, and the

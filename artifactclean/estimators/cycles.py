@@ -24,7 +24,7 @@ from .._numeric import fractional_part
 from ..clipping import find_clipped
 from ..parallel import channel_groups
 from ..stimulation import ramp_level
-from ..pulse import PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, relative_deviation
+from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, relative_deviation
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, segment_phase, \
     segments_per_cycle, sideband_support
@@ -564,7 +564,8 @@ class CycleEstimator(ArtifactEstimator):
         cycle = np.concatenate([p[9] for p in parts])
         pulse = fit_pulse(raw, rate, max_hz=self.tracking_hz, ref=ref, pool=np.flatnonzero(intact),
                           shift=moved, per_cycle=per_cycle, cycle=cycle,
-                          first=first) if getattr(self, "model_pulse", False) else None
+                          first=first, band=tuple(getattr(self, "heart_band_hz", HEART_HZ))) \
+            if getattr(self, "model_pulse", False) else None
         if pulse is not None:
             raw = raw - pulse.parts(raw, rate, segments=True)[0]
         response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
@@ -615,6 +616,13 @@ class CycleEstimator(ArtifactEstimator):
             raise ValueError(f"margin_cycles must be >= 0, got {self.margin_cycles!r}")
         if not getattr(self, "outlier_z", 1.0) > 0:
             raise ValueError(f"outlier_z must be positive, got {self.outlier_z!r}")
+        band = getattr(self, "heart_band_hz", HEART_HZ)
+        try:
+            lo, hi = (float(v) for v in band)
+        except (TypeError, ValueError):
+            raise ValueError(f"heart_band_hz must be two frequencies (Hz), low and high, got {band!r}") from None
+        if not (0 < lo < hi < np.inf):
+            raise ValueError(f"heart_band_hz must be two positive frequencies, low below high, got {band!r}")
 
     def _block_plan(self, xb, blk, fs, offset):
         """The block's :class:`BlockPlan` (from :meth:`prepare`, or made from ``xb`` now), warning on an unlocked DAC."""

@@ -44,6 +44,7 @@ import numpy as np
 from scipy import linalg
 
 from ..modulation import filter_sequences
+from ..pulse import HEART_HZ
 from .cycles import RowModelEstimator, fill_rows, noise_of_sequences
 
 __all__ = ["CyclePCA", "principal_shapes"]
@@ -89,7 +90,7 @@ class CyclePCA(RowModelEstimator):
         A shape (or a harmonic of the mean cycle) is kept when its power
         exceeds this many times the noise power its estimate carries (4:
         common practice for a detection on a chi-square statistic).
-    tracking_hz, robust, dac, margin_cycles, outlier_z, model_pulse
+    tracking_hz, robust, dac, margin_cycles, outlier_z, model_pulse, heart_band_hz
         As for :class:`~artifactclean.estimators.HarmonicRegression`.
 
     Attributes
@@ -106,7 +107,8 @@ class CyclePCA(RowModelEstimator):
 
     def __init__(self, n_components: int = 10, keep_factor: float = 4.0, tracking_hz: float = 10.0,
                  robust: bool = True, dac: str = "auto", margin_cycles: float = 2.0, outlier_z: float = 5.0,
-                 model_pulse: bool = True):
+                 model_pulse: bool = True,
+                 heart_band_hz: tuple[float, float] = HEART_HZ):
         self.n_components = n_components
         self.keep_factor = keep_factor
         self.tracking_hz = tracking_hz
@@ -115,6 +117,7 @@ class CyclePCA(RowModelEstimator):
         self.margin_cycles = margin_cycles
         self.outlier_z = outlier_z
         self.model_pulse = model_pulse
+        self.heart_band_hz = heart_band_hz
 
     def _validate_params(self) -> None:
         super()._validate_params()

@@ -50,6 +50,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..pulse import HEART_HZ
 from .cycles import RowModelEstimator, fill_rows, noise_of_sequences
 from ..modulation import filter_sequences, plateau_level
 
@@ -66,6 +67,9 @@ class HarmonicRegression(RowModelEstimator):
         grid's Nyquist harmonic).
     tracking_hz : float
         Highest modulation frequency followed (see
+        :class:`~artifactclean.estimators.TemplateSubtraction`).
+    heart_band_hz : (float, float)
+        Heart rates (Hz) the pulse model looks for (see
         :class:`~artifactclean.estimators.TemplateSubtraction`).
     robust : bool
         Refit with spike-band outliers (spikes) left out.
@@ -98,7 +102,8 @@ class HarmonicRegression(RowModelEstimator):
 
     def __init__(self, n_harmonics: int | None = None, tracking_hz: float = 10.0, robust: bool = True,
                  dac: str = "auto", margin_cycles: float = 2.0, outlier_z: float = 5.0,
-                 keep_factor: float = 4.0, model_pulse: bool = True):
+                 keep_factor: float = 4.0, model_pulse: bool = True,
+                 heart_band_hz: tuple[float, float] = HEART_HZ):
         self.n_harmonics = n_harmonics
         self.tracking_hz = tracking_hz
         self.robust = robust
@@ -107,6 +112,7 @@ class HarmonicRegression(RowModelEstimator):
         self.outlier_z = outlier_z
         self.keep_factor = keep_factor
         self.model_pulse = model_pulse
+        self.heart_band_hz = heart_band_hz
 
     def _validate_params(self) -> None:
         super()._validate_params()

@@ -56,6 +56,7 @@ from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_c
     smooth_gain, to_middles
 from ._kernels import (PhaseGrid, group_position, grouped_eval, lerp_positions, lerp_rows, phase_eval, segment_stats,
                        tick_eval, tick_sums)
+from ..pulse import HEART_HZ
 from ..staircase import DacClock
 from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, stretch_bounds, trapezoid
 
@@ -366,6 +367,13 @@ class TemplateSubtraction(CycleEstimator):
         channel group of a file needs neither that channel nor more context).
         Harmonics that do not stand out of the neural floor are left to the
         filter.
+    heart_band_hz : (float, float)
+        Heart rates (Hz) the pulse model looks for: people and monkeys by
+        default (:data:`artifactclean.pulse.HEART_HZ`, 0.6-3.5 Hz). A
+        rodent's heart (rat about 5-7 Hz, mouse 8-11 Hz awake; from memory)
+        needs ``(4, 12)`` and a ``tracking_hz`` of at least twice the rate,
+        so that its harmonics are modelled (README, "Cleaning your own
+        recordings").
 
     Attributes
     ----------
@@ -396,6 +404,7 @@ class TemplateSubtraction(CycleEstimator):
         compiled: bool = True,
         track_phase: bool = True,
         model_pulse: bool = True,
+        heart_band_hz: tuple[float, float] = HEART_HZ,
     ):
         self.n_cycles = n_cycles
         self.robust = robust
@@ -408,6 +417,7 @@ class TemplateSubtraction(CycleEstimator):
         self.compiled = compiled
         self.track_phase = track_phase
         self.model_pulse = model_pulse
+        self.heart_band_hz = heart_band_hz
 
     @property
     def context_cycles(self) -> float:  # type: ignore[override]
