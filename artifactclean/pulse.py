@@ -45,8 +45,8 @@ from scipy import linalg, ndimage, signal
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, seen_by_segments, segment_transfer
 
-__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase", "heart_rate",
-           "join_tracks", "phase_information", "pool_weights", "relative_deviation", "track_smoothing"]
+__all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase",
+           "heart_rate", "join_tracks", "phase_information", "pool_weights", "relative_deviation", "track_smoothing"]
 
 #: heart rates (Hz) searched for in the gain: about 35-210 beats a minute, people and monkeys at rest and
 #: under anaesthesia (common practice)
@@ -832,10 +832,10 @@ def heart_rate(dev: np.ndarray, rate: float, band: tuple[float, float] = HEART_H
     averaged over channels. Lines in ``band`` (Hz; people and monkeys by
     default, :data:`HEART_HZ`) that stand :data:`_HEART_LINE` times their
     floor are candidates, and half of one where its half and one and a half
-    stand :data:`_HALF_LINE` times theirs
-    (a slow heart whose 2nd harmonic stands higher than its fundamental);
-    the candidate whose first three harmonics stand out most wins (a
-    harmonic sum, after Noll 1969, J. Acoust. Soc. Am., from memory). The
+    stand :data:`_HALF_LINE` times theirs (a slow heart whose 2nd harmonic
+    stands higher than its fundamental); the candidate whose first three
+    harmonics stand out most wins (a harmonic sum, after Noll 1969, J.
+    Acoust. Soc. Am., from memory). The
     rate is the power-weighted mean of the line's peak bin and its
     neighbours (of the line's, halved, for a half). None where a 4 s
     segment holds fewer than 16 samples or no line stands out.

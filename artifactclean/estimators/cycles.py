@@ -24,7 +24,8 @@ from .._numeric import fractional_part
 from ..clipping import find_clipped
 from ..parallel import channel_groups
 from ..stimulation import ramp_level
-from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, relative_deviation
+from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, \
+    relative_deviation
 from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, segment_phase, \
     segments_per_cycle, sideband_support

@@ -68,9 +68,6 @@ class HarmonicRegression(RowModelEstimator):
     tracking_hz : float
         Highest modulation frequency followed (see
         :class:`~artifactclean.estimators.TemplateSubtraction`).
-    heart_band_hz : (float, float)
-        Heart rates (Hz) the pulse model looks for (see
-        :class:`~artifactclean.estimators.TemplateSubtraction`).
     robust : bool
         Refit with spike-band outliers (spikes) left out.
     dac : {"auto", "off"}
@@ -86,6 +83,9 @@ class HarmonicRegression(RowModelEstimator):
     model_pulse : bool
         Model a pulsatile heartbeat's harmonics in the rows' envelope from
         its fundamental's phase instead of filtering them (see
+        :class:`~artifactclean.estimators.TemplateSubtraction`).
+    heart_band_hz : (float, float)
+        Heart rates (Hz) the pulse model looks for (see
         :class:`~artifactclean.estimators.TemplateSubtraction`).
 
     Attributes
