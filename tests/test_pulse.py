@@ -472,6 +472,23 @@ def test_the_gain_response_stops_where_the_pulse_model_puts_its_harmonics_back()
     assert np.all(slow.response[0, (freqs > 2.75) & (freqs <= 3.5)] == 0)  # the 5th harmonic (3 Hz), above it
 
 
+def test_a_modelled_hearts_own_line_passes_whole_above_what_the_gain_always_follows():
+    from artifactclean.estimators.cycles import pass_heart
+    from artifactclean.modulation import GainResponse
+
+    freqs = np.linspace(0, 15, 61)
+    response = GainResponse(freqs, np.full((2, freqs.size), 0.3), 30.0)
+    pass_heart(response, PulseModel(3.0, np.array([[0.8], [0.4]], dtype=complex), 0), above_hz=2.75)
+    near = (np.abs(freqs - 3.0) <= 0.25) & (freqs > 2.75)
+    assert np.all(response.response[:, near] == 1.0)
+    assert np.all(response.response[:, ~near] == 0.3)
+    # end to end: a 3 Hz heart at 5 Hz stimulation, its line passed at 0.08-0.64 by spectral subtraction, left
+    # 0.44 of the LFP away from the harmonics (seed 1); passed whole, 0.27
+    scores, block = _generator_heart(5.0, 3.0, 1)
+    assert block["heart_rate_hz"] == pytest.approx(3.0, abs=0.1)
+    assert max(scores["lfp_error_away"]) < 0.35, scores["lfp_error_away"]
+
+
 def test_the_pulses_sidebands_folded_onto_1_hz_are_taken_off_at_5_hz():
     # 5 Hz stimulation, a 2 Hz pulse: the lower sidebands of its 2nd and 3rd harmonics fall at 1 Hz, where
     # the LFP is strongest. On the artifact alone the line there kept 0.11-0.40 of its size (seeds 1-3)
