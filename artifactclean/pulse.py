@@ -835,10 +835,10 @@ def heart_rate(dev: np.ndarray, rate: float, band: tuple[float, float] = HEART_H
     stand :data:`_HALF_LINE` times theirs (a slow heart whose 2nd harmonic
     stands higher than its fundamental); the candidate whose first three
     harmonics stand out most wins (a harmonic sum, after Noll 1969, J.
-    Acoust. Soc. Am., from memory). The
-    rate is the power-weighted mean of the line's peak bin and its
-    neighbours (of the line's, halved, for a half). None where a 4 s
-    segment holds fewer than 16 samples or no line stands out.
+    Acoust. Soc. Am., from memory). The rate is the power-weighted mean of
+    the line's peak bin and its neighbours (of the line's, halved, for a
+    half). None where a 4 s segment holds fewer than 16 samples or no line
+    stands out.
     """
     dev = np.atleast_2d(np.asarray(dev, dtype=np.float64))
     nper = min(dev.shape[1], int(4 * rate)) // 2 * 2
