@@ -10,11 +10,12 @@ from scipy import signal
 from artifactclean.evaluation import score_cleaning
 from artifactclean.modulation import to_middles
 from artifactclean.estimators import TemplateSubtraction
-from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _pooled_variance, _smooth_fundamental, fit_pulse,
+from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _pooled_variance, _slow_basis, _smooth_fundamental,
+                                 fit_pulse,
                                  fundamental, fundamental_of_rows, harmonic_phase, heart_rate, join_tracks,
                                  phase_information, pool_weights)
 from artifactclean.scenarios import SCENARIOS, locked_units
-from artifactclean.synthetic import NeuralSpec, simulate_recording
+from artifactclean.synthetic import BlockSpec, NeuralSpec, simulate_recording
 
 RATE = 30.0
 
@@ -651,6 +652,34 @@ def test_the_heart_rate_is_read_where_its_line_peaks():
         dev = (0.01 * np.cos(2 * np.pi * 1.2 * t + rng.uniform(0, 2 * np.pi))
                + 0.005 * np.sin(2 * np.pi * 0.25 * t))[None] + 1e-4 * rng.standard_normal((3, t.size))
         assert heart_rate(dev - dev.mean(axis=1, keepdims=True), 20.0) == pytest.approx(1.2, abs=0.01)
+
+
+def test_the_slow_basis_is_the_dct_ii():
+    # reference: scipy.fft.dct (type II, unnormalised) of the identity holds 2 cos(pi k (2 m + 1) / (2 n))
+    # in row k; its rows up to below_hz (k / (2 n) cycles a sample) are the basis
+    from scipy import fft
+
+    n, rate = 240, 30.0
+    basis = _slow_basis(n, rate, 0.9)
+    assert basis.shape == (15, n)  # k / (2 n / rate) <= 0.9 Hz: k <= 14
+    np.testing.assert_allclose(basis, fft.dct(np.eye(n), type=2, axis=0)[:15] / 2, atol=1e-12)
+
+
+def test_respiration_does_not_lend_a_sinusoidal_heart_harmonics():
+    # a sinusoidal 1.58 Hz heart at 10 Hz with respiration at 0.32 Hz (3 gain segments a cycle): over the
+    # 16 s fitted, respiration (thousands of times the floor) was not orthogonal to the harmonics'
+    # regressors, and the fit gave the heart harmonics 2-6, the 6th (9.55 Hz) at 0.39 of its fundamental;
+    # its sideband at 19.55 Hz left 18 times the neural power within 3 Hz of 20 Hz (0.8 with respiration
+    # fitted beside them)
+    art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=10.0, amplitude_uv=6000.0,
+                              channel_gains=(1.26, -1.46, -0.54, -0.71), harmonics=((0.025, 4.1),),
+                              heart_rate_hz=1.58, heart_depth=0.018, heart_harmonics=(), resp_rate_hz=0.32,
+                              resp_depth=0.014, drift_ppm=-23.0)
+    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units(), oscillation_hz=9.9),
+                             blocks=[BlockSpec(1.0, 18.0, ramp_s=1.8)], seed=111)
+    scores, block = _cleaned_scores(rec)
+    assert max(scores["lfp_band_ratio"]) < 2.0, scores["lfp_band_ratio"]
+    assert max(scores["lfp_error_away"]) < 0.15, scores["lfp_error_away"]
 
 
 @pytest.mark.parametrize("seed", [4, 5])
