@@ -848,8 +848,9 @@ def heart_rate(dev: np.ndarray, rate: float, band: tuple[float, float] = HEART_H
     averaged over channels. Lines in ``band`` (Hz; people and monkeys by
     default, :data:`HEART_HZ`) that stand :data:`_HEART_LINE` times their
     floor are candidates, and half of one where its half and one and a half
-    stand :data:`_HALF_LINE` times theirs (a slow heart whose 2nd harmonic
-    stands higher than its fundamental); the candidate whose first three
+    are lines of their own (:func:`_line_at`) standing :data:`_HALF_LINE`
+    times their floors (a slow heart whose 2nd harmonic stands higher than
+    its fundamental); the candidate whose first three
     harmonics stand out most wins (a harmonic sum, after Noll 1969, J.
     Acoust. Soc. Am., from memory). The rate is the power-weighted mean of
     the line's peak bin and its neighbours (of the line's, halved, for a
@@ -883,7 +884,8 @@ def heart_rate(dev: np.ndarray, rate: float, band: tuple[float, float] = HEART_H
     # a half of it stand out (a false half still needs harmonics phase-locked to it: :func:`fit_pulse`)
     cands = [(freqs[i], i, 1) for i in lines]
     cands += [(freqs[i] / 2, i, 2) for i in lines if freqs[i] / 2 >= band[0]
-              and min(at(freqs[i] / 2), at(1.5 * freqs[i])) >= _HALF_LINE]
+              and min(_line_at(score, peak, freqs, freqs[i] / 2), _line_at(score, peak, freqs, 1.5 * freqs[i]))
+              >= _HALF_LINE]
     total = [sum(np.log(max(at(h * hz), 1.0)) for h in (1, 2, 3)) for hz, _, _ in cands]
     _, i, div = cands[int(np.argmax(total))]
     # the line's bin is where its power peaks: beside a strong line the floor falls steeply, and its score may
@@ -893,6 +895,18 @@ def heart_rate(dev: np.ndarray, rate: float, band: tuple[float, float] = HEART_H
     # between bins: the power-weighted mean of the line's bin and its neighbours (for a half, of the line's)
     near = slice(max(i - 1, 0), i + 2)
     return float(np.sum(freqs[near] * p[:, near].sum(axis=0)) / np.sum(p[:, near])) / div
+
+
+def _line_at(score: np.ndarray, peak: np.ndarray, freqs: np.ndarray, hz: float) -> float:
+    """Score of a line at ``hz``: a local maximum of ``score`` (``peak``, its running maximum over 3 bins)
+    in one of the two bins around ``hz``; 0 where neither is one.
+
+    A half heart must be a line of its own: read over a bin on either side, respiration's main lobe
+    (0.5 Hz wide either way in 4 s Hann segments) lent its score to half a 1.58 Hz heart, and the pulse
+    was modelled at 0.79 Hz with harmonics 5-6 times its fundamental (session 26)."""
+    j = hz / freqs[1]
+    bins = {int(np.floor(j)), int(np.ceil(j))}
+    return max((float(score[k]) for k in bins if 0 <= k < score.size and score[k] == peak[k]), default=0.0)
 
 
 def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None,

@@ -682,6 +682,22 @@ def test_respiration_does_not_lend_a_sinusoidal_heart_harmonics():
     assert max(scores["lfp_error_away"]) < 0.15, scores["lfp_error_away"]
 
 
+def test_respirations_main_lobe_is_not_taken_for_half_a_heart():
+    # respiration at 0.32 Hz, 0.8 of a sinusoidal 1.58 Hz heart in the gain: read over a bin on either side,
+    # respiration's main lobe in 4 s Hann segments lent half the heart rate its score, and the pulse was
+    # modelled at 0.77 Hz with harmonics 5-6 times its fundamental (fitted: 2.3 times the noise)
+    n = int(20 * RATE)
+    for seed in (209, 210, 211):
+        rng = np.random.default_rng(seed)
+        wander = np.interp(np.arange(n), np.linspace(0, n, 8), rng.normal(0, 0.03, 8))
+        phi = 2 * np.pi * np.cumsum(1.58 * (1 + wander)) / RATE + rng.uniform(0, 2 * np.pi)
+        resp = np.sin(2 * np.pi * 0.32 * np.arange(n) / RATE + rng.uniform(0, 2 * np.pi))
+        depth = np.array([0.02, 0.012])[:, None]
+        gain = 1 + depth * (np.cos(phi) + 0.8 * resp)[None] + 0.002 * rng.standard_normal((2, n))
+        rate = heart_rate(gain - gain.mean(axis=1, keepdims=True), RATE)
+        assert rate == pytest.approx(1.58, abs=0.05), (seed, rate)
+
+
 @pytest.mark.parametrize("seed", [4, 5])
 def test_a_line_in_the_gain_without_a_heartbeat_is_not_modelled_as_a_pulse(seed):
     # no heartbeat: the gain's strongest line in the heart band (a neural rhythm beside the fundamental,
