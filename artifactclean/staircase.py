@@ -445,12 +445,16 @@ def find_fast_dac(
     d = np.diff(x)
     w = d * d
     w[lost[:-1] | lost[1:]] = 0.0  # a rail's edges are steps of its own
-    w = np.minimum(w, 25.0 * np.median(w[::7]))  # a spike's edges: a few pairs, not a rhythm
+    level = np.median(w[::7])
+    # clear steps, whatever else the pairs hold: where the grid's edges do not separate them, it misplaces
+    # them (_missed_edges); the noise's differences pass 100 times their median once in ~1e11
+    steps = np.flatnonzero(w >= _STEP_POWER * level)
+    w = np.minimum(w, 25.0 * level)  # a spike's edges: a few pairs, not a rhythm
     if not np.any(w > 0):
         return None
     if ticks is not None:
         return _grid_at_rate(w, cycles, fs, freq, None, max_period=max_period, min_z=min_z,
-                             min_edge_power=min_edge_power, window_s=window_s, ticks=ticks)
+                             min_edge_power=min_edge_power, window_s=window_s, ticks=ticks, steps=steps)
     # the rate from the middle of the stretch (clear of ramps), 2**16 pairs: bins of 0.5 Hz at 30 kHz
     n_fft = min(w.size, 1 << 16)
     mid = w[(w.size - n_fft) // 2:][:n_fft]
@@ -476,7 +480,7 @@ def find_fast_dac(
     if abs(rate - 0.5 * fs) > 0.01 * fs and _edge_power(mid, np.arange(n_fft) * (rate / fs), 1) >= min_edge_power:
         rates = (rate,)
     found = [_grid_at_rate(w, cycles, fs, freq, r, max_period=max_period, min_z=min_z,
-                           min_edge_power=min_edge_power, window_s=window_s) for r in rates]
+                           min_edge_power=min_edge_power, window_s=window_s, steps=steps) for r in rates]
     # a slower DAC the step search missed shows its rate's harmonics in the band, and a grid on them must
     # find an edge at every tick (7.3 Hz from 1 kHz: the line at 4 kHz folded as 9863 ticks every 18
     # cycles, which only nearly repeat, one in four of them with an edge; the ticks repeat every 73
@@ -531,10 +535,11 @@ def _between_bins(spec: np.ndarray, k: int) -> float:
 
 def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rate: float | None, *,
                   max_period: int, min_z: float, min_edge_power: float, window_s: float, max_drift: float = 0.005,
-                  ticks: tuple | None = None) -> DacGrid | None:
+                  ticks: tuple | None = None, steps: np.ndarray | None = None) -> DacGrid | None:
     """The grid of ticks at about ``rate`` per second from the pairs' power ``w`` (see :func:`find_fast_dac`), or None.
 
     With ``ticks`` (``M``, ``q``) the ticks are known, and only their edges are placed and checked.
+    ``steps``: the pairs that hold a clear step (indices), which the grid's edges must separate.
     """
     # folds on the middle 2**17 pairs (4.4 s at 30 kHz; the DACs here score 19-142 there): a fold is an
     # exponential per pair, and a block's search tries up to a dozen
@@ -574,14 +579,49 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     # ticks here, and a sample that close to one, misassigned, leaves a whole step (130 uV) as a spike
     settle = 0.25
     if track:
+        per_tick = fs * q / (m * freq)
         scatter = float(np.std(np.asarray(offs) - np.interp(centres, *track)))
-        settle = float(np.clip(4.0 * scatter * fs * q / (m * freq), 0.003, 0.25))
+        settle = 4.0 * scatter * per_tick
+        # a bias the windows share does not scatter them: where steps fall between samples the grid puts in
+        # one tick, the data show how far off its edges are
+        missed = np.empty(0) if steps is None else _missed_edges(steps, u, m, track, per_tick)
+        if missed.size >= _MISSED_MIN:
+            settle = max(settle, 1.25 * float(np.quantile(missed, 0.99)))
+        settle = float(np.clip(settle, 0.003, 0.25))
     # the staircase is flat within a tick: the pairs the grid puts an edge between must hold more power
     # than the rest. A DAC faster than fs / 2 aliases to a line in the band whose grid does not (20 and
     # 25 kHz sampled at 30 kHz, taken at their alias: 1.1-1.5 times; the DACs found here 2.6-19)
     if _edge_power(w, u, m, (track, c0)) < min_edge_power:
         return None
     return DacGrid(int(m), c0, conc, int(w.size), track, int(q), settle_width=settle)
+
+
+#: steps the grid misplaces before its settle width is set from them (:func:`_missed_edges`): fewer are a
+#: spike's or the noise's (this project's choice)
+_MISSED_MIN = 20
+
+
+def _missed_edges(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick: float) -> np.ndarray:
+    """Distances (samples) to the grid's nearest edge of the steps it puts within one tick.
+
+    ``steps`` are the pairs of samples (index of the first) that hold a clear step, ``u`` the phase of
+    each sample in periods, ``m`` ticks a period, ``track`` the offset line. A step the grid's edges do
+    not separate is one it places late or early; those within a quarter sample of an edge are counted
+    (a spike's pairs are elsewhere).
+    """
+    steps = steps[steps + 1 < u.size]
+    pos = m * u[np.concatenate((steps, steps + 1))] - np.interp(u[np.concatenate((steps, steps + 1))], *track)
+    lo, hi = pos[:steps.size], pos[steps.size:]
+    inside = np.floor(lo) == np.floor(hi)
+    lo, hi = lo[inside], hi[inside]
+    # the grid's edge after the pair's second sample, or before its first
+    dist = np.minimum(np.floor(hi) + 1 - hi, lo - np.floor(lo)) * per_tick
+    return dist[dist < 0.25]
+
+
+#: a pair of samples holds a clear step where its difference's power is this many times the median's
+#: (:func:`find_fast_dac`; chi-square of one degree: the noise alone passes once in ~1e11)
+_STEP_POWER = 100.0
 
 
 def _ticks_of_rate(fold, rate: float, freq: float, max_period: int, min_z: float) -> tuple:
