@@ -221,6 +221,13 @@ def segment_gain(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: floa
     return out + ((cycle,) if return_cycle else ())
 
 
+#: a part of the cycle whose transfer weights sum to more than this in absolute value is taken for flat
+#: (:func:`segment_transfer`): a sine's part at its peak, 5 parts a cycle, sums to about 17; a part held
+#: at a rail by clipping summed to 6e13, and its transfer, times the pulse, put a gain of 1e11 on the
+#: channel (this project's choice)
+_TRANSFER_WEIGHT = 100.0
+
+
 def segment_transfer(cycle: np.ndarray, per_cycle: int, f: float, hz) -> np.ndarray:
     """How the gain of each part of a cycle sees a modulation of the artifact, per part and frequency.
 
@@ -263,9 +270,12 @@ def segment_transfer(cycle: np.ndarray, per_cycle: int, f: float, hz) -> np.ndar
         t = cycle[:, sel]
         dev = t - t.mean(axis=1, keepdims=True)
         den = np.sum(dev * dev, axis=1, keepdims=True)
-        ok = den[:, 0] > 0
+        weights = t * dev / np.maximum(den, 1e-300)
+        # a part the mean cycle holds flat (a rail in every cycle) weighs noise over nothing: its gains are
+        # taken from the neighbours' (segment_gain), and it sees a modulation as a plain mean, 1
+        ok = (den[:, 0] > 0) & (np.abs(weights).sum(axis=1) <= _TRANSFER_WEIGHT)
         tau = (ph[sel] - (k + 0.5) / per_cycle) / f
-        out[ok, k] = (t * dev)[ok] / den[ok] @ np.exp(2j * np.pi * np.outer(tau, hz))
+        out[ok, k] = weights[ok] @ np.exp(2j * np.pi * np.outer(tau, hz))
     return out
 
 

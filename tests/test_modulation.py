@@ -118,6 +118,24 @@ def _cycle(u):
     return np.sin(2 * np.pi * u) + 0.3 * np.sin(4 * np.pi * u + 1.0) + 0.15 * np.sin(6 * np.pi * u + 0.4)
 
 
+def test_a_part_held_at_a_rail_sees_a_modulation_as_a_plain_mean():
+    # a channel clipped at its peaks holds one part of a 5 Hz cycle (5 parts) at the rail in its mean
+    # cycle: that part's weights were rounding error over nothing (summing to 6e13 in absolute value), and
+    # its transfer, times the pulse model, gave the channel a gain of 1e11. The other parts as before; a
+    # sine's part at its peak, legitimately the largest weights, stays as its least-squares fit
+    f, n_bins, per_cycle, hz = 5.0, 600, 5, [2.0, 4.0, 6.0]
+    u = (np.arange(n_bins) + 0.5) / n_bins
+    sine = np.cos(2 * np.pi * (u - 0.1))  # the peak in the middle of part 0
+    rail = 0.8
+    clipped = np.minimum(sine, rail)
+    clipped[u < 0.2] = rail  # the whole of part 0 at the rail
+    h = segment_transfer(np.stack([sine, clipped]), per_cycle, f, hz)
+    assert np.all(np.isfinite(h)) and np.abs(h).max() < 10
+    np.testing.assert_array_equal(h[1, 0], np.ones(3))
+    np.testing.assert_allclose(h[1, 1:], segment_transfer(clipped[None], per_cycle, f, hz)[0, 1:])
+    assert abs(h[0, 0, 0]) > 0.5  # the unclipped peak part is fitted, not replaced
+
+
 @pytest.mark.parametrize("per_cycle, hz", [(5, 4.0), (5, 6.0), (3, 6.0)])
 def test_a_segments_gain_sees_a_modulation_as_its_least_squares_fit(per_cycle, hz):
     # reference: numpy.linalg.lstsq of exp(2 pi i hz tau) t on [t, 1] over each part of the cycle (the

@@ -272,6 +272,26 @@ def test_heavily_clipped_channel_with_a_dac(seed, freq):
     assert np.all(est.lost_.mean(axis=1) <= rec.clipped.mean(axis=1) + 0.01)  # little beyond the rails
 
 
+def test_a_channel_held_at_its_rails_for_whole_parts_of_a_cycle_keeps_a_sane_gain():
+    """5 Hz, the strongest channel (5.8 mV peak) clipped at 3.6 mV on 47% of its samples: its mean cycle
+    holds one of the gain's 5 parts of the cycle flat at the rail. That part's transfer (how it sees a
+    modulation) was rounding error over nothing, and with the pulse model it gave the channel a gain of
+    1e11: outputs of 1e12 uV on every unclipped sample, found by traces drawn at random (session 26)."""
+    from artifactclean.scenarios import locked_units
+
+    art = ArtifactSpec(freq_hz=5.0, amplitude_uv=4000.0, channel_gains=(-0.86, 0.75, -1.44, -0.69),
+                       heart_rate_hz=1.86, drift_ppm=3.0, clip_uv=3600.0)
+    rec = simulate_recording(22.0, artifact=art, neural=NeuralSpec(units=locked_units()),
+                             blocks=[BlockSpec(1.0, 20.0)], seed=1)
+    est = TemplateSubtraction()
+    y = est.fit_transform(rec.data, fs=rec.fs)
+    assert rec.clipped[2].mean() > 0.4
+    assert np.abs(y).max() < 1000.0  # the neural signal is a few hundred uV at most
+    s = score_cleaning(rec, y)  # outside the rails
+    assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
+    assert s["recall_ratio"] >= 0.97
+
+
 @pytest.mark.parametrize("freq", [5.0, 10.0, 20.0, 40.0])
 def test_lfp_away_from_the_harmonics_with_a_sinusoidal_heartbeat(freq):
     """Issue 3's LFP figure (relative error <= 5% away from +-3 Hz of each harmonic below 80 Hz), on a
