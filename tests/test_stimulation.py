@@ -360,6 +360,43 @@ def test_a_sham_beside_a_stronger_block_is_found(recwarn):
     assert not [w for w in recwarn if "besides" in str(w.message)]
 
 
+def test_a_sham_takes_the_stimulators_clock_from_the_longest_block():
+    """A 2 s sham (two ramps) after a 16 s active block at 20 Hz, 23 ppm slow: fitted alone, the sham's
+    frequency was 36 ppm off (its Cramer-Rao bound about 100 ppm), its phase slipped 1.1 samples a
+    second from its centre, and a DAC's ticks read there left a whole staircase in the spike band. One
+    clock gives both blocks one frequency: within 3 SDs of the longest block's estimate, the sham
+    takes their inverse-variance weighted mean."""
+    art = ArtifactSpec(freq_hz=20.0, drift_ppm=-23.0, channel_gains=(-1.0, -0.4, -0.9, 1.33), dac_rate_hz=1000.0)
+    rec = simulate_recording(26.0, artifact=art, blocks=[BlockSpec(1.0, 16.0, ramp_s=1.0),
+                                                         BlockSpec(19.0, 6.0, kind="sham", ramp_s=1.0)], seed=362)
+    model = fit_stimulation(rec.data, rec.fs, stim_freq=20.0)
+    assert [b.kind for b in model.blocks] == ["active", "sham"]
+    assert abs(model.blocks[1].drift_ppm + 23.0) < 3.0, model.blocks[1].drift_ppm
+    ph, tr = model.phase(), rec.stim_phase
+    sham = np.zeros(rec.n_samples, bool)
+    sham[model.blocks[1].start:model.blocks[1].stop] = True
+    ok = sham & ~np.isnan(ph) & ~np.isnan(tr)
+    # the phase across the sham against the truth, less its offset (the DAC holds each value half a tick
+    # late): 0.0042 rad is a sample of a 20 Hz cycle at 30 kHz; 36 ppm slipped 0.009 either way
+    err = np.angle(np.exp(1j * (ph[ok] - tr[ok])))
+    assert np.ptp(err) < 0.003, np.ptp(err)
+
+
+def test_blocks_whose_clocks_disagree_keep_their_own_frequencies():
+    """Two 10 s blocks 20 ppm apart: each knows its frequency as well as the other (a stimulator's clock
+    drifts a few ppm over a session), so neither borrows the other's, and each keeps its own estimate."""
+    fs, n = 30000.0, int(24 * 30000)
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(8)
+    x = 20.0 * rng.standard_normal(n)
+    for (a, b), f in (((1.0, 11.0), 20.0), ((13.0, 23.0), 20.0 * (1 + 20e-6))):
+        ramps = np.clip(np.minimum(t - a, b - t), 0.0, 1.0)  # 1 s ramps, as stimulators deliver blocks
+        x += 4000.0 * ramps * np.sin(2 * np.pi * f * t)
+    model = fit_stimulation(x, fs, stim_freq=20.0)
+    assert len(model.blocks) == 2
+    assert abs(model.blocks[0].drift_ppm) < 1.0 and abs(model.blocks[1].drift_ppm - 20.0) < 1.0
+
+
 def test_an_lfp_oscillation_near_the_stimulation_frequency_is_not_a_block():
     """A 400 uV, 9.9 Hz oscillation for about 2 s in an off period of a 10 Hz session was taken for
     a block and would have been cleaned away; its frequency is 1% off the stimulator's clock, which
