@@ -610,7 +610,8 @@ def _missed_edges(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_ti
     (a spike's pairs are elsewhere).
     """
     steps = steps[steps + 1 < u.size]
-    pos = m * u[np.concatenate((steps, steps + 1))] - np.interp(u[np.concatenate((steps, steps + 1))], *track)
+    at = u[np.concatenate((steps, steps + 1))]
+    pos = m * at - np.interp(at, *track)
     lo, hi = pos[:steps.size], pos[steps.size:]
     inside = np.floor(lo) == np.floor(hi)
     lo, hi = lo[inside], hi[inside]

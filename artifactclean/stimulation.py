@@ -877,8 +877,10 @@ def fit_decimated(
         # ramps carry phase information too: fit over the whole segment
         a, b = int(max(0, np.ceil(sg.start))), int(min(x_ds.size, np.floor(sg.stop) + 1))
         tones.append((a, b, *estimate_tone(x_ds[a:b], fs_ds, freq_hint=f_guess)))
-    keep = _one_clock(pairs, tones, x_ds, fs_ds)
-    clock = _clock_frequencies(pairs, tones, keep, x_ds, fs_ds)
+    # each segment's Cramer-Rao bound, once: only blocks at one frequency are judged against each other
+    spreads = [_tone_spread(t, x_ds, fs_ds) for t in tones] if len(tones) > 1 else [0.0] * len(tones)
+    keep = _one_clock(pairs, tones, spreads, fs_ds)
+    clock = _clock_frequencies(pairs, tones, keep, spreads)
     for (sg, f_guess, nominal), (a, b, _, ph_c, amp), kept, f_b in zip(pairs, tones, keep, clock):
         if not kept:
             continue
@@ -1232,7 +1234,7 @@ def _search_frequencies(x_ds, fs_ds, hints, threshold, min_cycles, fmax, free=No
     return found
 
 
-def _one_clock(pairs: list, tones: list, x_ds: np.ndarray, fs_ds: float) -> list[bool]:
+def _one_clock(pairs: list, tones: list, spreads: list[float], fs_ds: float) -> list[bool]:
     """Which segments keep their place as blocks: those on the stimulator's clock.
 
     Blocks searched at one frequency come from one stimulator, whose clock
@@ -1244,24 +1246,15 @@ def _one_clock(pairs: list, tones: list, x_ds: np.ndarray, fs_ds: float) -> list
     stimulation frequency, 10 times the background for 8 cycles (alpha at
     an individual alpha frequency), would otherwise be cleaned away as a
     sham block. Such stretches are named in a warning and left as recorded.
+    ``spreads``: each segment's bound (:func:`_tone_spread`).
     """
     keep = [True] * len(pairs)
-    groups: dict = {}
-    for i, (sg, f_guess, _) in enumerate(pairs):
-        groups.setdefault(f_guess, []).append(i)
-
-    def spread(i):
-        return _tone_spread(tones[i], x_ds, fs_ds)
-
     dropped = []
-    for f_guess, idx in groups.items():
-        if len(idx) < 2:
-            continue
-        ref = max(idx, key=lambda i: tones[i][1] - tones[i][0])
-        f_ref, s_ref = tones[ref][2], spread(ref)
+    for idx, ref in _clock_groups(pairs, tones, keep):
+        f_ref, s_ref = tones[ref][2], spreads[ref]
         for i in idx:
             f_i = tones[i][2]
-            if abs(f_i - f_ref) > max(_CLOCK_SPREAD * f_ref, 5.0 * np.hypot(spread(i), s_ref)):
+            if abs(f_i - f_ref) > max(_CLOCK_SPREAD * f_ref, 5.0 * np.hypot(spreads[i], s_ref)):
                 keep[i] = False
                 dropped.append(f"{tones[i][0] / fs_ds:.2f}-{tones[i][1] / fs_ds:.2f} s at {f_i:.4g} Hz "
                                f"(blocks at {f_ref:.6g} Hz)")
@@ -1278,7 +1271,16 @@ def _tone_spread(tone: tuple, x_ds: np.ndarray, fs_ds: float) -> float:
     return tone_crb(amp, noise, b - a, fs_ds)["freq_hz"]
 
 
-def _clock_frequencies(pairs: list, tones: list, keep: list[bool], x_ds: np.ndarray, fs_ds: float) -> list[float]:
+def _clock_groups(pairs: list, tones: list, keep: list[bool]) -> list[tuple[list[int], int]]:
+    """The kept segments searched at one frequency, where there are several: (their indices, the longest's)."""
+    groups: dict = {}
+    for i, ((_, f_guess, _), kept) in enumerate(zip(pairs, keep)):
+        if kept:
+            groups.setdefault(f_guess, []).append(i)
+    return [(idx, max(idx, key=lambda i: tones[i][1] - tones[i][0])) for idx in groups.values() if len(idx) > 1]
+
+
+def _clock_frequencies(pairs: list, tones: list, keep: list[bool], spreads: list[float]) -> list[float]:
     """Each segment's frequency, taken with the longest segment's where one stimulator clock gives both.
 
     Blocks searched at one frequency share the stimulator's clock
@@ -1295,17 +1297,10 @@ def _clock_frequencies(pairs: list, tones: list, keep: list[bool], x_ds: np.ndar
     estimates disagree.
     """
     freqs = [t[2] for t in tones]
-    groups: dict = {}
-    for i, ((_, f_guess, _), kept) in enumerate(zip(pairs, keep)):
-        if kept:
-            groups.setdefault(f_guess, []).append(i)
-    for idx in groups.values():
-        if len(idx) < 2:
-            continue
-        ref = max(idx, key=lambda i: tones[i][1] - tones[i][0])
-        f_ref, s_ref = tones[ref][2], _tone_spread(tones[ref], x_ds, fs_ds)
+    for idx, ref in _clock_groups(pairs, tones, keep):
+        f_ref, s_ref = tones[ref][2], spreads[ref]
         for i in idx:
-            f_i, s_i = tones[i][2], _tone_spread(tones[i], x_ds, fs_ds)
+            f_i, s_i = tones[i][2], spreads[i]
             if i != ref and s_i > _CLOCK_BORROW * s_ref and abs(f_i - f_ref) <= 3.0 * np.hypot(s_i, s_ref):
                 w_i, w_ref = 1.0 / max(s_i, 1e-300) ** 2, 1.0 / max(s_ref, 1e-300) ** 2
                 freqs[i] = float((w_i * f_i + w_ref * f_ref) / (w_i + w_ref))
