@@ -569,6 +569,8 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
         centres.append(float(u[i:j].mean()))
         offs.append(c0 + (np.mod(cw - c0 + 0.5, 1.0) - 0.5))
     track = _offset_line(centres, offs, u[0], u[-1])
+    if track and steps is not None:
+        track = _edge_line(steps, u, m, track, fs * q / (m * freq))
     if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > max_drift:
         # ticks that only nearly repeat every q cycles (13.37 Hz from 1 kHz: 373.97 every 5 cycles;
         # they repeat every 1337) fold well over seconds, the line taking up their drift of 0.03 ticks
@@ -594,6 +596,65 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     if _edge_power(w, u, m, (track, c0)) < min_edge_power:
         return None
     return DacGrid(int(m), c0, conc, int(w.size), track, int(q), settle_width=settle)
+
+
+def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick: float,
+               n_slopes: int = 161) -> tuple:
+    """The offset line that puts the most clear steps' tick edges between their two samples.
+
+    A window's vote (:func:`_vote_offset`) places its offset at the middle of the offsets its steps
+    allow. Where the edges sweep across the samples by less than a sample over the window (a drift of
+    under ~10 ppm at 30 kHz), that middle is biased toward the middle of the pair by up to half a
+    sample, the bias turning with the edges' position, and a line through the windows took a slope
+    from it (20 Hz from 1 kHz at -6.7 ppm: edges 0.5 samples off at the block's end). Here every clear
+    step's pair bounds the line itself: with the tick ``k`` nearest the pair, ``m u_lo - k < c(u) <=
+    m u_hi - k``, an interval one sample wide. For each slope on a grid about ``track``'s the offset
+    lying in the most intervals is found (a sweep over their sorted starts); among the slopes reaching
+    the most, the one nearest no slope (the frequency's own grid), at the middle of its run of offsets.
+    Steps not a DAC's (a spike's pairs) fall outside and are outvoted.
+    """
+    steps = steps[steps + 1 < u.size]
+    if steps.size < _MISSED_MIN:
+        return track
+    at, off = track
+    b0 = float((off[1] - off[0]) / (at[1] - at[0]))
+    u_lo, u_hi = u[steps], u[steps + 1]
+    mid = 0.5 * (u_lo + u_hi)
+    centre = float(mid.mean())
+    d = mid - centre
+    half = float(np.abs(d).max())
+    if half <= 0:
+        return track
+    k = np.round(m * mid - np.interp(mid, at, off))  # the edge each step belongs to
+    low = m * u_lo - k  # the offset interval (low, low + width]
+    width = float(np.median(m * (u_hi - u_lo)))  # one sample, in ticks
+    # the windows' line is off by at most about a sample at the ends: slopes within two either way
+    span = 2.0 * width / half
+
+    def best_at(b):
+        starts = np.sort(low - b * d)
+        ends = np.searchsorted(starts, starts + width, side="left")
+        count = ends - np.arange(starts.size)
+        j = int(np.argmax(count))
+        return int(count[j]), 0.5 * (starts[j + count[j] - 1] + starts[j] + width)
+
+    slopes = b0 + np.linspace(-span, span, n_slopes)
+    for _ in range(2):  # a coarse grid, then a fine one about the best slopes
+        found = [best_at(b) for b in slopes]
+        counts = np.array([c for c, _ in found])
+        top = np.flatnonzero(counts == counts.max())
+        lo_b, hi_b = slopes[top[0]], slopes[top[-1]]
+        step = slopes[1] - slopes[0]
+        slopes = np.linspace(lo_b - step, hi_b + step, n_slopes)
+    # where the steps leave the slope open (a short stretch, edges that barely cross the samples) the
+    # frequency's own grid, no slope, is the likeliest (a 2 s sham on the session's clock: the middle of
+    # the open range put its ramp's foot 0.44 samples off)
+    b = float(np.clip(0.0, lo_b, hi_b))
+    count, a = best_at(b)
+    if count < 0.5 * steps.size:
+        return track  # no line explains most steps: keep the windows' line
+    ends = np.asarray(at, dtype=np.float64)
+    return ends, a + b * (ends - centre)
 
 
 #: steps the grid misplaces before its settle width is set from them (:func:`_missed_edges`): fewer are a

@@ -262,3 +262,23 @@ def test_a_grid_that_misplaces_its_edges_the_same_way_in_every_window_settles_th
     assert est.report_["blocks"][0]["dac_ticks_per_cycle"] == 200
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
     assert abs(s["delta_ppc"]) <= 5e-4, s["delta_ppc"]
+
+
+@pytest.mark.parametrize("ppm", [-6.7, -2.0, 3.0, 12.0])
+def test_edges_that_barely_cross_the_samples_are_placed_by_every_step(ppm):
+    """With a drift of a few ppm the edges sweep less than a sample over a window, and a window's vote put
+    its offset at the middle of the pair, biased by up to half a sample with the edges' position; the
+    line through the windows took a slope from that (0.09-0.65 samples off within 10 s). The line from
+    every clear step's pair (``staircase._edge_line``) places them to what the steps allow: at 3 ppm the
+    samples sweep 0.9 of a sample over the edges, which leaves them open by 0.1 of a sample."""
+    x, cycles, fs, f = _held_sine(20.0, 1000.0, seconds=10.0, ppm=ppm, seed=7)
+    steps = find_dac_grid(x, cycles, fs, f)
+    grid = find_fast_dac(x, cycles, fs, f, ticks=(steps.ticks_per_cycle, steps.cycles_per_period))
+    # the true edges (_held_sine: tick number floor(t / tick + 0.37)), at the model's phase
+    clock = 1 + ppm * 1e-6
+    tick = 1.0 / (1000.0 * clock)
+    k = np.arange(1, np.floor(10.0 / tick))
+    at = f * (k - 0.37) * tick
+    pos = grid._position(at)
+    off_by = np.abs(pos - np.round(pos)) * fs * tick
+    assert off_by.max() <= 0.075, off_by.max()
