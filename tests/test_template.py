@@ -498,3 +498,26 @@ def test_a_heartbeat_that_shifts_the_artifacts_phase(freq, dac, heart_hz, degree
     b = TemplateSubtraction(track_phase=False).fit(plain.data, fs=plain.fs)
     assert not a.report_["blocks"][0]["phase_shift_followed"]
     np.testing.assert_array_equal(a.artifact_, b.artifact_)
+
+
+def test_a_dacs_ramps_are_held_with_its_waveform():
+    """The stimulator computes its ramps with the waveform and the DAC holds both through a tick: read
+    at the samples themselves, the block's envelope left a sawtooth of the ramp's rise per tick (0.5 s
+    ramps from a 1 kHz DAC: 0.2 x noise in the spike band on the ramps, 0.085 over the trace; now 0.03)."""
+    from scipy.signal import butter, sosfiltfilt
+
+    from artifactclean.scenarios import locked_units
+
+    art = ArtifactSpec(freq_hz=20.0, amplitude_uv=4000.0, channel_gains=(-1.3, -1.2, 0.45, 1.0), heart_rate_hz=1.6,
+                       drift_ppm=40.0, dac_rate_hz=1000.0)
+    rec = simulate_recording(8.0, artifact=art, neural=NeuralSpec(units=locked_units()),
+                             blocks=[BlockSpec(1.0, 6.0, ramp_s=0.5)], seed=2)
+    y = TemplateSubtraction().fit_transform(rec.data, fs=rec.fs)
+    sos = butter(4, [300, 6000], btype="band", fs=rec.fs, output="sos")
+    err = sosfiltfilt(sos, y - rec.neural, axis=-1)
+    fs = int(rec.fs)
+    ramps = np.zeros(y.shape[1], dtype=bool)
+    ramps[fs:int(1.5 * fs)] = ramps[int(6.5 * fs):7 * fs] = True
+    on_ramps = np.sqrt(np.mean(err[:, ramps] ** 2, axis=1)) / rec.spec["neural"]["noise_uv"]
+    assert on_ramps.max() <= 0.06, on_ramps
+    assert max(score_cleaning(rec, y)["spikeband_residual"]) <= 0.05

@@ -58,7 +58,7 @@ from ._kernels import (PhaseGrid, group_position, grouped_eval, lerp_positions, 
                        tick_eval, tick_sums)
 from ..pulse import HEART_HZ
 from ..staircase import DacClock
-from .cycles import CycleEstimator, block_key, settle_edges, spike_outliers, stretch_bounds, trapezoid
+from .cycles import CycleEstimator, block_key, envelope_at, settle_edges, spike_outliers, stretch_bounds, trapezoid
 
 __all__ = ["TemplateSubtraction"]
 
@@ -485,7 +485,14 @@ class TemplateSubtraction(CycleEstimator):
             delta = grid.settle_width * grid.ticks_per_cycle * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
+            # the stimulator computes the ramps with the waveform, and its DAC holds both through a tick:
+            # the block's envelope is read where each sample's tick began (a level read at the samples
+            # themselves left a sawtooth of 0.1% of the artifact a tick on 1 s ramps from 1 kHz, 0.1 x noise)
+            edge *= per * fs / (f * grid.ticks_per_cycle)
+            trap = envelope_at(np.arange(offset, offset + n, dtype=np.float64) - edge, blk)
             del edge  # arrays of the block's length are freed as soon as they are done with (memory)
+        else:
+            trap = trapezoid(n, blk, offset)
         if free:
             # a bin must hold many ticks, far apart in time, or it holds the LFP of a few moments:
             # four bins per update (about 16 ticks each over 63 cycles), their means moved to the
@@ -560,7 +567,6 @@ class TemplateSubtraction(CycleEstimator):
             failed = np.zeros((n_ch, n_groups, n_bins), dtype=bool)
         # start from the block's trapezoid (linear ramps), so that the first templates are not
         # ramp averages; the fitted gain takes over from the second pass
-        trap = trapezoid(n, blk, offset)
         gain = np.repeat(trap[None, :], n_ch, axis=0)
         seg_env = trap[(seg_starts + np.append(seg_starts[1:], n)) // 2]
         # where each segment stands, in samples from the block's reference sample (which a window of the
