@@ -71,6 +71,27 @@ def test_groups_see_the_reference_channel_they_need(short_dac):
     np.testing.assert_array_equal(plan.response.response[1], est._plans[next(iter(est._plans))].response.response[ref])
 
 
+def test_groups_of_a_clipped_session_see_the_channels_that_judge_the_dacs_edges():
+    """Where a channel clips, the samples next to a DAC's tick edges are judged on the strongest
+    channels at once (cycles.settle_edges), the plan's reference first: a group fits on all of them,
+    so that it settles the edges as the whole array does."""
+    from artifactclean.estimators.base import _fit_model
+    from artifactclean.scenarios import make_scenario
+
+    rec = make_scenario("clipped_20hz_dac", seed=3, duration_s=6)
+    est = TemplateSubtraction()
+    est.prepare(array_reader(rec.data), _fit_model(rec.data, rec.fs, None, None), rec.fs)
+    plan, = est._plans.values()
+    assert plan.grid is not None and plan.judges[0] == plan.ref and len(plan.judges) == 4
+    strength = np.std(rec.data, axis=1)
+    assert sorted(plan.judges[1:], key=lambda c: -strength[c]) == list(plan.judges[1:])
+    other = next(c for c in range(4) if c != plan.ref)
+    sub, fit = est.for_channels([other])
+    assert fit[0] == other and sorted(fit) == [0, 1, 2, 3]
+    sub_plan, = sub._plans.values()
+    assert [fit[j] for j in sub_plan.judges] == list(plan.judges)
+
+
 def test_clipped_and_blanked_samples_equal_with_workers(rng):
     from artifactclean.scenarios import make_scenario
 

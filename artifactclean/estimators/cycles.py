@@ -83,6 +83,10 @@ class BlockPlan(NamedTuple):
     harmonics : int or None
         Harmonics the artifact's waveform shows on the strongest unclipped
         channel (:func:`waveform_harmonics`); None where every channel clips.
+    judges : tuple of int
+        Channels whose data judge the samples next to a DAC's tick edges
+        (:func:`settle_edges`): ``ref`` alone, or where a channel clips
+        ``ref`` and the strongest others, at most :data:`SETTLE_CHANNELS`.
     """
 
     ref: int
@@ -91,6 +95,12 @@ class BlockPlan(NamedTuple):
     response: GainResponse | None
     decided: list | None
     harmonics: int | None = None
+    judges: tuple = ()
+
+
+#: channels whose data judge the samples next to a DAC's tick edges (:class:`BlockPlan`, :func:`settle_edges`):
+#: this project's choice (the plan's DAC search pools as many)
+SETTLE_CHANNELS = 4
 
 
 #: harmonics weaker than this share of the fundamental are not counted in a waveform's shape
@@ -158,7 +168,7 @@ def envelope_at(i: np.ndarray, blk) -> np.ndarray:
     return np.maximum(env, 1e-3)
 
 
-def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
+def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi, usable=None):
     """Put samples next to a DAC tick edge in whichever tick explains them best.
 
     The phase model locates an edge to a fraction of a sample; the held
@@ -170,8 +180,25 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
     each tick of one sample, and judged against those the candidates kept
     whole steps (25-35 uV). ``read(keys, samples)`` gives the template (of
     this channel) at those tick keys.
+
+    ``x`` and ``g`` may be several channels (rows), with ``read(keys,
+    samples, row)`` and ``usable`` (bool, the rows' samples not at a rail):
+    each sample is judged on every row where it and the samples it is
+    judged against are usable, the squared misfits summed, and keeps the
+    grid's tick where none is. One clipped channel judged alone took its
+    rail samples for evidence, and every channel's samples beside the rails
+    took the wrong tick (a whole step, 1-4 ms from the rails, where all four
+    clip); a weaker channel judged alone, the strongest being clipped
+    elsewhere, misassigned samples near every edge for seconds about each
+    time the edges crossed a sample (0.1-0.17 x noise at 5 Hz).
     """
-    n = x.size
+    rows = np.ndim(x) == 2
+    if not rows:
+        x, g = x[None, :], g[None, :]
+        usable = None if usable is None else np.asarray(usable)[None, :]
+        one = read
+        read = lambda k, idx, r: one(k, idx)  # noqa: E731
+    n = x.shape[1]
     hi = base_key.max()
     new = base_key.copy()
     unsure = np.zeros(n, dtype=bool)
@@ -188,14 +215,24 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi):
     for amb, step in ((amb_lo, -1), (amb_hi, 1)):
         if amb.size == 0:
             continue
-        around = np.concatenate([sure_neighbour(amb, -1), sure_neighbour(amb, 1)])
-        r = x[around] - g[around] * read(key[around], around)
-        base = 0.5 * (r[: amb.size] + r[amb.size:])
+        left, right = sure_neighbour(amb, -1), sure_neighbour(amb, 1)
         k0 = base_key[amb]
         k1 = np.clip(k0 + step, 0, hi)
-        e0 = np.abs(x[amb] - g[amb] * read(k0, amb) - base)
-        e1 = np.abs(x[amb] - g[amb] * read(k1, amb) - base)
-        new[amb] = np.where(e1 < e0, k1, k0)
+        # evidence for the other tick: squared misfits summed over the rows that can tell (the noise is
+        # each channel's own; one DAC's steps are in every channel, scaled by its gain)
+        favour = np.zeros(amb.size)
+        for r in range(x.shape[0]):
+            sel = slice(None) if usable is None else usable[r, amb] & usable[r, left] & usable[r, right]
+            a, lo_, hi_ = amb[sel], left[sel], right[sel]
+            if a.size == 0:
+                continue
+            around = np.concatenate([lo_, hi_])
+            res = x[r, around] - g[r, around] * read(key[around], around, r)
+            base = 0.5 * (res[: a.size] + res[a.size:])
+            e0 = x[r, a] - g[r, a] * read(k0[sel], a, r) - base
+            e1 = x[r, a] - g[r, a] * read(k1[sel], a, r) - base
+            favour[sel] += e0 * e0 - e1 * e1
+        new[amb] = np.where(favour > 0, k1, k0)
     return np.maximum.accumulate(new)  # ticks never run backwards
 
 
@@ -240,7 +277,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response, decided, harmonics = plan
+    ref, grid, unlocked, response, decided, harmonics, judges = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -251,7 +288,9 @@ def _subset_plan(plan, fit: list[int]):
         response = response.rows(rows)
     if decided is not None:
         decided = [decided[i] for i in rows]
-    return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics)
+    # judges the clone does not see (an estimator that reads no reference data) are left out
+    judges = tuple(rows.index(j) for j in judges if j in rows)
+    return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics, judges)
 
 
 def _track_parts(bounds: tuple[int, int], fs: float) -> list[tuple[int, int]]:
@@ -369,13 +408,13 @@ class CycleEstimator(ArtifactEstimator):
 
         def decide(job):
             i, rows = job
-            _, grid, _, response, _ = stretch[i]
+            _, grid, _, response, _, _ = stretch[i]
             return self._decide(read, blocks[i], fs, grid, response, bounds[i], rows)
 
         decided: dict[int, list] = {}
         for (i, _), part in zip(jobs, mapper(decide, jobs)):
             decided.setdefault(i, []).extend(part)
-        return [BlockPlan(*stretch[i][:4], decided.get(i), stretch[i][4]) for i in range(len(blocks))]
+        return [BlockPlan(*stretch[i][:4], decided.get(i), *stretch[i][4:]) for i in range(len(blocks))]
 
     def _heart_row(self, read, blk, fs, bounds, part, row):
         """One channel's share of a part of the heartbeat's track (see :meth:`_heart_part`): ``(positions,
@@ -445,10 +484,13 @@ class CycleEstimator(ArtifactEstimator):
         plans = getattr(self, "_plans", None)
         if plans is None:
             return est, fit
-        for ref, grid, *_ in plans.values():
-            # the reference's data for a DAC grid (the heartbeat's phase is in the plan's track)
-            if self._reads_reference and grid is not None and ref not in fit:
-                fit.append(int(ref))
+        for plan in plans.values():
+            # the reference's data for a DAC grid (the heartbeat's phase is in the plan's track), and the
+            # channels that judge the samples next to its edges
+            if self._reads_reference and plan.grid is not None:
+                for ch in (plan.ref, *plan.judges):
+                    if ch not in fit:
+                        fit.append(int(ch))
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
         return est, fit
 
@@ -478,7 +520,7 @@ class CycleEstimator(ArtifactEstimator):
         intact = ~find_clipped(x, dilate=0).any(axis=1)
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if b - a < 16:
-            return ref, None, 0.0, None, None
+            return ref, None, 0.0, None, None, (ref,)
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         first = int(np.floor(cycles[0] * per_cycle))  # the gain segments' first number
@@ -548,7 +590,12 @@ class CycleEstimator(ArtifactEstimator):
         ticks = getattr(grid, "ticks_per_cycle", None)
         harmonics = waveform_harmonics(x[ref], cycles, fs, f, below=ticks / 2 if ticks else None) \
             if intact.any() else None
-        return ref, grid, unlocked, response, harmonics
+        # where a channel clips, the strongest channels, the reference first, judge the samples next to the DAC's
+        # edges (the reference is then not the strongest, and at the rails it cannot judge); else the reference,
+        # the strongest, alone (every task that cleans other channels reads the judges too)
+        judges = (ref,) if intact.all() else \
+            (ref, *[int(c) for c in np.argsort(-spread, kind="stable") if c != ref][:SETTLE_CHANNELS - 1])
+        return ref, grid, unlocked, response, harmonics, judges
 
     def _gain_response(self, parts, groups, f, ref, intact, plain, first, mapper):
         """The plan's :class:`~artifactclean.modulation.GainResponse` from the ``parts`` of channel ``groups``

@@ -557,6 +557,12 @@ class TemplateSubtraction(CycleEstimator):
 
         censored = fill = failed = complete = None
         wb0 = wb
+        judge, usable = [ref], None
+        if grid is not None:
+            # samples beside a tick edge are judged on the plan's strongest channels where they are not at a
+            # rail (settle_edges): the reference alone is the strongest unclipped one, weaker than a clipped one
+            judge = [int(c) for c in plan.judges if c < n_ch] or [ref]
+            usable = wb[judge] > 0 if np.any(wb[judge] == 0) else None
         if np.any(wb == 0):
             censored = self._censored(wb, sampler, key, reader if sampler is not None else None,
                                       n_bins, stride, k_groups, n_groups, trap if blk.kind == "sham" else None)
@@ -598,8 +604,8 @@ class TemplateSubtraction(CycleEstimator):
             denoise = self.denoise and it == passes - 1
             if free:
                 if it > 0:
-                    ticks = settle_edges(xb[ref], gain[ref], lambda k, _: read_free(tmpl[ref:ref + 1], k)[0],
-                                         ticks, base_ticks, amb_lo, amb_hi)
+                    ticks = settle_edges(xb[judge], gain[judge], lambda k, _, r: read_free(tmpl[judge[r]:judge[r] + 1], k)[0],
+                                         ticks, base_ticks, amb_lo, amb_hi, usable)
                     key, bin_off = held_bins(ticks)
                     key -= row0 * n_bins
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, self.denoise, stride,
@@ -607,8 +613,10 @@ class TemplateSubtraction(CycleEstimator):
                 t_n = read_free(tmpl, ticks, out=None if it == 0 else t_n)
             elif sampler is None:
                 if it > 0:
-                    key = settle_edges(xb[ref], gain[ref], lambda k, _: self._read_ticks(tmpl[ref:ref + 1], k, n_bins, stride, n_groups)[0],
-                                        key, base_key, amb_lo, amb_hi)
+                    key = settle_edges(xb[judge], gain[judge],
+                                       lambda k, _, r: self._read_ticks(tmpl[judge[r]:judge[r] + 1], k, n_bins, stride,
+                                                                        n_groups)[0],
+                                       key, base_key, amb_lo, amb_hi, usable)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per,
                                            complete=complete, failed=failed)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups, out=None if it == 0 else t_n)
