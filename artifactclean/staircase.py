@@ -569,8 +569,10 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
         centres.append(float(u[i:j].mean()))
         offs.append(c0 + (np.mod(cw - c0 + 0.5, 1.0) - 0.5))
     track = _offset_line(centres, offs, u[0], u[-1])
-    if track and steps is not None:
-        track = _edge_line(steps, u, m, track, fs * q / (m * freq))
+    per_tick = fs * q / (m * freq)
+    if track and steps is not None and _edge_gap(per_tick, w.size / max(len(bounds) - 1, 1) / per_tick) > _EDGE_GAP:
+        # the edges of a window sit at a few places within a sample: its vote is biased (_edge_line)
+        track = _edge_line(steps, u, m, track, per_tick)
     if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > max_drift:
         # ticks that only nearly repeat every q cycles (13.37 Hz from 1 kHz: 373.97 every 5 cycles;
         # they repeat every 1337) fold well over seconds, the line taking up their drift of 0.03 ticks
@@ -581,7 +583,6 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     # ticks here, and a sample that close to one, misassigned, leaves a whole step (130 uV) as a spike
     settle = 0.25
     if track:
-        per_tick = fs * q / (m * freq)
         scatter = float(np.std(np.asarray(offs) - np.interp(centres, *track)))
         settle = 4.0 * scatter * per_tick
         # a bias the windows share does not scatter them: where steps fall between samples the grid puts in
@@ -598,13 +599,32 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     return DacGrid(int(m), c0, conc, int(w.size), track, int(q), settle_width=settle)
 
 
+#: a window's vote is unbiased where its tick edges fall at every tenth of a sample or closer
+#: (:func:`_edge_gap`); this project's choice
+_EDGE_GAP = 0.1
+
+
+def _edge_gap(per_tick: float, ticks: float) -> float:
+    """The largest gap (samples, circular) between the places within a sample where ``ticks`` edges fall,
+    ``per_tick`` samples apart.
+
+    At 1 kHz sampled at 30 kHz every edge falls at one place (30 samples a tick) and only the stimulator's
+    drift moves it, by 0.2 samples a second at 6.7 ppm; at 24.414 kHz (12.207 samples a tick) the edges of a
+    few dozen ticks fill the sample whatever the drift.
+    """
+    n = int(min(max(ticks, 1), 1 << 16))
+    frac = np.sort(fractional_part(np.arange(n) * per_tick))
+    gaps = np.diff(np.concatenate((frac, [frac[0] + 1.0])))
+    return float(gaps.max())
+
+
 def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick: float,
                n_slopes: int = 161) -> tuple:
     """The offset line that puts the most clear steps' tick edges between their two samples.
 
     A window's vote (:func:`_vote_offset`) places its offset at the middle of the offsets its steps
-    allow. Where the edges sweep across the samples by less than a sample over the window (a drift of
-    under ~10 ppm at 30 kHz), that middle is biased toward the middle of the pair by up to half a
+    allow. Where the edges sweep across the samples by less than a sample over the window (a whole number
+    of samples a tick and a drift under ~10 ppm: :func:`_edge_gap`), that middle is biased toward the middle of the pair by up to half a
     sample, the bias turning with the edges' position, and a line through the windows took a slope
     from it (20 Hz from 1 kHz at -6.7 ppm: edges 0.5 samples off at the block's end). Here every clear
     step's pair bounds the line itself: with the tick ``k`` nearest the pair, ``m u_lo - k < c(u) <=
