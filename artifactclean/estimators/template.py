@@ -604,7 +604,8 @@ class TemplateSubtraction(CycleEstimator):
             denoise = self.denoise and it == passes - 1
             if free:
                 if it > 0:
-                    ticks = settle_edges(xb[judge], gain[judge], lambda k, _, r: read_free(tmpl[judge[r]:judge[r] + 1], k)[0],
+                    ticks = settle_edges(xb[judge], gain[judge],
+                                         lambda k, _, r: read_free(tmpl[judge[r]:judge[r] + 1], k)[0],
                                          ticks, base_ticks, amb_lo, amb_hi, usable)
                     key, bin_off = held_bins(ticks)
                     key -= row0 * n_bins
@@ -759,7 +760,8 @@ class TemplateSubtraction(CycleEstimator):
         weight = ones if env is None else np.repeat(np.asarray(env, dtype=np.float64)[None, :], n_ch, axis=0)
         if sampler is None:
             counts, _ = tick_sums(1.0 - wb, ones, ones, key, n_bins, stride, n_groups, compiled=self.compiled)
-            lost, _ = tick_sums((1.0 - wb) * weight, ones, weight, key, n_bins, stride, n_groups, compiled=self.compiled)
+            lost = counts if env is None else tick_sums((1.0 - wb) * weight, ones, weight, key, n_bins, stride,
+                                                        n_groups, compiled=self.compiled)[0]
             _, every = tick_sums(ones, ones, weight, key, n_bins, stride, n_groups, compiled=self.compiled)
         else:
             _, usable = sampler.sums(ones, wb, ones, compiled=self.compiled)
