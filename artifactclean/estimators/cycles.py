@@ -26,7 +26,7 @@ from ..parallel import channel_groups
 from ..stimulation import ramp_level
 from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, \
     relative_deviation
-from ..modulation import _FOOT, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
+from ..modulation import _FOOT, FOLLOW_HZ, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, follow_below, \
     lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, segment_phase, \
     segments_per_cycle, sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
@@ -636,6 +636,7 @@ class CycleEstimator(ArtifactEstimator):
 
         both = np.concatenate(list(mapper(support, groups)))
         response.response = np.minimum(response.response, both)
+        low = stop_low_images(response, f, follow_below(f))
         if pulse is not None:
             pass_heart(response, pulse, follow_below(f))
         if parts[0][7] is None:
@@ -646,6 +647,7 @@ class CycleEstimator(ArtifactEstimator):
         response.phase = np.minimum(
             design_gain_response(eta, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f),
                                  over_subtraction=4.0).response, both)
+        response.phase[:, low] = 0.0
 
         def helps(rows):
             # kept only where following it takes artifact off beside the fundamental
@@ -729,6 +731,36 @@ def pass_heart(response: GainResponse, pulse, above_hz: float = 0.0) -> None:
     """
     band = (np.abs(response.freqs - pulse.heart_hz) <= _HEART_PASS_HZ) & (response.freqs > above_hz)
     response.response[:, band] = 1.0
+
+
+#: a gain line whose image below the fundamental (``f - d``) falls under this (Hz) does not pass beyond what
+#: the gain always follows (:func:`stop_low_images`; this project's choice: the LFP is strongest there and
+#: its slope under a segment reads as a change of gain. 5 Hz stimulation, sinusoidal 1.7 Hz heart: lines of
+#: the floor passed at 0.2-0.4 at 2.8-3.3 Hz and left 0.18-0.47 of the LFP away from the +-3 Hz bands,
+#: 0.004-0.033 stopped)
+LOW_IMAGE_HZ = 2.0
+
+
+def stop_low_images(response: GainResponse, f: float, above_hz: float = 0.0) -> np.ndarray:
+    """Stop ``response`` (and its phase response, if designed) where a gain line's lower image ``f - d``
+    lies under :data:`LOW_IMAGE_HZ`, in place; not at or below ``above_hz``, where everything passes
+    (:func:`~artifactclean.modulation.follow_below`), nor at or below
+    :data:`~artifactclean.modulation.FOLLOW_HZ`: a person's heart and its first harmonic lie there, and
+    below 4-5 Hz stimulation they must be followed wherever their images fall (a 2 Hz heart at 3 Hz:
+    the residual within +-3 Hz of the harmonics 4.5 -> 11x the neural power with those lines stopped).
+    Returns where it stopped (over ``response.freqs``).
+
+    The image of the neural signal a gain line at ``d`` Hz takes off lies at ``f - d`` and ``f + d``;
+    only below about 10 Hz stimulation does ``f - d`` reach the strongest LFP within the gain's band,
+    and there the segments' gains carry that LFP most (its slope under part of a cycle). A modelled
+    heartbeat's own line still passes (:func:`pass_heart`, after this); its harmonics are modelled, not
+    passed.
+    """
+    band = (response.freqs > f - LOW_IMAGE_HZ) & (response.freqs > max(above_hz, FOLLOW_HZ))
+    response.response[:, band] = 0.0
+    if response.phase is not None:
+        response.phase[:, band] = 0.0
+    return band
 
 
 def _call(job):
