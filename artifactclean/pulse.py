@@ -100,6 +100,11 @@ _HALF_LINE = 2.0
 _SIGNIFICANCE = 5.0
 #: harmonics modelled at most (2 ... this + 1)
 _MAX_HARMONICS = 8
+#: a harmonic within this fraction above the highest frequency the gain follows is still modelled: the heart
+#: rate wanders by a few per cent (and is read within about a per cent), so its line spends time on both sides
+#: of the limit (this project's choice: a 2.49 Hz heart read as 2.51 Hz lost its 4th harmonic at 10 Hz, whose
+#: sidebands beside 40 Hz left 11x the neural power there)
+_RATE_WANDER = 0.05
 #: what is slower than this fraction of the heart rate is fitted away beside the harmonics (:func:`_slow_basis`;
 #: the fundamental's band-pass starts at 1 - :data:`_WIDTH` of it; this project's choice)
 _SLOW_FRACTION = 0.6
@@ -961,7 +966,7 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     heart = heart_rate(dev, rate, band)
     if heart is None:
         return None
-    n_harm = int(min(_MAX_HARMONICS, np.floor(min(max_hz, 0.45 * rate) / heart) - 1))
+    n_harm = int(min(_MAX_HARMONICS, np.floor(min(max_hz * (1 + _RATE_WANDER), 0.45 * rate) / heart) - 1))
     if n_harm < 1:
         return None
     # fit away from the sequence's ends, where the band-pass holds the edge value
