@@ -570,10 +570,14 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
         offs.append(c0 + (np.mod(cw - c0 + 0.5, 1.0) - 0.5))
     track = _offset_line(centres, offs, u[0], u[-1])
     per_tick = fs * q / (m * freq)
+    line_settle = None
     if track and steps is not None and _edge_gap(per_tick, w.size / max(len(bounds) - 1, 1) / per_tick) > _EDGE_GAP:
-        # the edges of a window sit at a few places within a sample: its vote is biased (_edge_line)
-        track = _edge_line(steps, u, m, track, per_tick)
-    if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > max_drift:
+        # the edges of a window sit at a few places within a sample: its vote is biased (_edge_line); a DAC
+        # whose steps do not stand out one by one places its line by the pairs that stand a little out
+        faint = steps.size < _MISSED_MIN
+        track, run = _edge_line(_soft_steps(w) if faint else steps, u, m, track, per_tick, return_run=True)
+        line_settle = 2.0 * run * per_tick if faint and run is not None else None
+    if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > max(max_drift, min(_LOCKED_DRIFT_MAX, m * _FREQ_ERROR)):
         # ticks that only nearly repeat every q cycles (13.37 Hz from 1 kHz: 373.97 every 5 cycles;
         # they repeat every 1337) fold well over seconds, the line taking up their drift of 0.03 ticks
         # a period; an error of the frequency moves them by ~1e-5 (a free-running DAC: find_dac_clock)
@@ -585,6 +589,12 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     if track:
         scatter = float(np.std(np.asarray(offs) - np.interp(centres, *track)))
         settle = 4.0 * scatter * per_tick
+        if line_settle is not None:
+            # a faint DAC's line from its pairs (above): the windows' offsets scatter by their bias, not the
+            # line's error, and the data, judging steps of 2-4 SDs, misassign the samples they are given
+            # (5 Hz from 2 kHz at 3 mV: 0.12 x noise in the spike band with the windows' 0.25 samples, 0.0x
+            # with twice what the pairs leave open)
+            settle = line_settle
         # a bias the windows share does not scatter them: where steps fall between samples the grid puts in
         # one tick, the data show how far off its edges are
         missed = np.empty(0) if steps is None else _missed_edges(steps, u, m, track, per_tick)
@@ -597,6 +607,17 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
     if _edge_power(w, u, m, (track, c0)) < min_edge_power:
         return None
     return DacGrid(int(m), c0, conc, int(w.size), track, int(q), settle_width=settle)
+
+
+#: the stimulation frequency's error a locked DAC's ticks may show as a drift (relative): a line through the
+#: windows' offsets takes it up. At 5 Hz the fit is 2-13 ppm off on 12-16 s blocks (the LFP beside the
+#: fundamental), which moves 400 ticks a cycle (2 kHz) by up to 0.0052 of a tick a cycle; a free-running
+#: DAC's ticks drift by the fraction its period leaves (13.37 Hz from 1 kHz: 0.03 of a tick every 5
+#: cycles). This project's choice, 2.5 times the worst seen
+_FREQ_ERROR = 30e-6
+#: ... but never more than this a period, whatever the ticks' number: within a template's window of up to
+#: ~20 periods the slots then stay within 0.4 of a tick of where the line puts them
+_LOCKED_DRIFT_MAX = 0.02
 
 
 #: a window's vote is unbiased where its tick edges fall at every tenth of a sample or closer
@@ -619,7 +640,7 @@ def _edge_gap(per_tick: float, ticks: float) -> float:
 
 
 def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick: float,
-               n_slopes: int = 161) -> tuple:
+               n_slopes: int = 161, return_run: bool = False):
     """The offset line that puts the most clear steps' tick edges between their two samples.
 
     A window's vote (:func:`_vote_offset`) places its offset at the middle of the offsets its steps
@@ -632,10 +653,13 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
     lying in the most intervals is found (a sweep over their sorted starts); among the slopes reaching
     the most, the one nearest no slope (the frequency's own grid), at the middle of its run of offsets.
     Steps not a DAC's (a spike's pairs) fall outside and are outvoted.
+    With ``return_run``, also the half-width (ticks) of the run of offsets every line through it
+    explains as well, at the chosen slope (None where the windows' line is kept): how far the steps leave
+    the edges open.
     """
     steps = steps[steps + 1 < u.size]
     if steps.size < _MISSED_MIN:
-        return track
+        return (track, None) if return_run else track
     at, off = track
     b0 = float((off[1] - off[0]) / (at[1] - at[0]))
     u_lo, u_hi = u[steps], u[steps + 1]
@@ -644,19 +668,20 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
     d = mid - centre
     half = float(np.abs(d).max())
     if half <= 0:
-        return track
+        return (track, None) if return_run else track
     k = np.round(m * mid - np.interp(mid, at, off))  # the edge each step belongs to
     low = m * u_lo - k  # the offset interval (low, low + width]
     width = float(np.median(m * (u_hi - u_lo)))  # one sample, in ticks
     # the windows' line is off by at most about a sample at the ends: slopes within two either way
     span = 2.0 * width / half
 
-    def best_at(b):
+    def best_at(b, run=False):
         starts = np.sort(low - b * d)
         ends = np.searchsorted(starts, starts + width, side="left")
         count = ends - np.arange(starts.size)
         j = int(np.argmax(count))
-        return int(count[j]), 0.5 * (starts[j + count[j] - 1] + starts[j] + width)
+        lo_c, hi_c = starts[j + count[j] - 1], starts[j] + width
+        return (int(count[j]), 0.5 * (lo_c + hi_c)) + ((0.5 * (hi_c - lo_c),) if run else ())
 
     slopes = b0 + np.linspace(-span, span, n_slopes)
     for _ in range(2):  # a coarse grid, then a fine one about the best slopes
@@ -668,13 +693,32 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
         slopes = np.linspace(lo_b - step, hi_b + step, n_slopes)
     # where the steps leave the slope open (a short stretch, edges that barely cross the samples) the
     # frequency's own grid, no slope, is the likeliest (a 2 s sham on the session's clock: the middle of
-    # the open range put its ramp's foot 0.44 samples off)
-    b = float(np.clip(0.0, lo_b, hi_b))
-    count, a = best_at(b)
+    # the open range put its ramp's foot 0.44 samples off); where they rule it out the frequency is off
+    # (5 Hz, 12 ppm: the LFP beside the fundamental), and the middle of what they allow is the likeliest
+    # (its nearest end left the block's last second half a sample off)
+    b = 0.0 if lo_b <= 0.0 <= hi_b else 0.5 * (lo_b + hi_b)
+    count, a, run = best_at(b, run=True)
     if count < 0.5 * steps.size:
-        return track  # no line explains most steps: keep the windows' line
+        return (track, None) if return_run else track  # no line explains most steps: keep the windows' line
     ends = np.asarray(at, dtype=np.float64)
-    return ends, a + b * (ends - centre)
+    line = ends, a + b * (ends - centre)
+    return (line, run) if return_run else line
+
+
+#: pairs whose power stands this many times the median's out are a faint DAC's edges for its line
+#: (:func:`_soft_steps`): their differences beyond about 2.7 SDs of the noise's, which 0.7% of the noise's
+#: pairs reach (this project's choice)
+_SOFT_STEP_POWER = 16.0
+
+
+def _soft_steps(w: np.ndarray) -> np.ndarray:
+    """The pairs whose power ``w`` stands :data:`_SOFT_STEP_POWER` times its median out (indices).
+
+    A 2 kHz DAC of a 3 mV, 5 Hz waveform steps by at most 52 uV, 2-4 SDs of the noise's differences: no
+    step is clear (:data:`_STEP_POWER`), but about half of its edges pass this, and outnumber the noise's
+    pairs that do by about eight to one; those fall at any offset and :func:`_edge_line` outvotes them.
+    """
+    return np.flatnonzero(w >= _SOFT_STEP_POWER * np.median(w[::7]))
 
 
 #: steps the grid misplaces before its settle width is set from them (:func:`_missed_edges`): fewer are a
