@@ -401,8 +401,8 @@ def find_fast_dac(
       samples, in windows of about ``window_s`` seconds (at least eight,
       none under a quarter second), and a line through the windows' offsets follows
       a residual error of the frequency; ticks that drift more than 0.005 of
-      a tick per period only nearly repeat (a free-running DAC), and are
-      refused.
+      a tick per period, and more than such an error (:data:`_FREQ_ERROR`)
+      moves them, only nearly repeat (a free-running DAC), and are refused.
 
     The edges are placed to about 1e-4 of a tick here (synthetic 40 Hz, 10
     kHz DAC), so only the samples within a few thousandths of a sample of
@@ -577,10 +577,12 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
         faint = steps.size < _MISSED_MIN
         track, run = _edge_line(_soft_steps(w) if faint else steps, u, m, track, per_tick, return_run=True)
         line_settle = 2.0 * run * per_tick if faint and run is not None else None
-    if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > max(max_drift, min(_LOCKED_DRIFT_MAX, m * _FREQ_ERROR)):
+    drift_limit = max(max_drift, min(_LOCKED_DRIFT_MAX, m * _FREQ_ERROR))
+    if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > drift_limit:
         # ticks that only nearly repeat every q cycles (13.37 Hz from 1 kHz: 373.97 every 5 cycles;
         # they repeat every 1337) fold well over seconds, the line taking up their drift of 0.03 ticks
-        # a period; an error of the frequency moves them by ~1e-5 (a free-running DAC: find_dac_clock)
+        # a period (a free-running DAC: find_dac_clock); an error of the frequency moves m ticks by m
+        # times it (_FREQ_ERROR)
         return None
     # the data assign the samples closer to an edge than the offsets scatter (four SDs about their
     # line), and never fewer than those within 0.003 samples: the edges are placed to about 1e-4
@@ -592,7 +594,7 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
         if line_settle is not None:
             # a faint DAC's line from its pairs (above): the windows' offsets scatter by their bias, not the
             # line's error, and the data, judging steps of 2-4 SDs, misassign the samples they are given
-            # (5 Hz from 2 kHz at 3 mV: 0.12 x noise in the spike band with the windows' 0.25 samples, 0.0x
+            # (5 Hz from 2 kHz at 3 mV: 0.12 x noise in the spike band with the windows' 0.25 samples, 0.018
             # with twice what the pairs leave open)
             settle = line_settle
         # a bias the windows share does not scatter them: where steps fall between samples the grid puts in
@@ -651,8 +653,9 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
     step's pair bounds the line itself: with the tick ``k`` nearest the pair, ``m u_lo - k < c(u) <=
     m u_hi - k``, an interval one sample wide. For each slope on a grid about ``track``'s the offset
     lying in the most intervals is found (a sweep over their sorted starts); among the slopes reaching
-    the most, the one nearest no slope (the frequency's own grid), at the middle of its run of offsets.
-    Steps not a DAC's (a spike's pairs) fall outside and are outvoted.
+    the most, no slope (the frequency's own grid) if they allow it, else the middle of those they allow,
+    at the middle of its run of offsets. Steps not a DAC's (a spike's pairs, or the noise's pairs among a
+    faint DAC's: :func:`_soft_steps`) fall outside and are outvoted.
     With ``return_run``, also the half-width (ticks) of the run of offsets every line through it
     explains as well, at the chosen slope (None where the windows' line is kept): how far the steps leave
     the edges open.

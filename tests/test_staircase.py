@@ -345,7 +345,7 @@ def test_a_faint_dac_at_5_hz_leaves_the_spike_band_clean():
     art = ArtifactSpec(freq_hz=5.0, amplitude_uv=2272.9, channel_gains=(1.450, 1.145, 1.255, -0.983),
                        harmonics=((0.053, 5.477), (0.022, 2.114)), heart_rate_hz=1.974, heart_depth=0.0156,
                        heart_harmonics=(), resp_rate_hz=0.265, resp_depth=0.0128, drift_ppm=1.25, dac_rate_hz=2000.0)
-    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units(), oscillation_hz=8.0, lfp_uv=40.0),
-                             blocks=[BlockSpec(1.0, 18.0, ramp_s=1.36)], seed=409)
+    rec = simulate_recording(20.0, artifact=art, blocks=[BlockSpec(1.0, 18.0, ramp_s=1.36)], seed=409,
+                             neural=NeuralSpec(units=locked_units(), oscillation_hz=8.0, lfp_uv=40.0))
     s = score_cleaning(rec, clean(rec.data, rec.fs))
     assert max(s["spikeband_residual"]) <= 0.05, s["spikeband_residual"]
