@@ -300,7 +300,16 @@ def find_dac_grid(
         # keep each local offset within half a tick of the global one
         offs.append(c + (np.mod(cw - c + 0.5, 1.0) - 0.5))
     track = _offset_line(centres, offs, u_all[0], u_all[-1])
-    return DacGrid(m, c, float(r[best]), int(big.size), track, int(cycles_per_period))
+    grid = DacGrid(m, c, float(r[best]), int(big.size), track, int(cycles_per_period))
+    if ticks is None and cycles_per_period == 1 and period is None:
+        # steps too faint for their spacing (a 1 kHz DAC of a 3 Hz, 2 mV sine: 333.3 ticks a cycle, steps of
+        # 20-40 uV) leave the check above open, and 1000 slots a cycle fit every third one's ticks: the pairs'
+        # power at the slots' edges must fall on every slot, not on one in a few (as in find_fast_dac)
+        d = np.diff(x)
+        w = np.minimum(d * d, 25.0 * np.median(d[::7] ** 2))
+        if _edges_skip_ticks(w, cycles, grid, int(m * freq // 200.0)):
+            return None
+    return grid
 
 
 def _offset_line(centres: list, offs: list, first: float, last: float) -> tuple:
