@@ -305,11 +305,25 @@ def find_dac_grid(
         # steps too faint for their spacing (a 1 kHz DAC of a 3 Hz, 2 mV sine: 333.3 ticks a cycle, steps of
         # 20-40 uV) leave the check above open, and 1000 slots a cycle fit every third one's ticks: the pairs'
         # power at the slots' edges must fall on every slot, not on one in a few (as in find_fast_dac)
-        d = np.diff(x)
-        w = np.minimum(d * d, 25.0 * np.median(d[::7] ** 2))
-        if _edges_skip_ticks(w, cycles, grid, int(m * freq // 200.0)):
+        w, level = _pair_power(x)
+        if _edges_skip_ticks(np.minimum(w, _PAIR_CAP * level), cycles, grid, int(m * freq // 200.0)):
             return None
     return grid
+
+
+#: a pair's power counts at most this many times the pairs' median: a spike's edges are a few pairs, not a
+#: rhythm (this project's choice)
+_PAIR_CAP = 25.0
+
+
+def _pair_power(x: np.ndarray, lost: np.ndarray | None = None) -> tuple[np.ndarray, float]:
+    """The power of each pair of consecutive samples' difference, ``d**2`` (0 where a pair touches a ``lost``
+    sample: a rail's edges are steps of its own), and its median over every 7th pair."""
+    d = np.diff(x)
+    w = d * d
+    if lost is not None:
+        w[lost[:-1] | lost[1:]] = 0.0
+    return w, float(np.median(w[::7]))
 
 
 def _offset_line(centres: list, offs: list, first: float, last: float) -> tuple:
@@ -451,14 +465,11 @@ def find_fast_dac(
     if x.size < 4096:
         return None
     lost = find_clipped(x[None, :])[0]
-    d = np.diff(x)
-    w = d * d
-    w[lost[:-1] | lost[1:]] = 0.0  # a rail's edges are steps of its own
-    level = np.median(w[::7])
+    w, level = _pair_power(x, lost)
     # clear steps, whatever else the pairs hold: where the grid's edges do not separate them, it misplaces
     # them (_missed_edges); the noise's differences pass 100 times their median once in ~1e11
     steps = np.flatnonzero(w >= _STEP_POWER * level)
-    w = np.minimum(w, 25.0 * level)  # a spike's edges: a few pairs, not a rhythm
+    w = np.minimum(w, _PAIR_CAP * level)
     if not np.any(w > 0):
         return None
     if ticks is not None:
@@ -584,7 +595,7 @@ def _grid_at_rate(w: np.ndarray, cycles: np.ndarray, fs: float, freq: float, rat
         # the edges of a window sit at a few places within a sample: its vote is biased (_edge_line); a DAC
         # whose steps do not stand out one by one places its line by the pairs that stand a little out
         faint = steps.size < _MISSED_MIN
-        track, run = _edge_line(_soft_steps(w) if faint else steps, u, m, track, per_tick, return_run=True)
+        track, run = _edge_line(_soft_steps(w) if faint else steps, u, m, track, per_tick)
         line_settle = 2.0 * run * per_tick if faint and run is not None else None
     drift_limit = max(max_drift, min(_LOCKED_DRIFT_MAX, m * _FREQ_ERROR))
     if track and abs(np.diff(track[1])[0] / np.diff(track[0])[0]) > drift_limit:
@@ -651,7 +662,7 @@ def _edge_gap(per_tick: float, ticks: float) -> float:
 
 
 def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick: float,
-               n_slopes: int = 161, return_run: bool = False):
+               n_slopes: int = 161) -> tuple:
     """The offset line that puts the most clear steps' tick edges between their two samples.
 
     A window's vote (:func:`_vote_offset`) places its offset at the middle of the offsets its steps
@@ -665,13 +676,13 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
     the most, no slope (the frequency's own grid) if they allow it, else the middle of those they allow,
     at the middle of its run of offsets. Steps not a DAC's (a spike's pairs, or the noise's pairs among a
     faint DAC's: :func:`_soft_steps`) fall outside and are outvoted.
-    With ``return_run``, also the half-width (ticks) of the run of offsets every line through it
-    explains as well, at the chosen slope (None where the windows' line is kept): how far the steps leave
-    the edges open.
+    Returns the line and the half-width (ticks) of the run of offsets whose lines explain as many steps,
+    at the chosen slope: how far the steps leave the edges open (``(track, None)`` where the windows'
+    line is kept).
     """
     steps = steps[steps + 1 < u.size]
     if steps.size < _MISSED_MIN:
-        return (track, None) if return_run else track
+        return track, None
     at, off = track
     b0 = float((off[1] - off[0]) / (at[1] - at[0]))
     u_lo, u_hi = u[steps], u[steps + 1]
@@ -680,25 +691,25 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
     d = mid - centre
     half = float(np.abs(d).max())
     if half <= 0:
-        return (track, None) if return_run else track
+        return track, None
     k = np.round(m * mid - np.interp(mid, at, off))  # the edge each step belongs to
     low = m * u_lo - k  # the offset interval (low, low + width]
     width = float(np.median(m * (u_hi - u_lo)))  # one sample, in ticks
     # the windows' line is off by at most about a sample at the ends: slopes within two either way
     span = 2.0 * width / half
 
-    def best_at(b, run=False):
+    def best_at(b):
+        # the most intervals an offset lies in, the middle of that run of offsets and its half-width
         starts = np.sort(low - b * d)
         ends = np.searchsorted(starts, starts + width, side="left")
         count = ends - np.arange(starts.size)
         j = int(np.argmax(count))
         lo_c, hi_c = starts[j + count[j] - 1], starts[j] + width
-        return (int(count[j]), 0.5 * (lo_c + hi_c)) + ((0.5 * (hi_c - lo_c),) if run else ())
+        return int(count[j]), 0.5 * (lo_c + hi_c), 0.5 * (hi_c - lo_c)
 
     slopes = b0 + np.linspace(-span, span, n_slopes)
     for _ in range(2):  # a coarse grid, then a fine one about the best slopes
-        found = [best_at(b) for b in slopes]
-        counts = np.array([c for c, _ in found])
+        counts = np.array([best_at(b)[0] for b in slopes])
         top = np.flatnonzero(counts == counts.max())
         lo_b, hi_b = slopes[top[0]], slopes[top[-1]]
         step = slopes[1] - slopes[0]
@@ -709,12 +720,11 @@ def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick:
     # (5 Hz, 12 ppm: the LFP beside the fundamental), and the middle of what they allow is the likeliest
     # (its nearest end left the block's last second half a sample off)
     b = 0.0 if lo_b <= 0.0 <= hi_b else 0.5 * (lo_b + hi_b)
-    count, a, run = best_at(b, run=True)
+    count, a, run = best_at(b)
     if count < 0.5 * steps.size:
-        return (track, None) if return_run else track  # no line explains most steps: keep the windows' line
+        return track, None  # no line explains most steps: keep the windows' line
     ends = np.asarray(at, dtype=np.float64)
-    line = ends, a + b * (ends - centre)
-    return (line, run) if return_run else line
+    return (ends, a + b * (ends - centre)), run
 
 
 #: pairs whose power stands this many times the median's out are a faint DAC's edges for its line
