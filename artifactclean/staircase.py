@@ -663,14 +663,15 @@ def _edge_gap(per_tick: float, ticks: float) -> float:
 
 def _edge_line(steps: np.ndarray, u: np.ndarray, m: int, track: tuple, per_tick: float,
                n_slopes: int = 161) -> tuple:
-    """The offset line that puts the most clear steps' tick edges between their two samples.
+    """The offset line that puts the most steps' tick edges between their two samples.
 
     A window's vote (:func:`_vote_offset`) places its offset at the middle of the offsets its steps
     allow. Where the edges sweep across the samples by less than a sample over the window (a whole
     number of samples a tick and a drift under ~10 ppm: :func:`_edge_gap`), that middle is biased
     toward the middle of the pair by up to half a sample, the bias turning with the edges' position,
-    and a line through the windows took a slope from it (20 Hz from 1 kHz at -6.7 ppm: edges 0.5 samples off at the block's end). Here every clear
-    step's pair bounds the line itself: with the tick ``k`` nearest the pair, ``m u_lo - k < c(u) <=
+    and a line through the windows took a slope from it (20 Hz from 1 kHz at -6.7 ppm: edges 0.5
+    samples off at the block's end). Here every step's pair (the clear steps, or a faint DAC's
+    :func:`_soft_steps`) bounds the line itself: with the tick ``k`` nearest the pair, ``m u_lo - k < c(u) <=
     m u_hi - k``, an interval one sample wide. For each slope on a grid about ``track``'s the offset
     lying in the most intervals is found (a sweep over their sorted starts); among the slopes reaching
     the most, no slope (the frequency's own grid) if they allow it, else the middle of those they allow,

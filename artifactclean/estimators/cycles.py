@@ -27,8 +27,8 @@ from ..stimulation import ramp_level
 from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, \
     relative_deviation
 from ..modulation import _FOOT, FOLLOW_HZ, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, \
-    follow_below, lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, segment_phase, \
-    segments_per_cycle, sideband_support
+    follow_below, lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, \
+    segment_phase, segments_per_cycle, sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, piece_bounds, widen_flags
 from .base import ArtifactEstimator
