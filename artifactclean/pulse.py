@@ -325,11 +325,7 @@ class PulseModel:
         """
         gain = np.atleast_2d(gain)
         ref = min(max(self.ref, 0), gain.shape[0] - 1)
-        if scale is None:
-            levels = np.array([_plateau_median(row, envelope) if envelope is not None else float(np.mean(row))
-                               for row in gain])
-        else:
-            levels = np.broadcast_to(np.atleast_1d(np.asarray(scale, dtype=np.float64)), (gain.shape[0],))
+        levels = self._levels(gain, envelope, scale)
         if self.weights is not None and (self.track is None or times is None):
             # the fundamental pooled over channels, read as :meth:`relative` reads the reference's
             dev = relative_deviation(gain, levels[:, None], envelope)
@@ -339,6 +335,48 @@ class PulseModel:
             out = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0], times=times,
                                 slope=slope, segments=segments)
         return tuple(a * levels[:, None] for a in out)
+
+    @staticmethod
+    def _levels(gain: np.ndarray, envelope: np.ndarray | None, scale) -> np.ndarray:
+        """Each sequence's plateau level: ``scale`` (one, or one per row), else its plateau median (its mean
+        without an ``envelope``)."""
+        if scale is None:
+            return np.array([_plateau_median(row, envelope) if envelope is not None else float(np.mean(row))
+                             for row in gain])
+        return np.broadcast_to(np.atleast_1d(np.asarray(scale, dtype=np.float64)), (gain.shape[0],))
+
+    def as_held(self, gain: np.ndarray, rate: float, shift: np.ndarray, first: int, per_cycle: int) -> np.ndarray:
+        """The pulse's harmonics in raw segment gains of a stretch of plateau, as each part of the cycle holds them.
+
+        ``gain`` (one row per channel of the model, ``rate`` a second) are
+        the gains :func:`fit_pulse` was given, ``shift``, ``first`` and
+        ``per_cycle`` where they stood as there. The fundamental is read
+        from them as :meth:`parts` reads it; each harmonic is then seen
+        through its part of the cycle's weights and the move to the middles
+        (:func:`artifactclean.modulation.as_seen`), as the fit saw it, not as
+        the parts' mean (:meth:`parts` with ``segments``): the parts'
+        pattern puts images of a harmonic at the stimulation frequency less
+        it (10 - 4.07 Hz), a line of the raw gain that :meth:`parts` leaves.
+        Without :attr:`seen_by_part`, :meth:`parts`' fitted harmonics.
+        """
+        gain = np.atleast_2d(gain)
+        if self.seen_by_part is None:
+            return self.parts(gain, rate, segments=True)[0]
+        levels = self._levels(gain, None, None)
+        if self.weights is not None:
+            amp, ph = fundamental(relative_deviation(gain, levels[:, None]), rate, self.heart_hz, self.weights)
+        else:
+            if self.ref < 0:
+                raise ValueError("the pulse model needs the reference channel's gain")
+            amp, ph = _amplitude_phase(relative_deviation(gain[self.ref], float(levels[self.ref])), rate,
+                                       self.heart_hz)
+        hs, coefs = self._carried(rate, gain.shape[0])
+        reg = _harmonic_regressors(amp, ph, hs)
+        shift = np.atleast_2d(shift)
+        out = np.empty_like(gain, dtype=np.float64)
+        for c in range(gain.shape[0]):
+            out[c] = np.real(coefs[c] @ as_seen(reg, self.seen_by_part[c], first, shift[c], per_cycle))
+        return out * levels[:, None]
 
 
 def relative_deviation(gain: np.ndarray, level, envelope: np.ndarray | None = None) -> np.ndarray:

@@ -15,7 +15,7 @@ from artifactclean.pulse import (PulseModel, _amplitude_phase, _analytic, _poole
                                  fundamental, fundamental_of_rows, harmonic_phase, heart_rate, join_tracks,
                                  phase_information, pool_weights)
 from artifactclean.scenarios import SCENARIOS, locked_units
-from artifactclean.synthetic import BlockSpec, NeuralSpec, simulate_recording
+from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, simulate_recording
 
 RATE = 30.0
 
@@ -267,6 +267,69 @@ def test_the_pulse_shape_is_fitted_as_the_segments_see_it(seed):
     np.testing.assert_allclose(model.seen_coefs(rate), model.coefs * model.seen)
     _, plain = fitted()
     assert abs(abs(plain[1]) - 1) > 0.06 and abs(np.angle(plain[0]) / 2 - np.angle(plain[1]) / 3) > 0.015, plain
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_the_parts_images_of_a_harmonic_come_off_the_raw_gains(seed):
+    # 10 Hz, 3 segments a cycle, a cycle with harmonics, a 2.04 Hz pulse with a 2nd harmonic only: each part of
+    # the cycle sees the 4.08 Hz harmonic through its own weights and is moved to its middle by a cycle's slope,
+    # and that pattern puts an image at 10 - 4.08 = 5.92 Hz in the raw gains. The parts' mean
+    # (PulseModel.parts) leaves it whole; the harmonic as each part holds it (PulseModel.as_held, what the
+    # fit saw) takes it to the floor (the line's power above the median beside it)
+    from artifactclean.modulation import segment_gain
+
+    rng = np.random.default_rng(seed)
+    fs, f, per_cycle, heart = 6000.0, 10.0, 3, 2.04
+    t = np.arange(int(30 * fs)) / fs
+    u = t * f * (1 + 40e-6) + 0.1234
+    cyc = np.sin(2 * np.pi * u) + 0.3 * np.sin(4 * np.pi * u + 1.0) + 0.15 * np.sin(6 * np.pi * u + 0.4)
+    phi = 2 * np.pi * heart * (t - 0.03 / (2 * np.pi * 0.2) * np.cos(2 * np.pi * 0.2 * t)) + 1.0
+    x = 1000 * np.array([1.0, -0.7, 0.45])[:, None] * ((1 + 0.02 * (np.cos(phi) + 0.5 * np.cos(2 * phi + 0.3))) * cyc)[None]
+    x += 0.5 * rng.standard_normal(x.shape)
+    gain, rate, shift, cycle = segment_gain(x, np.ones_like(x), u, fs, f, per_cycle, return_shift=True,
+                                            return_cycle=True)
+    first = int(np.floor(u[0] * per_cycle))
+    model = fit_pulse(gain, rate, max_hz=10.0, ref=0, shift=shift, per_cycle=per_cycle, cycle=cycle, first=first)
+    assert model is not None and model.harmonics() == [2]
+
+    def excess(g):
+        fr, p = signal.welch(g - g.mean(axis=1, keepdims=True), fs=rate, nperseg=int(8 * rate), window=("kaiser", 10))
+        image = f - 2 * model.heart_hz
+        near, beside = np.abs(fr - image) <= 0.3, (np.abs(fr - image) > 0.5) & (np.abs(fr - image) <= 1.0)
+        return p[:, near].sum(axis=1) - near.sum() * np.median(p[:, beside], axis=1)
+
+    whole = excess(gain)
+    assert np.all(excess(gain - model.parts(gain, rate, segments=True)[0]) > 0.9 * whole)
+    left = excess(gain - model.as_held(gain, rate, shift, first, per_cycle)) / whole
+    assert np.abs(left).max() < 0.25, left
+
+
+@pytest.mark.parametrize("seed", [1, 3])
+def test_a_pulses_image_in_the_gain_does_not_pass_beside_a_dac(seed):
+    # a 1 kHz DAC turns off the raw gain's check against the data (its period puts lines of its own there), and
+    # the 2nd harmonic of a 2 Hz pulse put an image at f - 4 Hz in the plan's raw gains (the parts' pattern,
+    # test above); its "sidebands" f +- (f - 4) are 4 Hz and 2 f - 4 Hz, where the artifact has lines of its own
+    # (the harmonic on the waveform's offset and on its 2nd harmonic), so the sideband test passed it, and the
+    # gain put a line at 2 f - 4 Hz: 0.95-1.43 x the neural power there on two channels. With the image taken
+    # off the raw gains, under 0.01.
+    art = ArtifactSpec(freq_hz=10.0, amplitude_uv=5000.0, channel_gains=(0.6, -0.35, 1.1, 1.3),
+                       harmonics=((0.045, 3.6), (0.037, 2.8), (0.031, 0.2), (0.025, 5.9)), heart_rate_hz=2.0,
+                       heart_depth=0.023, heart_harmonics=((0.5, 4.5),), resp_rate_hz=0.4, resp_depth=0.011,
+                       drift_ppm=-50.0, dac_rate_hz=1000.0)
+    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=[], oscillation_hz=9.0, lfp_uv=36.0),
+                             blocks=[BlockSpec(1.0, 18.0, ramp_s=1.25)], seed=seed)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        est = TemplateSubtraction()
+        out = est.fit_transform(rec.data, fs=rec.fs)
+    block = est.report_["blocks"][0]
+    assert block["dac_ticks_per_cycle"] == 100 and 2 in block["heartbeat_harmonics_modelled"]
+    seg = slice(int(2.5 * rec.fs), int(17.5 * rec.fs))
+    fr, pr = signal.welch((out - rec.neural)[:, seg], fs=rec.fs, nperseg=int(5 * rec.fs))
+    _, pn = signal.welch(rec.neural[:, seg], fs=rec.fs, nperseg=int(5 * rec.fs))
+    at = np.abs(fr - (20.0 - 2 * block["heart_rate_hz"])) <= 0.4
+    ratio = pr[:, at].sum(axis=1) / pn[:, at].sum(axis=1)
+    assert ratio.max() < 0.05, ratio
 
 
 def test_the_carried_harmonics_slope_is_their_derivative():

@@ -615,7 +615,10 @@ class CycleEstimator(ArtifactEstimator):
                           first=first, band=tuple(getattr(self, "heart_band_hz", HEART_HZ))) \
             if getattr(self, "model_pulse", False) else None
         if pulse is not None:
-            raw = raw - pulse.parts(raw, rate, segments=True)[0]
+            # as the fit saw them: each part of the cycle sees the harmonics through its own weights, and that
+            # pattern puts their images at the stimulation frequency less each one, where the sideband test is
+            # fooled (f +- (f - h) is h and 2 f - h, the harmonic on the waveform's offset and on its 2nd harmonic)
+            raw = raw - pulse.as_held(raw, rate, moved, first, per_cycle)
         response = design_gain_response(raw, rate, max_hz=self.tracking_hz, follow_hz=follow_below(f))
         # the gain filter restores what segments and the interpolation between them take off what it passes:
         # these segments' own share (5 Hz: 1.05 of a 2 Hz heartbeat where a segment's plain mean gives 0.99)
