@@ -527,9 +527,15 @@ def _smooth_derivative(tmpl: np.ndarray, max_harmonic: int = 20) -> np.ndarray:
     return np.fft.irfft(np.where(keep, 2j * np.pi * k * c, 0.0), n=tmpl.size)
 
 
+#: the harmonics up to this frequency (Hz; at least the 2nd) judge whether a phase shift is followed
+#: (:func:`phase_helps`; this project's choice: the LFP bands the project scores reach 80 Hz)
+_PHASE_JUDGE_HZ = 100.0
+
+
 def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float, per_cycle: int,
                 gain: np.ndarray, eta: np.ndarray, response: "GainResponse", first: int | None = None) -> np.ndarray:
-    """Per channel, whether following the phase shift leaves less artifact beside the fundamental.
+    """Per channel, whether following the phase shift leaves less artifact beside the fundamental, and not
+    more beside its harmonics.
 
     An amplitude that changes within a segment also moves the fitted shift
     (at the heartbeat's lines, with no phase modulation at all), and the
@@ -537,7 +543,14 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
     ways, the mean cycle times the filtered gain with and without the
     filtered shift, and the shift is kept where it takes at least half off
     the residual power within 0.3-3 Hz of the fundamental (high-passed at
-    ``f / 2``).
+    ``f / 2``), and where, beside the harmonics up to :data:`_PHASE_JUDGE_HZ`,
+    the power it takes off and puts on, each over the floor there (the
+    residual's median within 0.3-3 Hz of each), sum to no more than nothing.
+    A neural rhythm beside the fundamental is one line, which the gain's half
+    of it turns into a phase modulation's pair of lines there (a single
+    channel cannot tell them apart); a phase modulation of the artifact
+    shows beside every harmonic ``h`` times the harmonic's size, the rhythm
+    beside none, and following it puts it there.
     """
     n_bins = max(8, int(round(fs / f)))
     b = np.floor(fractional_part(u) * n_bins).astype(np.int64)
@@ -546,6 +559,8 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
     sos = phase_highpass(f, fs)
     freqs = np.fft.rfftfreq(u.size, 1.0 / fs)
     near = (np.abs(freqs - f) >= 0.3) & (np.abs(freqs - f) <= 3.0)
+    beside = [(np.abs(freqs - k * f) >= 0.3) & (np.abs(freqs - k * f) <= 3.0)
+              for k in range(2, max(2, int(_PHASE_JUDGE_HZ // f)) + 1) if k * f + 3.0 < fs / 2]
     keep = np.zeros(x.shape[0], dtype=bool)
     for ch in range(x.shape[0]):
         taps = response.phase_taps(ch)
@@ -561,8 +576,11 @@ def phase_helps(x: np.ndarray, w: np.ndarray, u: np.ndarray, fs: float, f: float
         t_s, d_s = (np.interp(at_u, np.arange(n_bins), v, period=n_bins) for v in (tmpl, deriv))
         r0 = (x[ch] - g * t_s) * (w[ch] > 0)
         r1 = r0 - g * e * d_s * (w[ch] > 0)
-        p0, p1 = (np.sum(np.abs(np.fft.rfft(signal.sosfiltfilt(sos, r)))[near] ** 2) for r in (r0, r1))
-        keep[ch] = p1 < 0.5 * p0
+        s0, s1 = (np.abs(np.fft.rfft(signal.sosfiltfilt(sos, r))) ** 2 for r in (r0, r1))
+        keep[ch] = np.sum(s1[near]) < 0.5 * np.sum(s0[near])
+        if keep[ch] and beside:
+            keep[ch] = sum(np.sum(s1[band] - s0[band]) / max(float(np.median(s0[band])), 1e-300)
+                           for band in beside) <= 0.0
     return keep
 
 
