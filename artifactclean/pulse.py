@@ -288,6 +288,32 @@ class PulseModel:
         reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)
         return np.real(np.einsum("ch,hn->cn", coefs, reg))
 
+    def add_at_samples(self, out: np.ndarray, rate: float, grid: tuple[float, float],
+                       trap: np.ndarray | None = None) -> None:
+        """Add the harmonics (:meth:`at_times`) to the gains ``out`` (n_channels, n) at every sample, in place.
+
+        ``rate`` is the gain sequence's (its harmonics as :meth:`at_times`
+        carries them); with ``trap`` (the block's ramps per sample) the
+        harmonics are added relative to it. ``grid = (t0, step)``: the
+        range's first sample from the block's reference sample, and the
+        spacing (samples) of the grid the harmonics are evaluated on and
+        interpolated from, whole multiples of it from the reference sample
+        (a piece of a block reads the same grid as the whole block).
+        """
+        n = out.shape[1]
+        if not self.harmonics() or n < 2:
+            return
+        t0, step = grid
+        k = np.arange(np.floor(t0 / step) - 1, np.ceil((t0 + n - 1) / step) + 2)
+        at = k * step - t0
+        vals = self.at_times(k * step, rate, n_rows=out.shape[0])
+        if trap is not None:
+            env = trap[np.clip(np.round(at), 0, n - 1).astype(np.int64)]
+            vals = np.where(env > _FOOT, vals / np.where(env > _FOOT, env, 1.0), 0.0)
+        idx = np.arange(n, dtype=np.float64)
+        for ch in range(out.shape[0]):
+            out[ch] += np.interp(idx, at, vals[ch])
+
     def part_pattern(self, times: np.ndarray, part: np.ndarray, rate: float,
                      n_rows: int | None = None) -> np.ndarray | None:
         """What each segment's part of the cycle sees of the harmonics beyond the parts' mean.

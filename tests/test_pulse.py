@@ -439,8 +439,6 @@ def test_the_pulse_is_read_back_at_every_sample_and_alike_in_pieces():
     # the template's gain takes the heartbeat's harmonics at every sample from a grid anchored at the
     # block's reference sample: a piece of the block reads what the whole block reads there, and the
     # grid's interpolation stays within half a per cent of the harmonics' size (its images lie above 200 Hz)
-    from artifactclean.estimators.template import _add_pulse
-
     fs, seg_rate, heart = 30000.0, 30.0, 2.0
     t = np.arange(-60000.0, 600000.0, 300.0)
     track = (t, np.full(t.size, 0.01), 2 * np.pi * heart * t / fs + 0.3 * np.sin(t / fs))
@@ -448,9 +446,9 @@ def test_the_pulse_is_read_back_at_every_sample_and_alike_in_pieces():
                                         [-0.5 * np.exp(0.3j), -0.3 * np.exp(0.6j)]]), 0, track)
     t0, n, step = 1234.0, 90000, fs / (8 * seg_rate)
     whole = np.zeros((2, n))
-    _add_pulse(whole, model, seg_rate, (t0, step), None)
+    model.add_at_samples(whole, seg_rate, (t0, step))
     piece = np.zeros((2, 20000))
-    _add_pulse(piece, model, seg_rate, (t0 + 31000, step), None)
+    model.add_at_samples(piece, seg_rate, (t0 + 31000, step))
     np.testing.assert_allclose(piece, whole[:, 31000:51000], rtol=0, atol=1e-15)
     exact = model.at_times(t0 + np.arange(n), seg_rate)
     assert np.abs(whole - exact).max() < 5e-3 * np.abs(exact).max()  # (2 pi 6 Hz / 240)^2 / 8 of the 3rd
@@ -820,7 +818,9 @@ def test_a_sinusoidal_heartbeat_on_channels_of_one_sign_is_not_modelled_as_a_pul
 def test_row_estimators_model_the_pulse_in_their_envelope(method):
     # regression and PCA carry the modulation in the lead harmonic's envelope per cycle: with the
     # pulse's harmonics modelled there, 20 Hz seed 1 went 0.106 -> 0.077 (regression) and
-    # 0.103 -> 0.073 (PCA)
+    # 0.103 -> 0.073 (PCA). Read between the rows' centres, the harmonics put their images at 20 less
+    # each (14 and 16 Hz), whose sidebands at 4-6 and 34-36 Hz stood 1.3-1.6x the neural power there:
+    # 0.070 and 0.066 (issue goal: 0.05); added at every sample from the track, 0.038 and 0.031
     from artifactclean.estimators import make_estimator
 
     rec = simulate_recording(20.0, artifact=SCENARIOS["modulated_20hz"][0], neural=NeuralSpec(units=locked_units()),
@@ -830,4 +830,4 @@ def test_row_estimators_model_the_pulse_in_their_envelope(method):
         away = {on: max(score_cleaning(rec, make_estimator(method, model_pulse=on).fit_transform(
             rec.data, fs=rec.fs))["lfp_error_away"]) for on in (True, False)}
     assert away[True] < 0.85 * away[False]
-    assert away[True] < 0.09
+    assert away[True] <= 0.05, away

@@ -1073,7 +1073,17 @@ class RowModelEstimator(CycleEstimator):
             if it == passes - 1 and not artifact:
                 return None, grid, censor, n_out, chosen
             if relative:
-                gain = grid.at_samples(rel) * trap
+                if harm is not None and model.track is not None:
+                    # the heartbeat's harmonics at every sample from the track, not between the rows' centres:
+                    # a line between them puts their images at f less each (20 - 6 Hz), whose sidebands are 6
+                    # and 34 Hz (1.3-1.6x the neural power there at 20 Hz); the rows keep the rest
+                    inside = env >= _FOOT
+                    rel = np.where(inside, rel - harm[1] / np.where(inside, env, 1.0), rel)
+                    gain = grid.at_samples(rel)
+                    model.add_at_samples(gain, f, (offset - blk.ref_sample, fs / (8.0 * f)), trap)
+                    gain *= trap
+                else:
+                    gain = grid.at_samples(rel) * trap
                 art = grid.scatter(rows, xb, gain) * gain
             else:
                 art = grid.scatter(rows, xb)

@@ -298,27 +298,6 @@ def _rail_samples(xb: np.ndarray, wb: np.ndarray, censored: np.ndarray):
     return at, hi[at], xb[at].copy()
 
 
-def _add_pulse(out, model, seg_rate, grid, trap):
-    """Add the heartbeat's harmonics (:meth:`artifactclean.pulse.PulseModel.at_times`) to the gains ``out``
-    (n_channels, n) at every sample, relative to ``trap`` when given. ``grid = (t0, step)``: the range's
-    first sample from the block's reference sample, and the spacing (samples) of the grid the harmonics are
-    evaluated on and interpolated from, whole multiples of it from the reference sample (a piece of a block
-    reads the same grid as the whole block)."""
-    n = out.shape[1]
-    if not model.harmonics() or n < 2:
-        return
-    t0, step = grid
-    k = np.arange(np.floor(t0 / step) - 1, np.ceil((t0 + n - 1) / step) + 2)
-    at = k * step - t0
-    vals = model.at_times(k * step, seg_rate, n_rows=out.shape[0])
-    if trap is not None:
-        env = trap[np.clip(np.round(at), 0, n - 1).astype(np.int64)]
-        vals = np.where(env > _FOOT, vals / np.where(env > _FOOT, env, 1.0), 0.0)
-    idx = np.arange(n, dtype=np.float64)
-    for ch in range(out.shape[0]):
-        out[ch] += np.interp(idx, at, vals[ch])
-
-
 class TemplateSubtraction(CycleEstimator):
     """Moving-window template subtraction with phase alignment and amplitude tracking.
 
@@ -931,7 +910,7 @@ class TemplateSubtraction(CycleEstimator):
             g = g - part
         out = lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
         if fine:
-            _add_pulse(out, response.pulse, seg_rate, pulse_grid, trap)
+            response.pulse.add_at_samples(out, seg_rate, pulse_grid, trap)
         if trap is not None:
             out *= trap
         return out
