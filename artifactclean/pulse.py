@@ -288,12 +288,32 @@ class PulseModel:
         reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)
         return np.real(np.einsum("ch,hn->cn", coefs, reg))
 
+    def held_beyond(self, times: np.ndarray, rate: float, n_rows: int | None = None) -> np.ndarray:
+        """What means over elements of a sequence at ``rate`` a second hold of the harmonics it does not carry.
+
+        The harmonics at or above 0.45 ``rate`` (:meth:`relative` leaves them
+        out), at positions ``times`` from the :attr:`track`, each times
+        ``sinc(f / rate)`` (a boxcar's Fourier transform) and sampled there:
+        rows of one cycle at 10 Hz hold a 6 Hz harmonic at half its size,
+        folded onto 4 Hz, where a 2 Hz pulse's 2nd harmonic is.
+        """
+        t, a, p = self.track
+        times = np.asarray(times, dtype=np.float64)
+        n_rows = self.coefs.shape[0] if n_rows is None else n_rows
+        rows = np.minimum(np.arange(n_rows), self.coefs.shape[0] - 1)
+        hs = np.arange(2, self.coefs.shape[1] + 2)
+        beyond = self.coefs[rows] * ((hs * self.heart_hz >= 0.45 * rate) * np.sinc(hs * self.heart_hz / rate))[None, :]
+        reg = _harmonic_regressors(np.interp(times, t, a), np.interp(times, t, p), hs)
+        return np.real(np.einsum("ch,hn->cn", beyond, reg))
+
     def add_at_samples(self, out: np.ndarray, rate: float, grid: tuple[float, float],
                        trap: np.ndarray | None = None) -> None:
         """Add the harmonics (:meth:`at_times`) to the gains ``out`` (n_channels, n) at every sample, in place.
 
         ``rate`` is the gain sequence's (its harmonics as :meth:`at_times`
-        carries them); with ``trap`` (the block's ramps per sample) the
+        carries them; ``numpy.inf``: every harmonic the model has, for a
+        sequence that lost those it does not carry as it held them,
+        :meth:`held_beyond`); with ``trap`` (the block's ramps per sample) the
         harmonics are added relative to it. ``grid = (t0, step)``: the
         range's first sample from the block's reference sample, and the
         spacing (samples) of the grid the harmonics are evaluated on and

@@ -815,19 +815,22 @@ def test_a_sinusoidal_heartbeat_on_channels_of_one_sign_is_not_modelled_as_a_pul
 
 
 @pytest.mark.parametrize("method", ["regression", "pca"])
-def test_row_estimators_model_the_pulse_in_their_envelope(method):
+@pytest.mark.parametrize("freq, bound", [(20.0, 0.05), (10.0, 0.12)])
+def test_row_estimators_model_the_pulse_in_their_envelope(method, freq, bound):
     # regression and PCA carry the modulation in the lead harmonic's envelope per cycle: with the
     # pulse's harmonics modelled there, 20 Hz seed 1 went 0.106 -> 0.077 (regression) and
     # 0.103 -> 0.073 (PCA). Read between the rows' centres, the harmonics put their images at 20 less
     # each (14 and 16 Hz), whose sidebands at 4-6 and 34-36 Hz stood 1.3-1.6x the neural power there:
-    # 0.070 and 0.066 (issue goal: 0.05); added at every sample from the track, 0.038 and 0.031
+    # 0.070 and 0.066 (issue goal: 0.05); added at every sample from the track, 0.038 and 0.031. At 10 Hz
+    # rows of one cycle fold the 6 Hz harmonic onto the 4 Hz one (0.235 for both); what they hold of it
+    # taken off with the rest (PulseModel.held_beyond) and the harmonic put back at every sample, 0.076
     from artifactclean.estimators import make_estimator
 
-    rec = simulate_recording(20.0, artifact=SCENARIOS["modulated_20hz"][0], neural=NeuralSpec(units=locked_units()),
-                             seed=1)
+    art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=freq)
+    rec = simulate_recording(20.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=1)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         away = {on: max(score_cleaning(rec, make_estimator(method, model_pulse=on).fit_transform(
             rec.data, fs=rec.fs))["lfp_error_away"]) for on in (True, False)}
     assert away[True] < 0.85 * away[False]
-    assert away[True] <= 0.05, away
+    assert away[True] <= bound, away

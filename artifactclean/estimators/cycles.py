@@ -1055,7 +1055,12 @@ class RowModelEstimator(CycleEstimator):
             harm = None
             if model is not None:
                 # the heartbeat's phase from the block's track, at the rows' centres (pulse.PulseModel)
-                harm = model.relative(None, f, env, n_rows=xb.shape[0], times=offset - blk.ref_sample + grid.row_centres)
+                times = offset - blk.ref_sample + grid.row_centres
+                harm = model.relative(None, f, env, n_rows=xb.shape[0], times=times)
+                if relative and model.track is not None:
+                    # harmonics beyond what rows of a cycle carry fold onto those they do (6 onto 4 Hz at 10
+                    # Hz): what the rows hold of them comes off with the rest, and they come back at every sample
+                    harm = (harm[0] + model.held_beyond(times, f, n_rows=xb.shape[0]), harm[1])
             for ch in range(xb.shape[0]):
                 fast = slow if response is None else response.taps(min(ch, response.response.shape[0] - 1), f)
                 cen = None if censor is None else censor[ch]
@@ -1074,13 +1079,13 @@ class RowModelEstimator(CycleEstimator):
                 return None, grid, censor, n_out, chosen
             if relative:
                 if harm is not None and model.track is not None:
-                    # the heartbeat's harmonics at every sample from the track, not between the rows' centres:
-                    # a line between them puts their images at f less each (20 - 6 Hz), whose sidebands are 6
-                    # and 34 Hz (1.3-1.6x the neural power there at 20 Hz); the rows keep the rest
+                    # the heartbeat's harmonics at every sample from the track (all of them: np.inf), not between
+                    # the rows' centres: a line between them puts their images at f less each (20 - 6 Hz), whose
+                    # sidebands are 6 and 34 Hz (1.3-1.6x the neural power there at 20 Hz); the rows keep the rest
                     inside = env >= _FOOT
                     rel = np.where(inside, rel - harm[1] / np.where(inside, env, 1.0), rel)
                     gain = grid.at_samples(rel)
-                    model.add_at_samples(gain, f, (offset - blk.ref_sample, fs / (8.0 * f)), trap)
+                    model.add_at_samples(gain, np.inf, (offset - blk.ref_sample, fs / (8.0 * f)), trap)
                     gain *= trap
                 else:
                     gain = grid.at_samples(rel) * trap
