@@ -373,14 +373,22 @@ class PulseModel:
         ref = min(max(self.ref, 0), gain.shape[0] - 1)
         levels = self._levels(gain, envelope, scale)
         if self.weights is not None and (self.track is None or times is None):
-            # the fundamental pooled over channels, read as :meth:`relative` reads the reference's
-            dev = relative_deviation(gain, levels[:, None], envelope)
-            out = self._evaluate(*fundamental(dev, rate, self.heart_hz, self.weights), rate, gain.shape[0], slope,
-                                 segments)
+            out = self._evaluate(*self._read(gain, rate, levels, envelope), rate, gain.shape[0], slope, segments)
         else:
             out = self.relative(gain[ref], rate, envelope, float(levels[ref]), n_rows=gain.shape[0], times=times,
                                 slope=slope, segments=segments)
         return tuple(a * levels[:, None] for a in out)
+
+    def _read(self, gain: np.ndarray, rate: float, levels: np.ndarray,
+              envelope: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """The fundamental's amplitude and phase read from gain sequences at their plateau ``levels``: pooled over
+        the channels of :attr:`weights`, else the reference's, as :meth:`relative` reads it."""
+        if self.weights is not None:
+            return fundamental(relative_deviation(gain, levels[:, None], envelope), rate, self.heart_hz, self.weights)
+        if self.ref < 0:
+            raise ValueError("the pulse model needs the reference channel's gain, or a track and times")
+        return _amplitude_phase(relative_deviation(gain[self.ref], float(levels[self.ref]), envelope), rate,
+                                self.heart_hz)
 
     @staticmethod
     def _levels(gain: np.ndarray, envelope: np.ndarray | None, scale) -> np.ndarray:
@@ -409,15 +417,8 @@ class PulseModel:
         if self.seen_by_part is None:
             return self.parts(gain, rate, segments=True)[0]
         levels = self._levels(gain, None, None)
-        if self.weights is not None:
-            amp, ph = fundamental(relative_deviation(gain, levels[:, None]), rate, self.heart_hz, self.weights)
-        else:
-            if self.ref < 0:
-                raise ValueError("the pulse model needs the reference channel's gain")
-            amp, ph = _amplitude_phase(relative_deviation(gain[self.ref], float(levels[self.ref])), rate,
-                                       self.heart_hz)
         hs, coefs = self._carried(rate, gain.shape[0])
-        reg = _harmonic_regressors(amp, ph, hs)
+        reg = _harmonic_regressors(*self._read(gain, rate, levels), hs)
         shift = np.atleast_2d(shift)
         out = np.empty_like(gain, dtype=np.float64)
         for c in range(gain.shape[0]):
