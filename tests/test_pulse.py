@@ -284,7 +284,8 @@ def test_the_parts_images_of_a_harmonic_come_off_the_raw_gains(seed):
     u = t * f * (1 + 40e-6) + 0.1234
     cyc = np.sin(2 * np.pi * u) + 0.3 * np.sin(4 * np.pi * u + 1.0) + 0.15 * np.sin(6 * np.pi * u + 0.4)
     phi = 2 * np.pi * heart * (t - 0.03 / (2 * np.pi * 0.2) * np.cos(2 * np.pi * 0.2 * t)) + 1.0
-    x = 1000 * np.array([1.0, -0.7, 0.45])[:, None] * ((1 + 0.02 * (np.cos(phi) + 0.5 * np.cos(2 * phi + 0.3))) * cyc)[None]
+    pulse = np.cos(phi) + 0.5 * np.cos(2 * phi + 0.3)
+    x = 1000 * np.array([1.0, -0.7, 0.45])[:, None] * ((1 + 0.02 * pulse) * cyc)[None]
     x += 0.5 * rng.standard_normal(x.shape)
     gain, rate, shift, cycle = segment_gain(x, np.ones_like(x), u, fs, f, per_cycle, return_shift=True,
                                             return_cycle=True)

@@ -653,7 +653,7 @@ class CycleEstimator(ArtifactEstimator):
         response.phase[:, low] = 0.0
 
         def helps(rows):
-            # kept only where following it takes artifact off beside the fundamental
+            # kept only where following it takes artifact off beside the fundamental and puts none beside the harmonics
             at = slice(rows[0], rows[-1] + 1)
             return phase_helps(xd[at], wd[at], ud, fsd, f, per_cycle, raw[at], eta[at], response.rows(rows),
                                first=first)
