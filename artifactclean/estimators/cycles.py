@@ -21,8 +21,10 @@ import numpy as np
 from scipy import ndimage, signal
 
 from .._numeric import fractional_part
-from ..clipping import find_clipped
+from ..clipping import find_clipped, find_rails
 from ..parallel import channel_groups
+from ..resampling import upsample_railed, upsampled_block, upsampled_reader, upsampling_factor
+from ..resampling import _HALF_TAPS as _UP_REACH
 from ..stimulation import ramp_level
 from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, \
     relative_deviation
@@ -313,6 +315,9 @@ class CycleEstimator(ArtifactEstimator):
     ``track_amplitude``, ``tracking_hz``.
     """
 
+    #: the upsampling factor of each block (resampling.py), from :meth:`prepare`: pieces are sized from it
+    _prepared_attrs = ("_factors",)
+
     def work_ranges(self, model, fs: float) -> list[tuple[int, int]]:
         """Sample ranges cleaned independently: each block plus its margins.
 
@@ -340,8 +345,12 @@ class CycleEstimator(ArtifactEstimator):
         extra = np.zeros(x.shape, dtype=bool)
         report = dict(blocks=[])
         for s, e, b in ranges:
-            u = model.cycles(b, s, e)
-            a, info, cen = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
+            up = upsampling_factor(b.freq_hz, fs)
+            if up > 1:
+                a, info, cen = self._upsampled_block(x, lost, s, e, b, fs, up)
+            else:
+                u = model.cycles(b, s, e)
+                a, info, cen = self._block(x[:, s:e], (~lost[:, s:e]).astype(np.float64), u, fs, b, s)
             if whole and a.dtype == np.float64 and a.shape == x.shape and not np.may_share_memory(a, x):
                 art = a
             else:
@@ -352,6 +361,28 @@ class CycleEstimator(ArtifactEstimator):
                 extra[:, s:e] |= cen
             report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))
         return art, report, extra
+
+    def _upsampled_block(self, x, lost, s, e, blk, fs, up):
+        """:meth:`_block` of range ``s..e`` on a copy upsampled ``up`` times (few samples per cycle), read back at
+        the original samples (:mod:`artifactclean.resampling`)."""
+        n = x.shape[1]
+        lo, hi = max(0, s - _UP_REACH), min(n, e + _UP_REACH + 1)
+        # the data a prepared plan read (upsampled_reader), so that a plan made here is the same
+        xu = upsample_railed(x[:, lo:hi], up)[:, (s - lo) * up:(e - lo) * up]
+        keep = ~lost[:, s:e]
+        # a sample between two originals is usable where both are
+        wu = np.repeat(keep & np.concatenate((keep[:, 1:], keep[:, -1:]), axis=1), up, axis=1)
+        wu[:, ::up] = keep
+        # and not where the interpolation went beyond a rail (held there by upsample_railed)
+        top, bottom = find_rails(x[:, lo:hi])
+        wu &= (xu < top[:, None]) & (xu > bottom[:, None])
+        bu = upsampled_block(blk, up)
+        u = (np.arange(s * up, e * up, dtype=np.float64) - bu.ref_sample) * (bu.freq_hz / (fs * up)) \
+            + bu.phase_ref / (2 * np.pi)
+        a, info, cen = self._block(xu, wu.astype(np.float64), u, fs * up, bu, s * up)
+        del xu, wu, u
+        info = dict(info, upsampled_by=up)
+        return np.ascontiguousarray(a[:, ::up]), info, None if cen is None else np.ascontiguousarray(cen[:, ::up])
 
     def prepare(self, read, model, fs: float, mapper=map) -> None:
         """Decide, once per block, what must not depend on how a recording is cut.
@@ -370,8 +401,21 @@ class CycleEstimator(ArtifactEstimator):
         ranges = {block_key(b): (s, e) for s, e, b in self.work_ranges(model, fs)}
         blocks = list(model.blocks)
         bounds = [ranges.get(block_key(b), (b.start, b.stop)) for b in blocks]
-        plans = self._make_plans(read, blocks, bounds, fs, mapper)
+        # blocks with few samples per cycle are planned on the upsampled axis they are cleaned on
+        ups = [upsampling_factor(b.freq_hz, fs) for b in blocks]
+        plans: list = [None] * len(blocks)
+        for up in sorted(set(ups)):
+            idx = [i for i, v in enumerate(ups) if v == up]
+            if up == 1:
+                made = self._make_plans(read, [blocks[i] for i in idx], [bounds[i] for i in idx], fs, mapper)
+            else:
+                made = self._make_plans(upsampled_reader(read, up, model.n_samples),
+                                        [upsampled_block(blocks[i], up) for i in idx],
+                                        [(bounds[i][0] * up, bounds[i][1] * up) for i in idx], fs * up, mapper)
+            for i, plan in zip(idx, made):
+                plans[i] = plan
         self._plans = {block_key(b): plan for b, plan in zip(blocks, plans)}
+        self._factors = {block_key(b): up for b, up in zip(blocks, ups)}
 
     def _make_plans(self, read, blocks, bounds, fs, mapper=map) -> list:
         """:class:`BlockPlan` of each block (``bounds``: its work range), the work spread by ``mapper``."""
@@ -462,9 +506,13 @@ class CycleEstimator(ArtifactEstimator):
         """:attr:`memory_per_sample` for ``blk`` after :meth:`prepare`, with or without a DAC grid in its plan."""
         plan = getattr(self, "_plans", None)
         plan = None if plan is None or blk is None else plan.get(block_key(blk))
+        # a block cleaned on an upsampled copy holds `up` samples for each of the piece's, and the copy
+        up = 1 if blk is None else getattr(self, "_factors", {}).get(block_key(blk), 1)
         if plan is None or plan.grid is None or self._memory_with_dac is None:
-            return self.memory_per_sample
-        return self._memory_with_dac
+            a, b = self.memory_per_sample
+        else:
+            a, b = self._memory_with_dac
+        return (a * up + 1, b * up) if up > 1 else (a, b)
 
     #: whether a block with a DAC grid reads the reference channel's data (not only its plan)
     _reads_reference = False
@@ -541,7 +589,9 @@ class CycleEstimator(ArtifactEstimator):
 
         def dac():
             """The DAC grid and the rate of steps no grid explains."""
-            if self.dac != "auto":
+            # on an upsampled copy the interpolated samples between the originals look like ticks at the
+            # original rate (resampling.py): no grid is searched there
+            if self.dac != "auto" or getattr(blk, "upsampled_by", 1) > 1:
                 return None, 0.0
             grid = find_dac_grid(x[ref], cycles, fs, f)
             # a few samples a tick: no single step stands out, their rate and edges do when pooled; and
