@@ -108,3 +108,22 @@ def test_gamma_stimulation_at_scalp_rates_leaves_its_harmonics_within_the_goal(m
     assert info["upsampled_by"] == upsampling_factor(info["freq_hz"], fs) > 1
     assert info.get("dac_ticks_per_cycle") is None
     assert max(_band_ratios(rec, out, 40.0)) <= 2.0  # the issue's goal within +-3 Hz of the harmonics
+
+
+@pytest.mark.parametrize("fs", [500.0, 1000.0])
+def test_survey_says_the_block_is_upsampled_and_finds_no_dac_in_repeating_samples(fs):
+    """`survey` searched for a DAC in the samples themselves, which repeat every cycle or two at these
+    rates: from 1 kHz with two clipped channels it reported 5 updates per cycle that the cleaning
+    (rightly) does not model."""
+    from artifactclean.io import open_recording
+    from artifactclean.io.pipeline import survey_recording
+
+    art = ArtifactSpec(freq_hz=40.0, amplitude_uv=4000.0, heart_depth=0.02, resp_depth=0.01, drift_ppm=40.0,
+                       channel_gains=(1.0, -0.7, 0.45, -1.2), clip_uv=3276.8)
+    rec = simulate_recording(16.0, fs=fs, artifact=art, neural=NeuralSpec(units=[]), seed=2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = survey_recording(open_recording(rec.data, fs=fs))
+    st = res["stimulation"]
+    assert st["upsampled_by"] == upsampling_factor(st["frequency_hz"], fs) > 1
+    assert not st["dac"]["locked"] and st["dac"]["updates_per_cycle"] is None

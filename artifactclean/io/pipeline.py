@@ -33,6 +33,7 @@ from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..estimators.base import check_stim_freq
+from ..resampling import upsampling_factor
 from ..staircase import find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
@@ -643,16 +644,23 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         u = model.cycles(main, a, b)
         amps = 2 * np.abs((x - x.mean(axis=1, keepdims=True)) @ np.exp(-2j * np.pi * u)) / max(b - a, 1)
         strongest = int(np.argmax(amps))
-        grid = find_dac_grid(x[strongest], u, rec.fs, main.freq_hz)
-        steps = step_rate(x[strongest], rec.fs)
-        if grid is None and steps > 50.0:
-            grid = find_dac_period(x[strongest], u, rec.fs, main.freq_hz)
-        free = grid is None and steps > 50.0 and find_dac_clock(x[strongest], u, rec.fs, main.freq_hz)
+        up = upsampling_factor(main.freq_hz, rec.fs)
+        if up > 1:
+            # as the cycle estimators do: at so few samples a cycle the samples themselves repeat like ticks,
+            # and a DAC's steps could not be resolved; its images are harmonics of the cycle (resampling.py)
+            grid, steps, free = None, 0.0, None
+        else:
+            grid = find_dac_grid(x[strongest], u, rec.fs, main.freq_hz)
+            steps = step_rate(x[strongest], rec.fs)
+            if grid is None and steps > 50.0:
+                grid = find_dac_period(x[strongest], u, rec.fs, main.freq_hz)
+            free = grid is None and steps > 50.0 and find_dac_clock(x[strongest], u, rec.fs, main.freq_hz)
         dac = dict(ticks_per_cycle=None if grid is None else grid.ticks_per_cycle,
                    cycles_per_period=None if grid is None else grid.cycles_per_period,
                    updates_per_cycle=float(free.ticks_per_cycle) if free else None,
                    steps_per_s=steps, locked=grid is not None)
     else:
+        up = 1
         dac = dict(ticks_per_cycle=None, cycles_per_period=None, updates_per_cycle=None, steps_per_s=0.0, locked=False)
     unlocked = not dac["locked"] and dac["updates_per_cycle"] is None and dac["steps_per_s"] > 50.0
     frac = scan.n_at_rails / max(scan.n_samples, 1)
@@ -677,7 +685,7 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         duration_s=rec.n_samples / rec.fs,
         stimulation=dict(frequency_hz=None if main is None else main.freq_hz,
                          nominal_freq_hz=stim_freq, reference=model.reference, blocks=model.block_table(),
-                         dac=dac),
+                         dac=dac, upsampled_by=up),
         channels=chans,
         events=events,
     )
