@@ -30,12 +30,14 @@ from scipy import signal
 __all__ = ["MIN_SAMPLES_PER_CYCLE", "upsampling_factor", "upsample", "upsample_railed", "upsampled_reader",
            "upsampled_block"]
 
-#: a block with fewer samples per stimulation cycle than this is cleaned on an upsampled copy (this project's
-#: choice: 40 Hz from 5 kHz, 125 samples a cycle, left the harmonics' bands at 0.5x the neural power, 10 Hz
-#: from 1 kHz 0.2x; 40 Hz from 2.5-3.6 kHz, 62-90 samples, 0.8-1.3x with the template, 3-10x with regression;
-#: 20 and 40 Hz from 1-2 kHz, 25-50 samples, 2.8-48x. Under 100 so that 10 Hz from 1 kHz, measured a few ppm
-#: fast, stays as it is)
-MIN_SAMPLES_PER_CYCLE = 96
+#: a block with fewer samples per stimulation cycle than this is cleaned on an upsampled copy. The
+#: interpolations lose about (pi h / samples a cycle)**2 / 6 of harmonic h each, so what matters is the highest
+#: harmonic against the samples a cycle: the same trace at 30 kHz and decimated (benchmarks/low_rates.py) left
+#: within 3 Hz of the harmonics 0.45 / 0.82x the neural power at 20 Hz from 30 / 2 kHz (100 samples a cycle,
+#: regression 0.64 / 1.25x), 0.62 / 1.58x at 10 Hz from 1 kHz with regression, 0.78 / 48x at 40 Hz from
+#: 1 kHz (25 samples) with the template. This project's choice: under 200, so that 5 Hz from 1 kHz, measured
+#: a few ppm fast, stays as it is (0.62 / 0.64x)
+MIN_SAMPLES_PER_CYCLE = 190
 #: samples per cycle the upsampled copy reaches at least (this project's choice: 200 at 40 Hz from 1 kHz gave
 #: the harmonics' bands of a 30 kHz recording, 0.9x; 400 no better)
 TARGET_SAMPLES_PER_CYCLE = 200

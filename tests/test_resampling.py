@@ -14,7 +14,8 @@ from artifactclean.synthetic import ArtifactSpec, NeuralSpec, simulate_recording
 
 def test_the_factor_follows_the_samples_per_cycle():
     assert upsampling_factor(40.0, 30000.0) == 1  # 750 samples a cycle
-    assert upsampling_factor(10.0004, 1000.0) == 1  # 100 a cycle, a few ppm fast: as it is
+    assert upsampling_factor(5.0002, 1000.0) == 1  # 200 a cycle, a few ppm fast: as it is
+    assert upsampling_factor(10.0, 1000.0) == 2  # 100 -> 200
     assert upsampling_factor(40.0, 1000.0) == 8  # 25 -> 200
     assert upsampling_factor(40.0, 500.0) == 16
     assert upsampling_factor(40.0, 2500.0) == 4  # 62.5 -> 250
