@@ -244,8 +244,9 @@ def _print_survey(res: dict) -> None:
     elif dac.get("steps_per_s", 0) > 50:
         print(f"DAC staircase: {dac['steps_per_s']:.0f} steps/s, not locked to the cycle (not modelled)")
     if st.get("upsampled_by", 1) > 1:
-        print(f"{res['sampling_rate_hz'] / f:.1f} samples per cycle: the cycle estimators clean on a copy upsampled "
-              f"{st['upsampled_by']}x (no DAC staircase is searched; its images are harmonics of the cycle)")
+        print(f"{res['sampling_rate_hz'] / f:.1f} samples per cycle: the template cleans on a copy upsampled "
+              f"{st['upsampled_by']}x, regression and PCA on one of 400 a cycle (no DAC staircase is searched; its "
+              "images are harmonics of the cycle)")
     print(f"\n{'kind':<7} {'start s':>9} {'stop s':>9} {'ramp up s':>10} {'ramp down s':>12} {'ramps':>7} {'freq Hz':>12} "
           f"{'drift ppm':>10} {'amplitude uV':>13}")
     for b in st["blocks"]:

@@ -27,7 +27,7 @@ import dataclasses
 import numpy as np
 from scipy import signal
 
-__all__ = ["MIN_SAMPLES_PER_CYCLE", "upsampling_factor", "upsample", "upsample_railed", "upsampled_reader",
+__all__ = ["MIN_SAMPLES_PER_CYCLE", "ROW_SAMPLES_PER_CYCLE", "upsampling_factor", "upsample", "upsample_railed", "upsampled_reader",
            "upsampled_block"]
 
 #: a block with fewer samples per stimulation cycle than this is cleaned on an upsampled copy. The
@@ -41,13 +41,18 @@ MIN_SAMPLES_PER_CYCLE = 190
 #: samples per cycle the upsampled copy reaches at least (this project's choice: 200 at 40 Hz from 1 kHz gave
 #: the harmonics' bands of a 30 kHz recording, 0.9x; 400 no better)
 TARGET_SAMPLES_PER_CYCLE = 200
+#: the same for the row estimators (regression, PCA), which fit every harmonic of a row and need twice as many:
+#: 10 Hz from 2 kHz (200 samples a cycle) left 1.07 (regression) and 0.72x (PCA) where 30 kHz left 0.62 and
+#: 0.28x, upsampled to 400 0.62 and 0.28x (this project's choice)
+ROW_SAMPLES_PER_CYCLE = (390, 400)
 #: original samples on each side the interpolator reads, and its Kaiser window's beta: within 2e-5 of the
 #: exact band-limited interpolation up to 0.9 of the Nyquist frequency (checked against scipy.signal.resample)
 _HALF_TAPS = 32
 _KAISER_BETA = 9.0
 
 
-def upsampling_factor(freq_hz: float, fs: float) -> int:
+def upsampling_factor(freq_hz: float, fs: float, *, least: float = MIN_SAMPLES_PER_CYCLE,
+                      target: float = TARGET_SAMPLES_PER_CYCLE) -> int:
     """Integer factor a block at ``freq_hz`` sampled at ``fs`` is upsampled by (1: not upsampled).
 
     Parameters
@@ -56,17 +61,20 @@ def upsampling_factor(freq_hz: float, fs: float) -> int:
         Stimulation frequency (Hz).
     fs : float
         Sampling rate (Hz).
+    least, target : float
+        Samples per cycle under which a block is upsampled, and how many the
+        copy reaches at least (the estimator's own; the template's by default).
 
     Returns
     -------
     int
-        1 at :data:`MIN_SAMPLES_PER_CYCLE` samples per cycle or more, else the
-        smallest factor that gives :data:`TARGET_SAMPLES_PER_CYCLE`.
+        1 at ``least`` samples per cycle or more, else the smallest factor
+        that gives ``target``.
     """
     per_cycle = fs / freq_hz
-    if per_cycle >= MIN_SAMPLES_PER_CYCLE:
+    if per_cycle >= least:
         return 1
-    return int(np.ceil(TARGET_SAMPLES_PER_CYCLE / per_cycle))
+    return int(np.ceil(target / per_cycle))
 
 
 def _kernel(factor: int) -> np.ndarray:

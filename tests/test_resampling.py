@@ -19,6 +19,9 @@ def test_the_factor_follows_the_samples_per_cycle():
     assert upsampling_factor(40.0, 1000.0) == 8  # 25 -> 200
     assert upsampling_factor(40.0, 500.0) == 16
     assert upsampling_factor(40.0, 2500.0) == 4  # 62.5 -> 250
+    # regression and PCA fit every harmonic of a row: they need twice as many
+    assert make_estimator("regression")._upsampling(10.0, 2000.0) == 2
+    assert make_estimator("template")._upsampling(10.0, 2000.0) == 1
 
 
 def test_upsampling_keeps_the_samples_and_matches_the_fourier_interpolation(rng):
@@ -106,7 +109,7 @@ def test_gamma_stimulation_at_scalp_rates_leaves_its_harmonics_within_the_goal(m
         warnings.simplefilter("ignore")
         out = est.fit_transform(rec.data, fs=fs)
     info = est.report_["blocks"][0]
-    assert info["upsampled_by"] == upsampling_factor(info["freq_hz"], fs) > 1
+    assert info["upsampled_by"] == est._upsampling(info["freq_hz"], fs) > 1
     assert info.get("dac_ticks_per_cycle") is None
     assert max(_band_ratios(rec, out, 40.0)) <= 2.0  # the goal within +-3 Hz of the harmonics
 

@@ -23,7 +23,8 @@ from scipy import ndimage, signal
 from .._numeric import fractional_part
 from ..clipping import find_clipped, find_rails
 from ..parallel import channel_groups
-from ..resampling import upsample_railed, upsampled_block, upsampled_reader, upsampling_factor
+from ..resampling import MIN_SAMPLES_PER_CYCLE, ROW_SAMPLES_PER_CYCLE, TARGET_SAMPLES_PER_CYCLE, \
+    upsample_railed, upsampled_block, upsampled_reader, upsampling_factor
 from ..resampling import _HALF_TAPS as _UP_REACH
 from ..stimulation import ramp_level
 from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harmonic_phase, join_tracks, \
@@ -345,7 +346,7 @@ class CycleEstimator(ArtifactEstimator):
         extra = np.zeros(x.shape, dtype=bool)
         report = dict(blocks=[])
         for s, e, b in ranges:
-            up = upsampling_factor(b.freq_hz, fs)
+            up = self._upsampling(b.freq_hz, fs)
             if up > 1:
                 a, info, cen = self._upsampled_block(x, lost, s, e, b, fs, up)
             else:
@@ -361,6 +362,14 @@ class CycleEstimator(ArtifactEstimator):
                 extra[:, s:e] |= cen
             report["blocks"].append(dict(start=s, stop=e, kind=b.kind, **info))
         return art, report, extra
+
+    #: samples per cycle under which a block is cleaned on an upsampled copy, and how many the copy reaches
+    _samples_per_cycle = (MIN_SAMPLES_PER_CYCLE, TARGET_SAMPLES_PER_CYCLE)
+
+    def _upsampling(self, freq_hz: float, fs: float) -> int:
+        """The factor a block at ``freq_hz`` is upsampled by (:func:`artifactclean.resampling.upsampling_factor`)."""
+        least, target = self._samples_per_cycle
+        return upsampling_factor(freq_hz, fs, least=least, target=target)
 
     def _upsampled_block(self, x, lost, s, e, blk, fs, up):
         """:meth:`_block` of range ``s..e`` on a copy upsampled ``up`` times (few samples per cycle), read back at
@@ -402,7 +411,7 @@ class CycleEstimator(ArtifactEstimator):
         blocks = list(model.blocks)
         bounds = [ranges.get(block_key(b), (b.start, b.stop)) for b in blocks]
         # blocks with few samples per cycle are planned on the upsampled axis they are cleaned on
-        ups = [upsampling_factor(b.freq_hz, fs) for b in blocks]
+        ups = [self._upsampling(b.freq_hz, fs) for b in blocks]
         plans: list = [None] * len(blocks)
         for up in sorted(set(ups)):
             idx = [i for i, v in enumerate(ups) if v == up]
@@ -1013,6 +1022,8 @@ class RowModelEstimator(CycleEstimator):
     envelope per row, the two row filters and the row rate; it returns the
     modelled rows and a dict of what it chose.
     """
+
+    _samples_per_cycle = ROW_SAMPLES_PER_CYCLE
 
     #: channels whose plateau stretch is read at once for :meth:`_decide` (memory)
     _DECIDE_CHANNELS = 8

@@ -646,7 +646,7 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         strongest = int(np.argmax(amps))
         up = upsampling_factor(main.freq_hz, rec.fs)
         if up > 1:
-            # as the cycle estimators do: at so few samples a cycle the samples themselves repeat like ticks,
+            # as the template (the default) does: at so few samples a cycle the samples themselves repeat like ticks,
             # and a DAC's steps could not be resolved; its images are harmonics of the cycle (resampling.py)
             grid, steps, free = None, 0.0, None
         else:
