@@ -306,6 +306,7 @@ def _clean(args) -> int:
 
 def _bench(args) -> int:
     from .bench import SYNTHETIC_SCENARIOS, check_bench_out, run_bench, synthetic_cases, write_report
+    from .spikes import check_spike_rate
 
     if args.synthetic == bool(args.input):
         raise ValueError("give either a recording or --synthetic (not both, not neither)")
@@ -326,6 +327,7 @@ def _bench(args) -> int:
 
         prof = _profile_settings(args)
         rec, channels, monitor, stim_freq = _open(args, prof)
+        check_spike_rate(rec.fs, "bench's known spikes")  # before any work on the recording
         channels = list(range(rec.n_channels)) if channels is None else channels
         scan = scan_recording(rec, channels, progress=bar)
         model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)

@@ -23,7 +23,7 @@ import numpy as np
 from scipy import special
 
 from .clipping import find_rails
-from .spikes import detect_spikes, match_spikes, noise_sigma, spike_band
+from .spikes import check_spike_rate, detect_spikes, match_spikes, noise_sigma, spike_band
 from .synthetic import spike_waveform
 
 __all__ = ["BUILTIN_WAVEFORMS", "cleaned_noise", "InjectedSpikes", "inject_spikes", "learn_waveform", "detection_efficiency",
@@ -134,6 +134,7 @@ def inject_spikes(data: np.ndarray, fs: float, *, phase: np.ndarray, channels=No
     hybrid : ndarray
     truth : InjectedSpikes
     """
+    check_spike_rate(fs, "known spikes")
     x = np.array(data, dtype=np.float64, ndmin=2, copy=True)
     n_ch, n = x.shape
     phase = np.asarray(phase, dtype=np.float64)

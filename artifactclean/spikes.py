@@ -11,7 +11,26 @@ from __future__ import annotations
 import numpy as np
 from scipy import signal
 
-__all__ = ["spike_band", "noise_sigma", "detect_spikes", "match_spikes"]
+__all__ = ["SPIKE_BAND_TOP_HZ", "check_spike_rate", "spike_band", "noise_sigma", "detect_spikes", "match_spikes"]
+
+#: the spike band must reach at least this far below 0.45 fs (where :func:`spike_band` stops) for spikes to be
+#: injected and detected: common practice for spike sorting is a band-pass of 300-3000 Hz or wider
+SPIKE_BAND_TOP_HZ = 3000.0
+
+
+def check_spike_rate(fs: float, what: str = "spikes") -> None:
+    """Raise ValueError naming the rate when ``fs`` leaves no spike band (300 Hz to :data:`SPIKE_BAND_TOP_HZ`).
+
+    Scalp and LFP systems (0.5-5 kHz) record no spikes: a spike lasts about
+    a millisecond, one or two samples there, and recall or phase bias measured
+    on injected spikes would be figures of the interpolation, not of the cleaning.
+    """
+    if not 0.45 * fs >= SPIKE_BAND_TOP_HZ:
+        raise ValueError(
+            f"{what} need a spike band from 300 Hz to at least {SPIKE_BAND_TOP_HZ:g} Hz, a sampling rate of "
+            f"{SPIKE_BAND_TOP_HZ / 0.45:.0f} Hz or more; this recording is sampled at {fs:g} Hz. At such rates only "
+            "the LFP can be judged: clean it and look at its spectrum, or measure the methods on synthetic traces "
+            "of that rate (benchmarks/low_rates.py)")
 
 
 def spike_band(x: np.ndarray, fs: float, *, band: tuple[float, float] = (300.0, 6000.0), axis: int = -1) -> np.ndarray:

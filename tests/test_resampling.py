@@ -131,3 +131,26 @@ def test_survey_says_the_block_is_upsampled_and_finds_no_dac_in_repeating_sample
     st = res["stimulation"]
     assert st["upsampled_by"] == upsampling_factor(st["frequency_hz"], fs) > 1
     assert not st["dac"]["locked"] and st["dac"]["updates_per_cycle"] is None
+
+
+def test_known_spikes_are_refused_where_there_is_no_spike_band(tmp_path):
+    """A 1 kHz recording has no spike band: `bench` injected 1 ms spikes there and ranked the methods on
+    a recall of 0.007; it now says why it cannot, before any work, and writes nothing."""
+    from artifactclean.demo_files import write_brainvision
+    from artifactclean.injection import inject_spikes
+    from artifactclean.spikes import check_spike_rate
+
+    from test_io import cli
+
+    x = np.zeros((2, 5000))
+    with pytest.raises(ValueError, match=r"sampled at 1000 Hz.*LFP"):
+        inject_spikes(x, 1000.0, phase=np.zeros(5000), seed=0)
+    check_spike_rate(6700.0)  # 300 Hz - 3 kHz fits under 0.45 fs
+    with pytest.raises(ValueError, match="6667 Hz or more"):
+        check_spike_rate(6600.0)
+    art = ArtifactSpec(freq_hz=40.0, channel_gains=(1.0, -0.7))
+    rec = simulate_recording(20.0, fs=1000.0, n_channels=2, artifact=art, neural=NeuralSpec(units=[]), seed=4)
+    vhdr = write_brainvision(tmp_path / "eeg", rec.data, 1000.0, resolution_uv=0.5)
+    r = cli("bench", vhdr, "--out", tmp_path / "out", check=False)
+    assert r.returncode != 0 and "sampled at 1000 Hz" in r.stderr
+    assert not (tmp_path / "out" / "results.json").exists()
