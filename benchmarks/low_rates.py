@@ -58,7 +58,7 @@ def main(argv=None) -> list[dict]:
                 est = make_estimator(method)
                 out = est.fit_transform(x, fs=float(rate))
                 figs = [_lfp_figures((out[c] - neural[c])[on], neural[c][on], float(rate), f) for c in range(x.shape[0])]
-                up = max(b.get("upsampled_by", 1) for b in est.report_["blocks"])
+                up = max([b.get("upsampled_by", 1) for b in est.report_.get("blocks", [])], default=1)
                 row = dict(method=method, freq_hz=f, rate_hz=rate, upsampled_by=up,
                            band=max(b for b, _ in figs), away=max(a for _, a in figs))
                 rows.append(row)
