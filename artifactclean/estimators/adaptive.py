@@ -149,6 +149,30 @@ def nlms_filter(refs: np.ndarray, d: np.ndarray, *, step: float = 0.05, eps: flo
     return y, w
 
 
+#: a direction of the monitor's taps is kept when it holds at least this share of their largest direction's
+#: energy (-80 dB; this project's choice: a DAC staircase's images at 1 kHz sit far above it, rounding far below)
+_TAP_FLOOR = 1e-8
+
+
+def _independent(refs: np.ndarray) -> np.ndarray:
+    """The references' independent directions (``refs @ V`` over the eigenvectors of their Gram matrix that hold
+    at least :data:`_TAP_FLOOR` of the largest's energy), the Gram matrix taken over the middle half of the rows:
+    the monitor's steady shape, not the onsets and the padding at a block's edges, which excite other directions
+    for a moment only.
+
+    Delayed copies of a sinusoidal monitor span two dimensions whatever the taps: with a forgetting factor
+    below 1, RLS's inverse correlation grows without bound along the others (the ``windup`` of exponentially
+    weighted RLS; Haykin, Adaptive Filter Theory) and its output diverged, 1e3-1e5 times the artifact. The
+    fit within the kept directions is the same (the filter's output is invariant to a rotation of them).
+    """
+    n = refs.shape[0]
+    inner = refs[n // 4:n - n // 4] if n >= 4 * refs.shape[1] else refs
+    gram = inner.T @ inner
+    val, vec = np.linalg.eigh(gram)
+    keep = val > _TAP_FLOOR * max(val[-1], 1e-300)
+    return np.ascontiguousarray(refs @ vec[:, keep])
+
+
 #: a harmonic of the mean cycle is modelled when its amplitude exceeds 5 times the median harmonic
 #: amplitude (the noise; :func:`~artifactclean.estimators.cycles.waveform_harmonics`) and at least
 #: this fraction of the fundamental's amplitude (common practice: -60 dB)
@@ -180,6 +204,10 @@ class AdaptiveCanceller(CycleEstimator):
     compiled : bool
         Use the numba loops (same numbers as the plain Python ones).
     """
+
+    # filters on the samples themselves, no phase grid: nothing to gain from an upsampled copy, and the monitor
+    # channel is read at the recording's own samples
+    _samples_per_cycle = (0.0, 0.0)
 
     _method_name = "adaptive"
     # tracemalloc peaks of fit_transform, 20 Hz, 1 and 4 channels x 20 s (session 17)
@@ -235,7 +263,7 @@ class AdaptiveCanceller(CycleEstimator):
         if monitor is not None:
             half = int(self.n_taps) // 2
             m = np.pad(monitor, half, mode="edge")
-            return np.stack([m[k:k + monitor.size] for k in range(int(self.n_taps))], axis=1)
+            return _independent(np.stack([m[k:k + monitor.size] for k in range(int(self.n_taps))], axis=1))
         k = np.arange(1, h + 1)
         ph = 2 * np.pi * np.outer(fractional_part(u), k)
         return np.hstack([np.cos(ph), np.sin(ph)])
