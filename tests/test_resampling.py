@@ -204,3 +204,18 @@ def test_a_sinusoidal_monitor_does_not_wind_the_canceller_up(fs):
     assert est.report_["blocks"][0]["reference"] == "monitor"
     left = np.std((y - rec.neural)[:, stim]) / np.std(rec.artifact[:, stim])
     assert np.isfinite(left) and left < 0.12
+
+
+@pytest.mark.parametrize("method", ["template", "regression"])
+def test_two_workers_equal_one_on_an_upsampled_block(method):
+    """With workers the plans are prepared on the upsampled reader and each group's clone subsets them
+    again for its own groups of channels: the same numbers as one worker."""
+    from artifactclean import clean
+
+    art = ArtifactSpec(freq_hz=40.0, channel_gains=(1.0, -0.7, 0.45, -1.2, 0.8), clip_uv=3600.0)
+    rec = simulate_recording(12.0, fs=1000.0, n_channels=5, artifact=art, neural=NeuralSpec(units=[]), seed=7)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        one = clean(rec.data, 1000.0, method=method)
+        two = clean(rec.data, 1000.0, method=method, workers=2)
+    np.testing.assert_array_equal(one, two)
