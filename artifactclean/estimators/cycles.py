@@ -91,6 +91,9 @@ class BlockPlan(NamedTuple):
         Channels whose data judge the samples next to a DAC's tick edges
         (:func:`settle_edges`): ``ref`` alone, or where a channel clips
         ``ref`` and the strongest others, at most :data:`SETTLE_CHANNELS`.
+    level : ndarray or None
+        Each channel's mean over the plan's stretch (its unclipped samples):
+        the block's DC level, taken off before any fit (:func:`level_off`).
     """
 
     ref: int
@@ -100,6 +103,7 @@ class BlockPlan(NamedTuple):
     decided: list | None
     harmonics: int | None = None
     judges: tuple = ()
+    level: np.ndarray | None = None
 
 
 #: channels whose data judge the samples next to a DAC's tick edges (:class:`BlockPlan`, :func:`settle_edges`):
@@ -281,7 +285,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response, decided, harmonics, judges = plan
+    ref, grid, unlocked, response, decided, harmonics, judges, level = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -294,7 +298,68 @@ def _subset_plan(plan, fit: list[int]):
         decided = [decided[i] for i in rows]
     # judges the clone does not see (an estimator that reads no reference data) are left out
     judges = tuple(rows.index(j) for j in judges if j in rows)
-    return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics, judges)
+    return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics, judges,
+                     None if level is None else level[rows])
+
+
+def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | None = None,
+           ref: int | None = None) -> np.ndarray:
+    """Each row's DC level, from its mean cycle (on bins of the stimulation phase ``cycles``).
+
+    An unclipped row's level is the mean of its mean cycle. A clipped row's unclipped samples miss the
+    peaks the rails took (their mean was hundreds of microvolts off for a 4 mV waveform with harmonics,
+    which the fits then saw as an offset: 0.95 x noise in the spike band): its level is the constant of
+    a fit, on the phases none of whose samples is clipped, of a constant plus the mean cycle of the
+    unclipped row ``ref`` (one stimulator: the channels see one waveform at different gains), or where
+    every row clips, plus a harmonic series of ``harmonics`` (at most 5) terms.
+    """
+    x = np.atleast_2d(x)
+    if cycles is None or x.shape[1] < 16:
+        lv = x.mean(axis=1)
+        return np.where(np.isfinite(lv), lv, 0.0)
+    n_bins = 64
+    b = np.floor(fractional_part(cycles) * n_bins).astype(np.int64)
+    clipped = find_clipped(x)
+    cnt = np.bincount(b, minlength=n_bins).astype(np.float64)
+    have = cnt > 0
+    means = np.stack([np.bincount(b, row, n_bins) for row in x]) / np.maximum(cnt, 1.0)
+    whole = np.stack([np.bincount(b, row.astype(np.float64), n_bins) == 0 for row in clipped]) & have
+    if ref is not None and whole[ref].sum() == have.sum():
+        shape = means[ref] - means[ref][have].mean()
+        basis = np.column_stack([np.ones(n_bins), shape])
+    else:
+        order = max(1, min(5 if harmonics is None else int(harmonics), 5))
+        ph = 2 * np.pi * (np.arange(n_bins) + 0.5) / n_bins
+        basis = np.column_stack([np.ones(n_bins)] + [fn(k * ph) for k in range(1, order + 1) for fn in (np.cos, np.sin)])
+    out = np.empty(x.shape[0])
+    for ch in range(x.shape[0]):
+        ok = whole[ch]
+        if ok.sum() == have.sum() or ok.sum() < basis.shape[1] + 2:
+            out[ch] = means[ch][ok if ok.any() else have].mean()
+        else:
+            out[ch] = np.linalg.lstsq(basis[ok], means[ch][ok], rcond=None)[0][0]
+    return np.where(np.isfinite(out), out, 0.0)
+
+
+#: a sham block's level is taken off where it exceeds this share of the channel's SD over the stretch (this
+#: project's choice: an electrode offset of millivolts against a level read to tens of microvolts)
+_SHAM_LEVEL = 0.25
+
+
+def level_off(xb: np.ndarray, plan) -> np.ndarray:
+    """``xb`` less its block's DC level (:attr:`BlockPlan.level`): a new array, the caller's is not changed.
+
+    A DC-coupled amplifier holds tens of millivolts of electrode offset. The fits are blind to it only
+    where every bin and part of the cycle weighs the same: outliers left out, clipped samples and the
+    ramps' small gains let a share of it into the template's bins (a 20 mV offset at 40 Hz: 4000x the
+    neural power within 3 Hz of the harmonics, the spike band at 5 x noise), and the row estimators
+    divide it by the envelope at the ramps' feet (110-200 x noise). The level is read once per block from
+    the plan's stretch, so every piece of a block takes off the same.
+    """
+    level = getattr(plan, "level", None)
+    if level is None:
+        return xb
+    return xb - level[:xb.shape[0], None]
 
 
 #: float64 values of an upsampled block's copy (per channel: its samples times the factor times the estimator's
@@ -507,8 +572,14 @@ class CycleEstimator(ArtifactEstimator):
 
         def decide(job):
             i, rows = job
-            _, grid, _, response, _, _ = stretch[i]
-            return self._decide(read, blocks[i], fs, grid, response, bounds[i], rows)
+            grid, response, level = stretch[i][1], stretch[i][3], stretch[i][6]
+
+            def read_level_off(a, b, rows=None):
+                # the choices see the data the fits will (level_off)
+                x = np.asarray(read(a, b, rows), dtype=np.float64)
+                return x - (level if rows is None else level[list(rows)])[:, None]
+
+            return self._decide(read_level_off, blocks[i], fs, grid, response, bounds[i], rows)
 
         decided: dict[int, list] = {}
         for (i, _), part in zip(jobs, mapper(decide, jobs)):
@@ -623,7 +694,7 @@ class CycleEstimator(ArtifactEstimator):
         intact = ~find_clipped(x, dilate=0).any(axis=1)
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if b - a < 16:
-            return ref, None, 0.0, None, None, (ref,)
+            return ref, None, 0.0, None, None, (ref,), _level(x)
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         first = int(np.floor(cycles[0] * per_cycle))  # the gain segments' first number
@@ -700,7 +771,13 @@ class CycleEstimator(ArtifactEstimator):
         # the strongest, alone (every task that cleans other channels reads the judges too)
         judges = (ref,) if intact.all() else \
             (ref, *[int(c) for c in np.argsort(-spread, kind="stable") if c != ref][:SETTLE_CHANNELS - 1])
-        return ref, grid, unlocked, response, harmonics, judges
+        level = _level(x, cycles, harmonics, ref if intact[ref] else None)
+        if blk.kind == "sham":
+            # ramps only, a second or two: the mean cycle of a few ramped cycles gives the level to tens of
+            # microvolts, itself an offset to the fits (0.22-0.25 x noise in the spike band of a sham that clips
+            # at its peak); taken off only where it is the larger error (a DC-coupled amplifier's millivolts)
+            level = np.where(np.abs(level) > _SHAM_LEVEL * spread, level, 0.0)
+        return ref, grid, unlocked, response, harmonics, judges, level
 
     def _gain_response(self, parts, groups, f, ref, intact, plain, first, mapper):
         """The plan's :class:`~artifactclean.modulation.GainResponse` from the ``parts`` of channel ``groups``
@@ -1205,7 +1282,9 @@ class RowModelEstimator(CycleEstimator):
         return art, grid, censor, n_out, chosen
 
     def _block(self, xb, wb, u, fs, blk, offset):
-        ref, dac, unlocked, response, decided = self._block_plan(xb, blk, fs, offset)[:5]
+        plan = self._block_plan(xb, blk, fs, offset)
+        ref, dac, unlocked, response, decided = plan[:5]
+        xb = level_off(xb, plan)
         art, grid, censor, n_out, chosen = self._passes(xb, wb, u, fs, blk, offset, dac, response, decided)
         for info in chosen:
             del info["decided"]  # arrays: the report says what was chosen in words and counts

@@ -58,7 +58,8 @@ from ._kernels import (PhaseGrid, group_position, grouped_eval, lerp_positions, 
                        tick_eval, tick_sums)
 from ..pulse import HEART_HZ
 from ..staircase import DacClock
-from .cycles import CycleEstimator, block_key, envelope_at, settle_edges, spike_outliers, stretch_bounds, trapezoid
+from .cycles import CycleEstimator, block_key, envelope_at, level_off, settle_edges, spike_outliers, stretch_bounds, \
+    trapezoid
 
 __all__ = ["TemplateSubtraction"]
 
@@ -449,6 +450,7 @@ class TemplateSubtraction(CycleEstimator):
         k_half = self._window(f)
         plan = self._block_plan(xb, blk, fs, offset)
         ref, grid, unlocked, response = plan[:4]
+        xb = level_off(xb, plan)
         pulse_model = None if response is None else response.pulse
         # the template's rows: cycles, or periods of a few cycles when a DAC's ticks repeat only so
         per = 1 if grid is None else grid.cycles_per_period
