@@ -6,11 +6,12 @@ bin centres. With hundreds of samples per cycle (spike-band rigs: 750 at
 40 Hz from 30 kHz) that costs nothing; at the rates of scalp and many
 intracranial LFP systems it does: 40 Hz from 1 kHz is 25 samples a cycle,
 and each interpolation loses about ``(pi h / 25)**2 / 6`` of harmonic ``h``
-(3% of the second), which stays in the data as a line 35-100x the neural
+(1% of the second), which stays in the data as a line 50-650x the neural
 power within 3 Hz of the harmonics (40 Hz from 500 Hz: the search also took
 the repeating samples for a DAC staircase).
 
-So a block with fewer than :data:`MIN_SAMPLES_PER_CYCLE` samples a cycle is
+So a block with fewer than :data:`MIN_SAMPLES_PER_CYCLE` samples a cycle
+(:data:`ROW_SAMPLES_PER_CYCLE` for regression and PCA) is
 cleaned on an upsampled copy: a windowed-sinc interpolator (Kaiser window)
 that passes through every original sample exactly and fills between them
 with the band-limited signal the amplifier's anti-aliasing filter left. The
@@ -18,6 +19,10 @@ artifact is then read at the original samples. A staircase recorded at such
 rates is seen through that filter: its images on the cycle's harmonics are
 part of the periodic waveform the estimators follow, and no DAC grid is
 searched on the upsampled copy (its ticks could not be resolved anyway).
+Harmonics above the Nyquist frequency that the amplifier let through fold
+back as lines the copy does not hold as harmonics, and stay (40 Hz from
+500 Hz with harmonics to the 8th and no anti-aliasing filter: 120-150x the
+neural power at 180 and 220 Hz).
 """
 
 from __future__ import annotations
@@ -27,8 +32,8 @@ import dataclasses
 import numpy as np
 from scipy import signal
 
-__all__ = ["MIN_SAMPLES_PER_CYCLE", "ROW_SAMPLES_PER_CYCLE", "upsampling_factor", "upsample", "upsample_railed", "upsampled_reader",
-           "upsampled_block"]
+__all__ = ["MIN_SAMPLES_PER_CYCLE", "ROW_SAMPLES_PER_CYCLE", "upsampling_factor", "upsample", "upsample_railed",
+           "upsampled_reader", "upsampled_block"]
 
 #: a block with fewer samples per stimulation cycle than this is cleaned on an upsampled copy. The
 #: interpolations lose about (pi h / samples a cycle)**2 / 6 of harmonic h each, so what matters is the highest

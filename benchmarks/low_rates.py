@@ -54,10 +54,12 @@ def main(argv=None) -> list[dict]:
             for rate in [fs0] + sorted(args.rates, reverse=True):
                 q = fs0 // rate
                 x, neural, on = (rec.data, rec.neural, stim) if q == 1 else \
-                    (signal.resample_poly(rec.data, 1, q, axis=1), signal.resample_poly(rec.neural, 1, q, axis=1), stim[::q])
+                    (signal.resample_poly(rec.data, 1, q, axis=1), signal.resample_poly(rec.neural, 1, q, axis=1),
+                     stim[::q])
                 est = make_estimator(method)
                 out = est.fit_transform(x, fs=float(rate))
-                figs = [_lfp_figures((out[c] - neural[c])[on], neural[c][on], float(rate), f) for c in range(x.shape[0])]
+                figs = [_lfp_figures((out[c] - neural[c])[on], neural[c][on], float(rate), f)
+                        for c in range(x.shape[0])]
                 up = max([b.get("upsampled_by", 1) for b in est.report_.get("blocks", [])], default=1)
                 row = dict(method=method, freq_hz=f, rate_hz=rate, upsampled_by=up,
                            band=max(b for b, _ in figs), away=max(a for _, a in figs))

@@ -92,8 +92,8 @@ class BlockPlan(NamedTuple):
         (:func:`settle_edges`): ``ref`` alone, or where a channel clips
         ``ref`` and the strongest others, at most :data:`SETTLE_CHANNELS`.
     level : ndarray or None
-        Each channel's mean over the plan's stretch (its unclipped samples):
-        the block's DC level, taken off before any fit (:func:`level_off`).
+        Each channel's DC level over the plan's stretch (:func:`_level`),
+        taken off before any fit (:func:`level_off`).
     """
 
     ref: int
@@ -330,7 +330,8 @@ def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | Non
     else:
         order = max(1, min(5 if harmonics is None else int(harmonics), 5))
         ph = 2 * np.pi * (np.arange(n_bins) + 0.5) / n_bins
-        basis = np.column_stack([np.ones(n_bins)] + [fn(k * ph) for k in range(1, order + 1) for fn in (np.cos, np.sin)])
+        basis = np.column_stack([np.ones(n_bins)] + [fn(k * ph) for k in range(1, order + 1)
+                                                     for fn in (np.cos, np.sin)])
     out = np.empty(x.shape[0])
     for ch in range(x.shape[0]):
         ok = whole[ch]
