@@ -126,7 +126,7 @@ def upsample(x: np.ndarray, factor: int, *, axis: int = -1) -> np.ndarray:
     return np.take(y, np.arange(delay, delay + n * factor), axis=axis)
 
 
-def upsample_railed(x: np.ndarray, factor: int) -> np.ndarray:
+def upsample_railed(x: np.ndarray, factor: int, rails: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """:func:`upsample` of a recording (n_channels, n) whose channels may clip, the rails kept.
 
     Between samples at an amplifier's rail the interpolation rings beyond
@@ -134,14 +134,14 @@ def upsample_railed(x: np.ndarray, factor: int) -> np.ndarray:
     each channel's upsampled values are limited to its rails
     (:func:`artifactclean.clipping.find_rails` of ``x``), and the samples
     between two originals at the same rail take the rail's value (the
-    clipping fits find them there).
+    clipping fits find them there). ``rails``: ``find_rails(x)`` if the caller has it.
     """
     from .clipping import find_rails
 
     x = np.atleast_2d(np.asarray(x, dtype=np.float64))
     y = upsample(x, factor)
     factor = int(factor)
-    top, bottom = find_rails(x)
+    top, bottom = find_rails(x) if rails is None else rails
     for ch in np.flatnonzero(np.isfinite(top) | np.isfinite(bottom)):
         row = y[ch]
         np.clip(row, bottom[ch], top[ch], out=row)

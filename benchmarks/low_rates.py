@@ -18,6 +18,7 @@ differences come from the rate, not from the draw. Figures, not seconds.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import warnings
 
 
@@ -47,7 +48,7 @@ def main(argv=None) -> list[dict]:
     print(f"{'method':<11} {'Hz':>3} {'rate Hz':>8} {'upsampled':>9} {'+-3 Hz':>7} {'away':>6}")
     rows = []
     for f in args.freqs:
-        art = dataclass_replace(SCENARIOS["modulated_20hz"][0], freq_hz=f)
+        art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=f)
         rec = simulate_recording(args.seconds, fs=float(fs0), artifact=art, neural=NeuralSpec(units=[]), seed=args.seed)
         stim = ~np.isnan(rec.stim_phase)
         for method in args.methods:
@@ -66,12 +67,6 @@ def main(argv=None) -> list[dict]:
                 rows.append(row)
                 print(f"{method:<11} {f:>3g} {rate:>8d} {up:>9d} {row['band']:>7.2f} {row['away']:>6.3f}", flush=True)
     return rows
-
-
-def dataclass_replace(obj, **changes):
-    import dataclasses
-
-    return dataclasses.replace(obj, **changes)
 
 
 if __name__ == "__main__":

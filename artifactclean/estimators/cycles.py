@@ -485,13 +485,13 @@ class CycleEstimator(ArtifactEstimator):
         infos = []
         for rows in groups:
             # the data a prepared plan read (upsampled_reader)
-            xu = upsample_railed(x[rows, lo:hi], up)[:, (s - lo) * up:(e - lo) * up]
+            top, bottom = find_rails(x[rows, lo:hi])
+            xu = upsample_railed(x[rows, lo:hi], up, rails=(top, bottom))[:, (s - lo) * up:(e - lo) * up]
             keep = ~lost[rows, s:e]
             # a sample between two originals is usable where both are
             wu = np.repeat(keep & np.concatenate((keep[:, 1:], keep[:, -1:]), axis=1), up, axis=1)
             wu[:, ::up] = keep
             # and not where the interpolation went beyond a rail (held there by upsample_railed)
-            top, bottom = find_rails(x[rows, lo:hi])
             wu &= (xu < top[:, None]) & (xu > bottom[:, None])
             est = clone(self)
             est._plans = {key: _subset_plan(plan, list(rows))}
