@@ -33,7 +33,6 @@ from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..estimators.base import check_stim_freq
-from ..resampling import upsampling_factor
 from ..staircase import find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
@@ -644,9 +643,9 @@ def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, s
         u = model.cycles(main, a, b)
         amps = 2 * np.abs((x - x.mean(axis=1, keepdims=True)) @ np.exp(-2j * np.pi * u)) / max(b - a, 1)
         strongest = int(np.argmax(amps))
-        up = upsampling_factor(main.freq_hz, rec.fs)
+        up = make_estimator(DEFAULT_METHOD)._upsampling(main.freq_hz, rec.fs)
         if up > 1:
-            # as the template (the default) does: at so few samples a cycle the samples themselves repeat like ticks,
+            # the default method's own rule: at so few samples a cycle the samples themselves repeat like ticks,
             # and a DAC's steps could not be resolved; its images are harmonics of the cycle (resampling.py)
             grid, steps, free = None, 0.0, None
         else:
