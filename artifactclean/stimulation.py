@@ -27,6 +27,7 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage, optimize, signal
 
+from .baseline import slow_baseline
 from .clipping import mask_runs
 from ._numeric import fractional_part
 
@@ -876,7 +877,11 @@ def fit_decimated(
     for sg, f_guess, nominal in pairs:
         # ramps carry phase information too: fit over the whole segment
         a, b = int(max(0, np.ceil(sg.start))), int(min(x_ds.size, np.floor(sg.stop) + 1))
-        tones.append((a, b, *estimate_tone(x_ds[a:b], fs_ds, freq_hint=f_guess)))
+        # an electrode's drift (a DC-coupled amplifier's millivolts over tens of seconds) is no tone, but the
+        # tone fit has no term for it: 2 mV at 0.02 Hz moved a 5 Hz block's frequency by 11 ppm and its phase
+        # by 0.03 rad. The level is read through cycles at the guess, segment by segment (memory: one block's)
+        seg = x_ds[a:b] - slow_baseline(x_ds[a:b], fs_ds, f_guess)
+        tones.append((a, b, *estimate_tone(seg, fs_ds, freq_hint=f_guess)))
     # each segment's Cramer-Rao bound, once: only blocks at one frequency are judged against each other
     spreads = [_tone_spread(t, x_ds, fs_ds) for t in tones] if len(tones) > 1 else [0.0] * len(tones)
     keep = _one_clock(pairs, tones, spreads, fs_ds)
@@ -916,7 +921,6 @@ def fit_decimated(
 #: are fitted whole at the full rate; longer ones only at their feet (see :func:`_ramp_fit`)
 _WHOLE_RAMP_CYCLES = 10.0
 _WHOLE_RAMP_S = 0.5
-
 
 def _edges_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: float,
                         bounds: tuple[int, int]) -> None:

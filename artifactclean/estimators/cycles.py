@@ -22,6 +22,7 @@ from scipy import ndimage, signal
 from sklearn.base import clone
 
 from .._numeric import fractional_part
+from ..baseline import baseline_reach_s, bent_corners, level_off_reader, slow_baseline, without_corners
 from ..clipping import find_clipped, find_rails
 from ..parallel import channel_groups
 from ..resampling import MIN_SAMPLES_PER_CYCLE, ROW_SAMPLES_PER_CYCLE, TARGET_SAMPLES_PER_CYCLE, \
@@ -94,6 +95,10 @@ class BlockPlan(NamedTuple):
     level : ndarray or None
         Each channel's DC level over the plan's stretch (:func:`_level`),
         taken off before any fit (:func:`level_off`).
+    follows : ndarray of bool or None
+        Channels whose level is followed in time as well
+        (:func:`artifactclean.baseline.slow_baseline`): those with no
+        clipped sample over the plan's stretch.
     """
 
     ref: int
@@ -104,6 +109,7 @@ class BlockPlan(NamedTuple):
     harmonics: int | None = None
     judges: tuple = ()
     level: np.ndarray | None = None
+    follows: np.ndarray | None = None
 
 
 #: channels whose data judge the samples next to a DAC's tick edges (:class:`BlockPlan`, :func:`settle_edges`):
@@ -285,7 +291,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response, decided, harmonics, judges, level = plan
+    ref, grid, unlocked, response, decided, harmonics, judges, level, follows = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -299,7 +305,7 @@ def _subset_plan(plan, fit: list[int]):
     # judges the clone does not see (an estimator that reads no reference data) are left out
     judges = tuple(rows.index(j) for j in judges if j in rows)
     return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics, judges,
-                     None if level is None else level[rows])
+                     None if level is None else level[rows], None if follows is None else follows[rows])
 
 
 def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | None = None,
@@ -347,20 +353,45 @@ def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | Non
 _SHAM_LEVEL = 0.25
 
 
-def level_off(xb: np.ndarray, plan) -> np.ndarray:
-    """``xb`` less its block's DC level (:attr:`BlockPlan.level`): a new array, the caller's is not changed.
+def level_off(xb: np.ndarray, plan, fs: float | None = None, blk=None, weights: np.ndarray | None = None,
+              offset: int = 0) -> np.ndarray:
+    """``xb`` (samples from ``offset`` of ``blk``'s work range) less its block's DC level
+    (:attr:`BlockPlan.level`) and, on the channels the plan follows (:attr:`BlockPlan.follows`, given ``fs``
+    and ``blk``), less the level's drift (:func:`artifactclean.baseline.slow_baseline`; ``weights`` 0 where
+    a sample is lost, and within a cycle of a step or a short ramp, :func:`~artifactclean.baseline.bent_corners`):
+    a new array, the caller's is not changed.
 
     A DC-coupled amplifier holds tens of millivolts of electrode offset. The fits are blind to it only
     where every bin and part of the cycle weighs the same: outliers left out, clipped samples and the
     ramps' small gains let a share of it into the template's bins (a 20 mV offset at 40 Hz: 4000x the
     neural power within 3 Hz of the harmonics, the spike band at 5 x noise), and the row estimators
     divide it by the envelope at the ramps' feet (110-200 x noise). The level is read once per block from
-    the plan's stretch, so every piece of a block takes off the same.
+    the plan's stretch, so every piece of a block takes off the same. Its drift is read from the data at
+    every sample (pieces carry :func:`~artifactclean.baseline.baseline_reach_s` more context, and the
+    points the level is read at are counted from the block's reference sample); on a channel that clips,
+    whose samples at the rails are missing from every mean, only the constant level.
     """
     level = getattr(plan, "level", None)
-    if level is None:
-        return xb
-    return xb - level[:xb.shape[0], None]
+    out = np.array(xb, dtype=np.float64) if level is None else xb - level[:xb.shape[0], None]
+    follows = getattr(plan, "follows", None)
+    if follows is None or fs is None or blk is None:
+        return out
+    cycle = fs / blk.freq_hz
+    bent = np.asarray(bent_corners(blk.geometry(), cycle)) - offset
+    gaps = without_corners(xb.shape[1], bent, cycle) if bent.size else None
+    for ch in np.flatnonzero(follows[:xb.shape[0]]):
+        w = gaps if weights is None else (weights[ch] if gaps is None else weights[ch] * gaps)
+        out[ch] -= slow_baseline(out[ch], fs, blk.freq_hz, weights=w, origin=offset - blk.ref_sample)
+    return out
+
+
+def level_reader(read, blk, bounds: tuple[int, int], fs: float):
+    """``read`` (as :meth:`CycleEstimator.prepare` takes it) with each channel's drifting level taken off where
+    none of its samples read is clipped (:func:`artifactclean.baseline.level_off_reader` within the block's
+    work range ``bounds``): the level :func:`level_off` takes off the same samples when the fits run."""
+    return level_off_reader(read, fs, blk.freq_hz, bounds, origin=blk.ref_sample,
+                            follow=lambda rows: ~find_clipped(rows, dilate=0).any(axis=1),
+                            corners=bent_corners(blk.geometry(), fs / blk.freq_hz))
 
 
 #: float64 values of an upsampled block's copy (per channel: its samples times the factor times the estimator's
@@ -544,7 +575,9 @@ class CycleEstimator(ArtifactEstimator):
             return []
         # one block after another, each one's channels side by side (a block's plan waits for its jobs, so
         # blocks planned on the pool themselves could leave no worker for them)
-        stretch = [self._stretch_plan(read, b, fs, mapper) for b in blocks]
+        # every choice sees the data the fits will: each unclipped channel's drifting level taken off
+        seen = [level_reader(read, b, bounds[i], fs) for i, b in enumerate(blocks)]
+        stretch = [self._stretch_plan(seen[i], b, fs, mapper) for i, b in enumerate(blocks)]
         # a heartbeat's phase over each whole block, once, from its reference channel: tasks on other channels
         # then need neither that channel nor the band-pass's context
         pulsed = [i for i, st in enumerate(stretch) if getattr(st[3], "pulse", None) is not None]
@@ -555,7 +588,7 @@ class CycleEstimator(ArtifactEstimator):
 
         def row_part(job):
             i, ab, row = job
-            return self._heart_row(read, blocks[i], fs, bounds[i], ab, row)
+            return self._heart_row(seen[i], blocks[i], fs, bounds[i], ab, row)
 
         rows = iter(list(mapper(row_part, jobs)))
         done: dict[int, list] = {i: [] for i in pulsed}
@@ -576,8 +609,8 @@ class CycleEstimator(ArtifactEstimator):
             grid, response, level = stretch[i][1], stretch[i][3], stretch[i][6]
 
             def read_level_off(a, b, rows=None):
-                # the choices see the data the fits will (level_off)
-                x = np.asarray(read(a, b, rows), dtype=np.float64)
+                # the choices see the data the fits will (level_off): the drift is off already
+                x = np.asarray(seen[i](a, b, rows), dtype=np.float64)
                 return x - (level if rows is None else level[list(rows)])[:, None]
 
             return self._decide(read_level_off, blocks[i], fs, grid, response, bounds[i], rows)
@@ -695,7 +728,7 @@ class CycleEstimator(ArtifactEstimator):
         intact = ~find_clipped(x, dilate=0).any(axis=1)
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if b - a < 16:
-            return ref, None, 0.0, None, None, (ref,), _level(x)
+            return ref, None, 0.0, None, None, (ref,), _level(x), None
         cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         first = int(np.floor(cycles[0] * per_cycle))  # the gain segments' first number
@@ -778,7 +811,7 @@ class CycleEstimator(ArtifactEstimator):
             # microvolts, itself an offset to the fits (0.22-0.25 x noise in the spike band of a sham that clips
             # at its peak); taken off only where it is the larger error (a DC-coupled amplifier's millivolts)
             level = np.where(np.abs(level) > _SHAM_LEVEL * spread, level, 0.0)
-        return ref, grid, unlocked, response, harmonics, judges, level
+        return ref, grid, unlocked, response, harmonics, judges, level, intact
 
     def _gain_response(self, parts, groups, f, ref, intact, plain, first, mapper):
         """The plan's :class:`~artifactclean.modulation.GainResponse` from the ``parts`` of channel ``groups``
@@ -1285,7 +1318,7 @@ class RowModelEstimator(CycleEstimator):
     def _block(self, xb, wb, u, fs, blk, offset):
         plan = self._block_plan(xb, blk, fs, offset)
         ref, dac, unlocked, response, decided = plan[:5]
-        xb = level_off(xb, plan)
+        xb = level_off(xb, plan, fs, blk, wb, offset)
         art, grid, censor, n_out, chosen = self._passes(xb, wb, u, fs, blk, offset, dac, response, decided)
         for info in chosen:
             del info["decided"]  # arrays: the report says what was chosen in words and counts
@@ -1391,7 +1424,8 @@ class RowModelEstimator(CycleEstimator):
         """
         passes = 2 if self.robust else 1
         per_pass = HALF_S + (2 * _FILL_ROWS + 2) / freq_hz
-        return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz
+        return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz \
+            + baseline_reach_s(freq_hz)
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

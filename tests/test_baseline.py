@@ -1,0 +1,103 @@
+"""The slow level under the artifact (artifactclean.baseline)."""
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+from artifactclean.baseline import SMOOTH_S, baseline_reach_s, moving_mean, slow_baseline
+
+
+def test_a_whole_width_mean_equals_scipy_uniform_filter():
+    # reference: scipy.ndimage.uniform_filter1d, the same centred box of an odd number of samples
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=(3, 500))
+    mean, share = moving_mean(x, 9)
+    assert np.allclose(mean[:, 4:-4], ndimage.uniform_filter1d(x, 9, axis=1)[:, 4:-4], atol=1e-12)
+    assert np.allclose(share[:, 4:-4], 1.0)
+    # the window is cut short at the ends and the mean taken over what it holds
+    assert mean[0, 0] == pytest.approx(x[0, :5].mean())
+    assert share[0, 0] == pytest.approx(5 / 9)
+
+
+def test_a_fractional_width_integrates_the_samples_as_steps():
+    # each sample stands for the unit interval around it: the mean over a window of 6.3 samples is the
+    # integral of that step function over the window, divided by 6.3 (computed here on a fine grid)
+    rng = np.random.default_rng(1)
+    x = rng.normal(size=60)
+    width = 6.3
+    fine = 1000
+    steps = np.repeat(x, fine)  # sample i covers [i - 0.5, i + 0.5)
+    edges = np.arange(60 * fine) / fine - 0.5
+    mean, _ = moving_mean(x, width, axis=0)
+    for i in (10, 25, 40):
+        inside = (edges >= i - width / 2) & (edges < i + width / 2)
+        assert mean[i] == pytest.approx(steps[inside].sum() / fine / width, abs=2e-3)
+
+
+def test_left_out_samples_count_for_nothing():
+    rng = np.random.default_rng(2)
+    x = rng.normal(size=200)
+    w = np.ones(200)
+    x_bad = x.copy()
+    x_bad[100] = np.nan
+    w[100] = 0.0
+    mean, share = moving_mean(x_bad, 11, weights=w)
+    assert np.isfinite(mean).all()
+    assert mean[100] == pytest.approx((x[95:106].sum() - x[100]) / 10)
+    assert share[100] == pytest.approx(10 / 11)
+    with pytest.raises(ValueError, match="width"):
+        moving_mean(x, 0.0)
+    with pytest.raises(ValueError, match="shape"):
+        moving_mean(x, 3.0, weights=np.ones(5))
+
+
+@pytest.mark.parametrize("freq", [7.3, 40.0016])
+def test_a_periodic_artifact_leaves_no_level(freq):
+    # harmonics of a cycle that is not a whole number of samples fall on the zeros of the one-cycle means
+    fs = 30000.0
+    t = np.arange(int(12 * fs)) / fs
+    art = 4000 * np.sin(2 * np.pi * freq * t) + 600 * np.sin(2 * np.pi * 2 * freq * t + 1.0) \
+        + 150 * np.sign(np.sin(2 * np.pi * freq * t + 0.3))  # a square wave: every odd harmonic
+    inner = slice(int(3 * fs), -int(3 * fs))
+    # one cycle's mean of the sine alone is nothing, where a window rounded to whole samples leaves tenths of uV
+    one, _ = moving_mean(4000 * np.sin(2 * np.pi * freq * t), fs / freq)
+    assert np.abs(one[inner]).max() < 1e-3
+    level = slow_baseline(art, fs, freq)
+    assert np.abs(level[inner]).max() < 1e-3 * 4000
+
+
+@pytest.mark.parametrize("slow_hz", [0.02, 0.3, 0.8])
+def test_a_slow_sine_passes_with_the_boxes_response(slow_hz):
+    # a moving mean over T seconds has the amplitude response sinc(F T) (e.g. Smith 1997, The Scientist and
+    # Engineer's Guide to DSP, ch. 15): two over one cycle and two over SMOOTH_S, the latter twiced (Tukey
+    # 1977, Exploratory Data Analysis: 2H - H**2)
+    fs, freq = 2000.0, 20.0
+    t = np.arange(int(60 * fs)) / fs
+    slow = 1000 * np.sin(2 * np.pi * slow_hz * t)
+    level = slow_baseline(slow + 3000 * np.sin(2 * np.pi * freq * t), fs, freq)
+    smooth = np.sinc(slow_hz * SMOOTH_S) ** 2
+    gain = np.sinc(slow_hz / freq) ** 2 * (2 * smooth - smooth ** 2)
+    inner = slice(int(5 * fs), -int(5 * fs))
+    assert np.abs(level[inner] - gain * slow[inner]).max() < 2e-3 * 1000
+
+
+def test_a_piece_with_the_reach_on_each_side_gives_the_whole_arrays_level():
+    fs, freq = 2000.0, 7.3
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=int(30 * fs)) + 500 * np.sin(2 * np.pi * freq * np.arange(int(30 * fs)) / fs)
+    whole = slow_baseline(x, fs, freq)
+    reach = int(np.ceil(baseline_reach_s(freq) * fs))
+    a, b = int(12 * fs), int(15 * fs)
+    piece = slow_baseline(x[a - reach:b + reach], fs, freq, origin=a - reach)[reach:-reach]
+    assert np.abs(piece - whole[a:b]).max() < 1e-9
+    # with less context the piece's ends differ
+    short = slow_baseline(x[a - reach // 2:b + reach // 2], fs, freq, origin=a - reach // 2)[reach // 2:-(reach // 2)]
+    assert np.abs(short - whole[a:b]).max() > 1e-6
+
+
+def test_bad_arguments():
+    x = np.zeros(1000)
+    with pytest.raises(ValueError, match="freq_hz"):
+        slow_baseline(x, 1000.0, 600.0)
+    with pytest.raises(ValueError, match="smooth_s"):
+        slow_baseline(x, 1000.0, 10.0, smooth_s=0)
