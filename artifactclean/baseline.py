@@ -133,24 +133,24 @@ def _line_where_uneven(level: np.ndarray, share: np.ndarray, width: float, mean:
     out = mean.copy()
     if not uneven.size:
         return out
-    # in runs of at most 256 neighbouring points, each against the points its windows reach
-    breaks = np.flatnonzero(np.diff(uneven) > 1) + 1
-    runs = [piece for run in np.split(uneven, breaks) for piece in np.array_split(run, len(run) // 256 + 1)]
-    for chunk in runs:
-        if not chunk.size:
-            continue
-        lo, hi = max(0, int(np.floor(chunk[0] - half))), min(n, int(np.ceil(chunk[-1] + half)) + 1)
-        j = np.arange(lo, hi)
-        # each point's unit step within the window around each point (moving_mean's weights)
-        over = np.minimum(j + 0.5, chunk[:, None] + half) - np.maximum(j - 0.5, chunk[:, None] - half)
-        wgt = np.clip(over, 0.0, 1.0) * share[j]
-        d = (j[None, :] - chunk[:, None]).astype(np.float64)
-        s0, s1, s2 = wgt.sum(axis=1), (wgt * d).sum(axis=1), (wgt * d * d).sum(axis=1)
-        t0, t1 = wgt @ level[j], (wgt * d) @ level[j]
+    # each run of neighbouring points from running sums over the points its windows reach, positions counted
+    # from the stretch's middle (sums of squared positions over a whole array would lose digits)
+    for run in np.split(uneven, np.flatnonzero(np.diff(uneven) > 1) + 1):
+        lo, hi = max(0, int(np.floor(run[0] - half)) - 1), min(n, int(np.ceil(run[-1] + half)) + 2)
+        m = hi - lo
+        pos = np.arange(m) - (m - 1) / 2.0
+        w, y = share[lo:hi], level[lo:hi]
+        sums = []
+        for v in (w, w * pos, w * pos * pos, w * y, w * pos * y):
+            cum = np.concatenate(([0.0], np.cumsum(v)))
+            sums.append((_at_offset(cum, m, half) - _at_offset(cum, m, -half))[run - lo])
+        s0, sp, spp, t0, tp = sums
+        at = pos[run - lo]
+        s1, s2, t1 = sp - at * s0, spp - 2.0 * at * sp + at * at * s0, tp - at * t0
         det = s0 * s2 - s1 * s1
         line = det > 1e-9 * np.maximum(s0 * s2, 1e-300)
         flat = np.where(s0 > 0, t0 / np.where(s0 > 0, s0, 1.0), 0.0)
-        out[chunk] = np.where(line, (s2 * t0 - s1 * t1) / np.where(line, det, 1.0), flat)
+        out[run] = np.where(line, (s2 * t0 - s1 * t1) / np.where(line, det, 1.0), flat)
     return out
 
 
