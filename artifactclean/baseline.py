@@ -12,14 +12,17 @@ A high-pass filter before cleaning would follow the drift, but also moves
 a clipped channel's rails, which the clipping fits find as recurring values.
 
 :func:`slow_baseline` reads the level at every sample from the data
-itself: a moving mean over exactly one stimulation cycle, twice (every
-harmonic of the cycle falls on its zeros, however many samples a cycle
-holds, and the sidebands the heartbeat and breathing put beside them fall
-on its skirts), then a moving mean over :data:`SMOOTH_S` seconds, twice,
-twiced (applied again to what it left, and that added: Tukey's twicing).
-The fits see the data less it; what they return is the artifact alone, so
-the cleaned output keeps the drift, the slow LFP and the level, as
-recorded.
+itself: a mean over exactly one stimulation cycle, twice, whole cycles only
+(every harmonic of the cycle falls on its zeros, however many samples a
+cycle holds, and the sidebands the heartbeat and breathing put beside them
+fall on its skirts), then a moving mean over :data:`SMOOTH_S` seconds,
+twice, twiced (applied again to what it left, and that added: Tukey's
+twicing), with a straight line wherever a window is cut short. Where the
+artifact's envelope bends within a cycle or two (a step, a short ramp) no
+cycle's mean averages it away: those stretches are left out and bridged
+(:func:`bent_corners`). The fits see the data less the level; what they
+return is the artifact alone, so the cleaned output keeps the drift, the
+slow LFP and the level, as recorded.
 
 What it cannot do: the artifact's own mean over a cycle (a stimulator's DC
 offset, or the rectification of an amplifier's even-order distortion) is,
@@ -44,9 +47,8 @@ SMOOTH_S = 1.0
 #: ramps shorter than this many cycles, and steps, are left out of the level with a cycle on either side (see
 #: bent_corners; this project's choice, from a 5 Hz artifact's level through steps and 0.1-1 s ramps)
 SHORT_RAMP_CYCLES = 2.0
-#: points a cycle at which the one-cycle means are read and the smoothing runs (this project's choice: the
-#: level between them is interpolated, and after one cycle's mean it moves by a few ppm of the artifact within
-#: 1/16 cycle)
+#: points a cycle at which the one-cycle means are read and the smoothing runs, the level interpolated between
+#: them (this project's choice: 64 gave the same figures on the drifting traces of level_drift.py)
 POINTS_PER_CYCLE = 16
 
 

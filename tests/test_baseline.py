@@ -4,7 +4,8 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from artifactclean.baseline import SMOOTH_S, baseline_reach_s, moving_mean, slow_baseline
+from artifactclean.baseline import SMOOTH_S, baseline_reach_s, bent_corners, level_off_reader, moving_mean, slow_baseline, \
+    without_corners
 
 
 def test_a_whole_width_mean_equals_scipy_uniform_filter():
@@ -101,3 +102,48 @@ def test_bad_arguments():
         slow_baseline(x, 1000.0, 600.0)
     with pytest.raises(ValueError, match="smooth_s"):
         slow_baseline(x, 1000.0, 10.0, smooth_s=0)
+
+
+def test_a_straight_drift_is_followed_to_the_ends():
+    # the means of a window cut short by the array's ends lag a trend toward the middle (7-26 uV within 2 s of
+    # the ends for 250 uV/s); a line fitted to what the window holds does not
+    fs, freq = 2000.0, 40.0
+    t = np.arange(int(12 * fs)) / fs
+    drift = 250.0 * t - 1500.0
+    level = slow_baseline(drift + 3000 * np.sin(2 * np.pi * freq * t), fs, freq)
+    assert np.abs(level - drift).max() < 0.5
+
+
+@pytest.mark.parametrize("ramp_s", [0.0, 0.1])
+def test_steps_and_short_ramps_are_left_out_of_the_level(ramp_s):
+    # a 5 Hz artifact switched on by a step or a half-cycle ramp: no cycle's mean around the bend averages it
+    # away, and its level there was 12-100 uV off; left out with a cycle on either side, a few uV
+    fs, freq = 6000.0, 5.0
+    t = np.arange(int(14 * fs)) / fs
+    on, off = 4.0, 10.0
+    env = np.clip(np.minimum(t - on, off - t) / ramp_s, 0, 1) if ramp_s else ((t >= on) & (t < off)).astype(float)
+    art = 4000 * env * np.sin(2 * np.pi * freq * t + 0.7)
+    corners = bent_corners(np.array([on, on + ramp_s, off - ramp_s, off]) * fs, fs / freq)
+    assert len(corners) == 4
+    kept = slow_baseline(art, fs, freq)
+    left = slow_baseline(art, fs, freq, weights=without_corners(t.size, corners, fs / freq))
+    assert np.abs(kept).max() > 10.0
+    assert np.abs(left).max() < 5.0
+    # a ramp of several cycles keeps its corners: its means oscillate and average away
+    assert bent_corners(np.array([on, on + 1.0, off - 1.0, off]) * fs, fs / freq) == []
+
+
+def test_a_reader_takes_the_level_off_as_the_whole_range_would():
+    fs, freq = 2000.0, 20.0
+    rng = np.random.default_rng(6)
+    n = int(40 * fs)
+    t = np.arange(n) / fs
+    x = np.vstack([2000 * np.sin(2 * np.pi * 0.03 * t) + 3000 * np.sin(2 * np.pi * freq * t) + rng.normal(0, 5, n),
+                   np.clip(4000 * np.sin(2 * np.pi * freq * t), -3000, 3000)])  # the second clips: left as read
+    read = lambda a, b, rows=None: x[:, a:b]  # noqa: E731
+    seen = level_off_reader(read, fs, freq, (0, n), origin=0, follow=lambda rows: [True, False])
+    whole = x[0] - slow_baseline(x[0], fs, freq)
+    a, b = int(15 * fs), int(18 * fs)
+    got = seen(a, b)
+    assert np.abs(got[0] - whole[a:b]).max() < 1e-9
+    assert np.array_equal(got[1], x[1, a:b])
