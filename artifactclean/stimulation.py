@@ -922,6 +922,7 @@ def fit_decimated(
 _WHOLE_RAMP_CYCLES = 10.0
 _WHOLE_RAMP_S = 0.5
 
+
 def _edges_at_full_rate(read, model: StimulationModel, blk: StimBlock, fs_ds: float,
                         bounds: tuple[int, int]) -> None:
     """Place ``blk``'s ramps (or steps) on the full-rate reference: :func:`_ramp_fit`, :func:`_step_sample`.

@@ -60,6 +60,8 @@ def test_benchmark_prints_ratios():
     ("clipping.py", ["--seconds", "6", "--rails", "3600", "--freqs", "40"], "outside rails"),
     ("stimulation_memory.py", ["--minutes", "1"], "4x / 1x peak memory"),
     ("segment_offset.py", ["--seconds", "6", "--freqs", "40", "--offsets", "0", "0.5"], "one-sign"),
+    ("low_rates.py", ["--seconds", "6", "--freqs", "40", "--rates", "1000", "--methods", "template"], "upsampled"),
+    ("level_drift.py", ["--seconds", "6", "--freqs", "40", "--methods", "template"], "offset+drift"),
 ])
 def test_other_benchmarks_run_small(script, args, expect):
     # small sizes: the scripts must keep working; their figures come from full-size runs
