@@ -163,13 +163,37 @@ def _smoothed(level: np.ndarray, share: np.ndarray, width: float) -> tuple[np.nd
     return _line_where_uneven(level, share, width, mean, window_share), window_share
 
 
-def _read(sums: np.ndarray, pos: np.ndarray) -> np.ndarray:
-    """``sums`` (indexed 0..n) at real positions ``pos``, linearly interpolated and held at both ends
-    (``numpy.interp`` on ``arange(n + 1)``, without its search)."""
-    pos = np.clip(pos, 0.0, sums.shape[0] - 1.0)
-    k = np.minimum(pos.astype(np.int64), sums.shape[0] - 2)
+#: samples a running sum or an interpolation handles at once (memory: a few of these per worker, whatever the
+#: length of the data)
+_CHUNK = 1 << 18
+
+
+def _running_sums_at(values: np.ndarray, pos: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+    """The sums of ``values`` (times ``weights``, a value of weight 0 left out whatever it is) up to real
+    positions ``pos`` (the sum of the first ``k`` at ``k``, linearly interpolated between, held at ``0`` and
+    ``n``), the running sum taken a chunk at a time (numpy.interp on ``arange(n + 1)`` and the whole
+    cumulative sum give the same, in memory the length of the data)."""
+    n = values.shape[0]
+    pos = np.clip(pos, 0.0, float(n))
+    k = np.minimum(pos.astype(np.int64), max(n - 1, 0))
     frac = pos - k
-    return sums[k] * (1.0 - frac) + sums[k + 1] * frac
+    need = np.concatenate((k, k + 1))
+    order = np.argsort(need, kind="stable")
+    wanted = need[order]
+    got = np.zeros(wanted.shape)
+    carry = 0.0
+    for c0 in range(0, n, _CHUNK):
+        c1 = min(n, c0 + _CHUNK)
+        part = values[c0:c1] if weights is None else np.where(weights[c0:c1] > 0, values[c0:c1], 0.0) * weights[c0:c1]
+        run = np.cumsum(part)
+        run += carry
+        a, b = np.searchsorted(wanted, c0, "left"), np.searchsorted(wanted, c1, "right")
+        at = wanted[a:b]
+        got[a:b] = np.where(at == c0, carry, run[np.maximum(at - c0 - 1, 0)])
+        carry = float(run[-1])
+    sums = np.empty(need.shape)
+    sums[order] = got
+    return sums[:k.size] * (1.0 - frac) + sums[k.size:] * frac
 
 
 def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarray | None = None,
@@ -184,7 +208,10 @@ def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarr
     at :data:`POINTS_PER_CYCLE` points a cycle (exact there, whatever the
     samples between), the rest run on those points, and the level is
     interpolated back to every sample: what is left after one cycle's mean
-    moves slowly, and the cost is two passes over the data.
+    moves slowly, and the cost is two passes over the data. Only whole
+    cycles count: a gap between them (left-out samples) is bridged by a
+    straight line, and where a smoothing window is cut short by the ends a
+    line is fitted to what it holds.
 
     Parameters
     ----------
@@ -196,7 +223,8 @@ def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarr
         The artifact's fundamental (Hz), the block's fitted frequency (a
         nominal one a few ppm off leaves a few ppm of each harmonic).
     weights : ndarray, optional
-        Weight of each sample (0: left out, e.g. clipped).
+        Weight of each sample, 0 or 1 (0: left out, e.g. clipped or beside
+        a step, :func:`without_corners`).
     smooth_s : float
         Length of each of the two smoothing means (s).
     axis : int
@@ -231,18 +259,18 @@ def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarr
     points = np.arange(-(int(origin) % step), n - 1 + step, step).astype(np.float64)
     hi, lo = points + period / 2 + 0.5, points - period / 2 + 0.5
     out = np.empty((rows.shape[0], n))
-    sums = np.zeros(n + 1)
+    ends = np.concatenate((hi, lo))
     for r, row in enumerate(rows):
         w = None if w_rows is None or np.all(w_rows[r] == 1.0) else w_rows[r]
-        # the cumulative sums are the integral of the samples as steps: one cycle's sum between any two
-        # points, read by linear interpolation (held at the ends: the window cut short)
-        np.cumsum(row if w is None else np.where(w > 0, row, 0.0) * w, out=sums[1:])
-        total = _read(sums, hi) - _read(sums, lo)
+        # the running sums are the integral of the samples as steps: one cycle's sum between any two points,
+        # read by linear interpolation (held at the ends: the window cut short)
+        sums = _running_sums_at(row, ends, w)
+        total = sums[:hi.size] - sums[hi.size:]
         if w is None:
             weight = np.clip(hi, 0, n) - np.clip(lo, 0, n)
         else:
-            np.cumsum(w, out=sums[1:])
-            weight = _read(sums, hi) - _read(sums, lo)
+            counts = _running_sums_at(w, ends)
+            weight = counts[:hi.size] - counts[hi.size:]
         # only whole cycles: a cycle cut by the array's ends or by left-out samples does not average the
         # artifact away (a step's half cycle leaves a quarter of its amplitude); the lines below fill in
         whole = weight >= period * (1.0 - 1e-9)
@@ -268,13 +296,15 @@ def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarr
         once = level
         for width in (smooth_s * fs, smooth_s * fs):
             level, share = _smoothed(level, share, width / step)
-        out[r] = np.interp(np.arange(n, dtype=np.float64), points, 2.0 * once - level)
+        level = 2.0 * once - level
+        for c0 in range(0, n, _CHUNK):
+            out[r, c0:c0 + _CHUNK] = np.interp(np.arange(c0, min(n, c0 + _CHUNK), dtype=np.float64), points, level)
     return np.moveaxis(out.reshape(shape), -1, axis)
 
 
 def without_corners(n: int, corners, half_width: float) -> np.ndarray:
     """Weights for :func:`slow_baseline` over ``n`` samples: 1, but 0 within ``half_width`` samples of each of
-    ``corners`` (sample positions, any of them outside ``0..n``).
+    ``corners`` (sample positions; those outside ``0..n`` leave out what of their reach lies inside).
 
     Where the artifact's envelope bends (a block's start and stop, its ramps' ends) one cycle's mean does not
     average it away: a 5 Hz, 4 mV artifact's level read through a 0.1 s ramp was 100 uV off, through a step
