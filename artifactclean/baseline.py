@@ -36,7 +36,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["SMOOTH_S", "SHORT_RAMP_CYCLES", "POINTS_PER_CYCLE", "moving_mean", "slow_baseline", "without_corners",
-           "bent_corners", "baseline_reach_s", "level_off_reader"]
+           "bent_corners", "baseline_reach_s", "subtract_level", "level_off_reader"]
 
 #: seconds of each of the two moving means that smooth the per-cycle level (this project's choice). Together a
 #: triangle of 2 s, twiced: response 2H - H**2 with H = sinc(F)**2, down 6 dB at 0.57 Hz, at most 9% between 1
@@ -342,17 +342,31 @@ def baseline_reach_s(freq_hz: float, smooth_s: float = SMOOTH_S) -> float:
     return 1.25 / freq_hz + 2.0 * smooth_s
 
 
+def subtract_level(x: np.ndarray, fs: float, freq_hz: float, rows, *, weights: np.ndarray | None = None,
+                   corners=(), origin: int = 0) -> None:
+    """Take :func:`slow_baseline` off the rows ``rows`` of ``x`` (2-D, time on the last axis), in place.
+
+    ``weights`` (the shape of ``x``, 0 or 1) leaves samples out, and so does a cycle on either side of each of
+    ``corners`` (:func:`bent_corners`, in samples of ``x``); ``origin`` is the index of ``x``'s first sample
+    counted from the sample the points are counted from (a block's reference sample).
+    """
+    corners = np.asarray(corners, dtype=np.float64)
+    gaps = without_corners(x.shape[-1], corners, fs / freq_hz) if corners.size else None
+    for r in rows:
+        w = gaps if weights is None else (weights[r] if gaps is None else weights[r] * gaps)
+        x[r] -= slow_baseline(x[r], fs, freq_hz, weights=w, origin=origin)
+
+
 def level_off_reader(read, fs: float, freq_hz: float, bounds: tuple[int, int], *, origin: int = 0, follow=None,
-                     corners=(), corner_cycles: float = 1.0):
+                     corners=()):
     """``read(a, b, *args)`` (samples ``a..b`` on the last axis) with the slow level taken off each row.
 
     Each read takes :func:`baseline_reach_s` of context on both sides within ``bounds`` (a work range, the
     stretch between two blocks), so any read within it sees the level a read of the whole range would;
     ``origin`` is the sample the points of :func:`slow_baseline` are counted from (a block's reference
     sample). ``follow(rows)``, given the read rows (2-D), says which to take the level off (default all; a
-    clipped channel's rails must stay where they are). Samples within ``corner_cycles`` cycles of
-    ``corners`` (:func:`bent_corners`, in the reader's samples) are left out of the level
-    (:func:`without_corners`). Reads reaching outside ``bounds`` are returned as read.
+    clipped channel's rails must stay where they are). ``corners`` (:func:`bent_corners`, in the reader's
+    samples) are left out as in :func:`subtract_level`. Reads reaching outside ``bounds`` are returned as read.
     """
     s, e = bounds
     reach = int(np.ceil(baseline_reach_s(freq_hz) * fs)) + 1
@@ -365,9 +379,7 @@ def level_off_reader(read, fs: float, freq_hz: float, bounds: tuple[int, int], *
         x = np.array(read(lo, hi, *args), dtype=np.float64)
         rows = x.reshape(-1, x.shape[-1])
         which = np.ones(rows.shape[0], dtype=bool) if follow is None else np.asarray(follow(rows), dtype=bool)
-        w = without_corners(hi - lo, corners - lo, corner_cycles * fs / freq_hz) if corners.size else None
-        for r in np.flatnonzero(which):
-            rows[r] -= slow_baseline(rows[r], fs, freq_hz, weights=w, origin=lo - origin)
+        subtract_level(rows, fs, freq_hz, np.flatnonzero(which), corners=corners - lo, origin=lo - origin)
         return x[..., a - lo:b - lo]
 
     return seen

@@ -22,7 +22,7 @@ from scipy import ndimage, signal
 from sklearn.base import clone
 
 from .._numeric import fractional_part
-from ..baseline import baseline_reach_s, bent_corners, level_off_reader, slow_baseline, without_corners
+from ..baseline import baseline_reach_s, bent_corners, level_off_reader, subtract_level
 from ..clipping import find_clipped, find_rails
 from ..parallel import channel_groups
 from ..resampling import MIN_SAMPLES_PER_CYCLE, ROW_SAMPLES_PER_CYCLE, TARGET_SAMPLES_PER_CYCLE, \
@@ -376,12 +376,9 @@ def level_off(xb: np.ndarray, plan, fs: float | None = None, blk=None, weights: 
     follows = getattr(plan, "follows", None)
     if follows is None or fs is None or blk is None:
         return out
-    cycle = fs / blk.freq_hz
-    bent = np.asarray(bent_corners(blk.geometry(), cycle)) - offset
-    gaps = without_corners(xb.shape[1], bent, cycle) if bent.size else None
-    for ch in np.flatnonzero(follows[:xb.shape[0]]):
-        w = gaps if weights is None else (weights[ch] if gaps is None else weights[ch] * gaps)
-        out[ch] -= slow_baseline(out[ch], fs, blk.freq_hz, weights=w, origin=offset - blk.ref_sample)
+    subtract_level(out, fs, blk.freq_hz, np.flatnonzero(follows[:xb.shape[0]]), weights=weights,
+                   corners=np.asarray(bent_corners(blk.geometry(), fs / blk.freq_hz)) - offset,
+                   origin=offset - blk.ref_sample)
     return out
 
 
