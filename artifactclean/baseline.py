@@ -24,6 +24,12 @@ cycle's mean averages it away: those stretches are left out and bridged
 return is the artifact alone, so the cleaned output keeps the drift, the
 slow LFP and the level, as recorded.
 
+A block's plan reads the level once, over the whole block, a part at a
+time (:func:`level_track`), and keeps it at :data:`TRACK_POINTS_PER_S`
+points a second per channel (:class:`LevelTrack`): the pieces a file is
+cleaned in then need no context for it, and it is computed once, not again
+for each read the plan makes and each piece's overlap.
+
 What it cannot do: the artifact's own mean over a cycle (a stimulator's DC
 offset, or the rectification of an amplifier's even-order distortion) is,
 within a block, the same thing as the electrode's level to any single
@@ -33,10 +39,14 @@ the ramps of its size.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 
+from .clipping import find_clipped
+
 __all__ = ["SMOOTH_S", "SHORT_RAMP_CYCLES", "POINTS_PER_CYCLE", "moving_mean", "slow_baseline", "without_corners",
-           "bent_corners", "baseline_reach_s", "subtract_level", "level_off_reader"]
+           "bent_corners", "baseline_reach_s", "TRACK_POINTS_PER_S", "LevelTrack", "level_track", "level_off_reader"]
 
 #: seconds of each of the two moving means that smooth the per-cycle level (this project's choice). Together a
 #: triangle of 2 s, twiced: response 2H - H**2 with H = sinc(F)**2, down 6 dB at 0.57 Hz, at most 9% between 1
@@ -196,6 +206,59 @@ def _running_sums_at(values: np.ndarray, pos: np.ndarray, weights: np.ndarray | 
     return sums[:k.size] * (1.0 - frac) + sums[k.size:] * frac
 
 
+def _point_step(fs: float, freq_hz: float) -> int:
+    """Samples between the points :func:`slow_baseline` reads the level at (:data:`POINTS_PER_CYCLE` a cycle)."""
+    return max(1, int((fs / freq_hz) // POINTS_PER_CYCLE))
+
+
+def _level_points(row: np.ndarray, fs: float, freq_hz: float, w: np.ndarray | None, smooth_s: float,
+                  origin: int) -> tuple[np.ndarray, np.ndarray]:
+    """The level of one row (see :func:`slow_baseline`) at its points: ``(positions, level)``, positions in
+    samples of ``row`` on multiples of :func:`_point_step` counted from ``-origin``, from at or before its first
+    sample to at or after its last."""
+    n = row.shape[0]
+    period = fs / freq_hz
+    step = _point_step(fs, freq_hz)
+    points = np.arange(-(int(origin) % step), n - 1 + step, step).astype(np.float64)
+    hi, lo = points + period / 2 + 0.5, points - period / 2 + 0.5
+    ends = np.concatenate((hi, lo))
+    # the running sums are the integral of the samples as steps: one cycle's sum between any two points,
+    # read by linear interpolation (held at the ends: the window cut short)
+    sums = _running_sums_at(row, ends, w)
+    total = sums[:hi.size] - sums[hi.size:]
+    if w is None:
+        weight = np.clip(hi, 0, n) - np.clip(lo, 0, n)
+    else:
+        counts = _running_sums_at(w, ends)
+        weight = counts[:hi.size] - counts[hi.size:]
+    # only whole cycles: a cycle cut by the array's ends or by left-out samples does not average the
+    # artifact away (a step's half cycle leaves a quarter of its amplitude); the lines below fill in
+    whole = weight >= period * (1.0 - 1e-9)
+    level = np.where(whole, total / np.where(whole, weight, 1.0), 0.0)
+    if whole.any() and not whole.all():
+        # a gap between whole cycles is bridged by a straight line: the smoothing's zeros, which the
+        # heartbeat's sidebands fall near, hold across it (a line fitted to a holed window does not)
+        inner = np.arange(np.argmax(whole), whole.size - np.argmax(whole[::-1]))
+        level[inner] = np.interp(inner, np.flatnonzero(whole), level[whole])
+        whole = whole.copy()
+        whole[inner] = True
+    level, share = moving_mean(level, period / step, weights=whole.astype(np.float64))
+    # and whole cycles of those at the ends: the means along a ramp (an oscillation at the fundamental,
+    # the ramp's slope over the angular frequency) average away only in whole cycles
+    whole = share >= 1.0 - 1e-9
+    level, share = np.where(whole, level, 0.0), whole.astype(np.float64)
+    # each mean weighs the previous one's values by the weight they held, so a stretch of left-out
+    # samples counts by what it had
+    for width in (smooth_s * fs, smooth_s * fs):
+        level, share = _smoothed(level, share, width / step)
+    # twicing (Tukey 1977, Exploratory Data Analysis): the smoothing applied once more to what it left,
+    # response 2H - H**2, so a drift's curvature is followed (2 mV at 0.05 Hz: 16 -> 0.1 uV off)
+    once = level
+    for width in (smooth_s * fs, smooth_s * fs):
+        level, share = _smoothed(level, share, width / step)
+    return points, 2.0 * once - level
+
+
 def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarray | None = None,
                   smooth_s: float = SMOOTH_S, axis: int = -1, origin: int = 0) -> np.ndarray:
     """The level of ``x`` under a periodic artifact at ``freq_hz``, at every sample.
@@ -252,51 +315,10 @@ def slow_baseline(x: np.ndarray, fs: float, freq_hz: float, *, weights: np.ndarr
     w_rows = None if weights is None else np.moveaxis(np.asarray(weights, dtype=np.float64), axis, -1).reshape(-1, n)
     if w_rows is not None and w_rows.shape != rows.shape:
         raise ValueError(f"weights must have the shape of x {shape}, got {np.shape(weights)}")
-    period = fs / freq_hz
-    step = max(1, int(period // POINTS_PER_CYCLE))
-    # points on multiples of ``step`` from the recording's start, from at or before the first sample to at or
-    # after the last
-    points = np.arange(-(int(origin) % step), n - 1 + step, step).astype(np.float64)
-    hi, lo = points + period / 2 + 0.5, points - period / 2 + 0.5
     out = np.empty((rows.shape[0], n))
-    ends = np.concatenate((hi, lo))
     for r, row in enumerate(rows):
         w = None if w_rows is None or np.all(w_rows[r] == 1.0) else w_rows[r]
-        # the running sums are the integral of the samples as steps: one cycle's sum between any two points,
-        # read by linear interpolation (held at the ends: the window cut short)
-        sums = _running_sums_at(row, ends, w)
-        total = sums[:hi.size] - sums[hi.size:]
-        if w is None:
-            weight = np.clip(hi, 0, n) - np.clip(lo, 0, n)
-        else:
-            counts = _running_sums_at(w, ends)
-            weight = counts[:hi.size] - counts[hi.size:]
-        # only whole cycles: a cycle cut by the array's ends or by left-out samples does not average the
-        # artifact away (a step's half cycle leaves a quarter of its amplitude); the lines below fill in
-        whole = weight >= period * (1.0 - 1e-9)
-        level = np.where(whole, total / np.where(whole, weight, 1.0), 0.0)
-        if whole.any() and not whole.all():
-            # a gap between whole cycles is bridged by a straight line: the smoothing's zeros, which the
-            # heartbeat's sidebands fall near, hold across it (a line fitted to a holed window does not)
-            inner = np.arange(np.argmax(whole), whole.size - np.argmax(whole[::-1]))
-            level[inner] = np.interp(inner, np.flatnonzero(whole), level[whole])
-            whole = whole.copy()
-            whole[inner] = True
-        level, share = moving_mean(level, period / step, weights=whole.astype(np.float64))
-        # and whole cycles of those at the ends: the means along a ramp (an oscillation at the fundamental,
-        # the ramp's slope over the angular frequency) average away only in whole cycles
-        whole = share >= 1.0 - 1e-9
-        level, share = np.where(whole, level, 0.0), whole.astype(np.float64)
-        # each mean weighs the previous one's values by the weight they held, so a stretch of left-out
-        # samples counts by what it had
-        for width in (smooth_s * fs, smooth_s * fs):
-            level, share = _smoothed(level, share, width / step)
-        # twicing (Tukey 1977, Exploratory Data Analysis): the smoothing applied once more to what it left,
-        # response 2H - H**2, so a drift's curvature is followed (2 mV at 0.05 Hz: 16 -> 0.1 uV off)
-        once = level
-        for width in (smooth_s * fs, smooth_s * fs):
-            level, share = _smoothed(level, share, width / step)
-        level = 2.0 * once - level
+        points, level = _level_points(row, fs, freq_hz, w, smooth_s, origin)
         for c0 in range(0, n, _CHUNK):
             out[r, c0:c0 + _CHUNK] = np.interp(np.arange(c0, min(n, c0 + _CHUNK), dtype=np.float64), points, level)
     return np.moveaxis(out.reshape(shape), -1, axis)
@@ -342,44 +364,148 @@ def baseline_reach_s(freq_hz: float, smooth_s: float = SMOOTH_S) -> float:
     return 1.25 / freq_hz + 2.0 * smooth_s
 
 
-def subtract_level(x: np.ndarray, fs: float, freq_hz: float, rows, *, weights: np.ndarray | None = None,
-                   corners=(), origin: int = 0) -> None:
-    """Take :func:`slow_baseline` off the rows ``rows`` of ``x`` (2-D, time on the last axis), in place.
+#: points a second a block's :class:`LevelTrack` keeps of each channel's level (this project's choice: the level
+#: moves slower than about 2 Hz, see :data:`SMOOTH_S`, and a line between points 1/16 s apart is within 0.1 uV of
+#: a 2 mV drift at 0.05 Hz, 1% of a 1 Hz wave; 384 channels over an hour keep 88 MB)
+TRACK_POINTS_PER_S = 16.0
+#: seconds of a block a track's part reads at once, and channels a part reads together (memory: about
+#: 4 x 34 s of float64 at 30 kHz, 33 MB, whatever the block's length; this project's choice)
+TRACK_PART_S = 30.0
+TRACK_GROUP = 4
 
-    ``weights`` (the shape of ``x``, 0 or 1) leaves samples out, and so does a cycle on either side of each of
-    ``corners`` (:func:`bent_corners`, in samples of ``x``); ``origin`` is the index of ``x``'s first sample
-    counted from the sample the points are counted from (a block's reference sample).
+
+class LevelTrack(NamedTuple):
+    """Each channel's slow level over a block's work range, a few points a second (:func:`level_track`).
+
+    Attributes
+    ----------
+    positions : ndarray
+        Positions of the points in samples from the block's reference
+        sample (so that a window of the recording, a file piece, reads the
+        same track), increasing: the range's first and last samples and the
+        multiples of a spacing of about ``1 / TRACK_POINTS_PER_S`` s between
+        them.
+    values : ndarray, shape (n_channels, n_points), float32
+        The level at those points (the data's unit).
     """
-    corners = np.asarray(corners, dtype=np.float64)
-    gaps = without_corners(x.shape[-1], corners, fs / freq_hz) if corners.size else None
-    for r in rows:
-        w = gaps if weights is None else (weights[r] if gaps is None else weights[r] * gaps)
-        x[r] -= slow_baseline(x[r], fs, freq_hz, weights=w, origin=origin)
+
+    positions: np.ndarray
+    values: np.ndarray
+
+    def rows(self, rows) -> "LevelTrack":
+        """The track of the channels ``rows`` (indices)."""
+        return LevelTrack(self.positions, self.values[list(rows)])
+
+    def subtract(self, x: np.ndarray, offset: int, rows, track_rows=None) -> None:
+        """Take the level off rows ``rows`` of ``x`` (2-D; its first sample ``offset`` samples from the block's
+        reference sample), in place; ``track_rows`` (default ``rows``) are the track's channels they are."""
+        rows = list(rows)
+        if not rows:
+            return
+        n = x.shape[-1]
+        # a chunk at a time: no array of the piece's length beside ``x`` (memory)
+        for c0 in range(0, n, _CHUNK):
+            t = np.arange(offset + c0, offset + min(n, c0 + _CHUNK), dtype=np.float64)
+            for r, k in zip(rows, rows if track_rows is None else list(track_rows)):
+                x[r, c0:c0 + t.size] -= np.interp(t, self.positions, self.values[k])
 
 
-def level_off_reader(read, fs: float, freq_hz: float, bounds: tuple[int, int], *, origin: int = 0, follow=None,
-                     corners=()):
-    """``read(a, b, *args)`` (samples ``a..b`` on the last axis) with the slow level taken off each row.
+def level_track(read, fs: float, freq_hz: float, bounds: tuple[int, int], n_channels: int, *, origin: int = 0,
+                corners=(), mapper=map) -> LevelTrack:
+    """Each channel's :func:`slow_baseline` over the work range ``bounds``, kept at a few points a second.
 
-    Each read takes :func:`baseline_reach_s` of context on both sides within ``bounds`` (a work range, the
-    stretch between two blocks), so any read within it sees the level a read of the whole range would;
-    ``origin`` is the sample the points of :func:`slow_baseline` are counted from (a block's reference
-    sample). ``follow(rows)``, given the read rows (2-D), says which to take the level off (default all; a
-    clipped channel's rails must stay where they are). ``corners`` (:func:`bent_corners`, in the reader's
-    samples) are left out as in :func:`subtract_level`. Reads reaching outside ``bounds`` are returned as read.
+    A block's plan reads it once, a part of :data:`TRACK_PART_S` s and
+    :data:`TRACK_GROUP` channels at a time with :func:`baseline_reach_s` of
+    context on each side, so a piece of the block needs no more context
+    than its fits, and memory follows the part, not the block. Between its
+    points (:data:`TRACK_POINTS_PER_S` a second, on multiples of a whole
+    number of the level's own points counted from ``origin``, and the range's
+    first and last samples) the level is a straight line: within 0.1 uV of
+    :func:`slow_baseline` on a 2 mV drift at 0.05 Hz.
+
+    Parameters
+    ----------
+    read : callable
+        ``read(a, b, rows)``: samples ``a..b`` of the channels ``rows``.
+    fs, freq_hz : float
+        Sampling rate and the block's stimulation frequency (Hz).
+    bounds : (int, int)
+        The work range.
+    n_channels : int
+        Channels ``read`` gives.
+    origin : int
+        The sample the level's points are counted from (a block's reference sample).
+    corners : sequence of float
+        Samples left out with a cycle on each side (:func:`bent_corners`).
+        Clipped samples (:func:`artifactclean.clipping.find_clipped` of
+        each part) and non-finite ones are left out too.
+    mapper : callable
+        ``map``-like; the parts and groups are independent jobs.
+
+    Returns
+    -------
+    LevelTrack
     """
-    s, e = bounds
+    s, e = (int(v) for v in bounds)
+    if e - s < 1:
+        raise ValueError(f"empty work range {bounds!r}")
+    step = _point_step(fs, freq_hz)
+    spacing = step * max(1, int((fs / TRACK_POINTS_PER_S) // step))
+    first = origin + spacing * int(np.floor((s - origin) / spacing)) + spacing
+    positions = np.unique(np.concatenate(([s], np.arange(first, e - 1, spacing), [e - 1]))).astype(np.float64)
+    core = max(1, int(TRACK_PART_S * fs))
+    starts = list(range(s, e, core))
+    if len(starts) > 1 and e - starts[-1] < core // 2:
+        starts.pop()  # a short last part joins the one before
+    parts = [(a, e if j == len(starts) - 1 else starts[j + 1]) for j, a in enumerate(starts)]
     reach = int(np.ceil(baseline_reach_s(freq_hz) * fs)) + 1
     corners = np.asarray(corners, dtype=np.float64)
 
-    def seen(a: int, b: int, *args):
+    def job(item):
+        (a, b), rows = item
         lo, hi = max(s, a - reach), min(e, b + reach)
-        if not lo <= a < b <= hi:
-            return read(a, b, *args)
-        x = np.array(read(lo, hi, *args), dtype=np.float64)
-        rows = x.reshape(-1, x.shape[-1])
-        which = np.ones(rows.shape[0], dtype=bool) if follow is None else np.asarray(follow(rows), dtype=bool)
-        subtract_level(rows, fs, freq_hz, np.flatnonzero(which), corners=corners - lo, origin=lo - origin)
-        return x[..., a - lo:b - lo]
+        x = np.array(read(lo, hi, rows), dtype=np.float64).reshape(len(rows), hi - lo)
+        bad = ~np.isfinite(x)
+        x[bad] = 0.0
+        lost = find_clipped(x) | bad
+        gaps = without_corners(hi - lo, corners - lo, fs / freq_hz) if corners.size else None
+        at = positions[(positions >= a) & (positions < b)] - lo
+        out = np.empty((len(rows), at.size), dtype=np.float32)
+        for r in range(len(rows)):
+            w = gaps if not lost[r].any() else (~lost[r]).astype(np.float64) * (1.0 if gaps is None else gaps)
+            points, level = _level_points(x[r], fs, freq_hz, w, SMOOTH_S, lo - origin)
+            out[r] = np.interp(at, points, level)
+        return out
+
+    groups = [list(range(c, min(n_channels, c + TRACK_GROUP))) for c in range(0, n_channels, TRACK_GROUP)]
+    jobs = [(ab, rows) for ab in parts for rows in groups]
+    done = iter(list(mapper(job, jobs)))
+    values = np.empty((n_channels, positions.size), dtype=np.float32)
+    for a, b in parts:
+        keep = (positions >= a) & (positions < b)
+        for rows in groups:
+            values[rows[0]:rows[-1] + 1, keep] = next(done)
+    return LevelTrack(positions - origin, values)
+
+
+def level_off_reader(read, track: LevelTrack, bounds: tuple[int, int], *, origin: int = 0, follow=None):
+    """``read(a, b, rows=None)`` with the level of ``track`` taken off each row read within ``bounds`` (the work
+    range the track covers; ``origin``: the block's reference sample in the reader's samples).
+
+    ``follow(x)``, given the rows read (2-D), says which to take the level off (default all; a clipped
+    channel's rails must stay where they are). Reads reaching outside ``bounds`` are returned as read.
+    """
+    s, e = bounds
+
+    def seen(a: int, b: int, rows=None):
+        x = read(a, b) if rows is None else read(a, b, rows)
+        if not s <= a < b <= e:
+            return x
+        x = np.array(x, dtype=np.float64)
+        flat = x.reshape(-1, x.shape[-1])
+        which = np.ones(flat.shape[0], dtype=bool) if follow is None else np.asarray(follow(flat), dtype=bool)
+        chans = np.arange(flat.shape[0]) if rows is None else np.asarray(list(rows))
+        track.subtract(flat, a - origin, np.flatnonzero(which), chans[which])
+        return x
 
     return seen

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from artifactclean.baseline import SMOOTH_S, baseline_reach_s, bent_corners, level_off_reader, moving_mean, slow_baseline, \
-    without_corners
+from artifactclean.baseline import SMOOTH_S, TRACK_POINTS_PER_S, baseline_reach_s, bent_corners, level_off_reader, level_track, \
+    moving_mean, slow_baseline, without_corners
 
 
 def test_a_whole_width_mean_equals_scipy_uniform_filter():
@@ -133,17 +133,53 @@ def test_steps_and_short_ramps_are_left_out_of_the_level(ramp_s):
     assert bent_corners(np.array([on, on + 1.0, off - 1.0, off]) * fs, fs / freq) == []
 
 
-def test_a_reader_takes_the_level_off_as_the_whole_range_would():
-    fs, freq = 2000.0, 20.0
-    rng = np.random.default_rng(6)
-    n = int(40 * fs)
+def _drifting(fs, freq, seconds, seed):
+    rng = np.random.default_rng(seed)
+    n = int(seconds * fs)
     t = np.arange(n) / fs
-    x = np.vstack([2000 * np.sin(2 * np.pi * 0.03 * t) + 3000 * np.sin(2 * np.pi * freq * t) + rng.normal(0, 5, n),
-                   np.clip(4000 * np.sin(2 * np.pi * freq * t), -3000, 3000)])  # the second clips: left as read
-    read = lambda a, b, rows=None: x[:, a:b]  # noqa: E731
-    seen = level_off_reader(read, fs, freq, (0, n), origin=0, follow=lambda rows: [True, False])
-    whole = x[0] - slow_baseline(x[0], fs, freq)
+    return np.vstack([2000 * np.sin(2 * np.pi * 0.05 * t) + 3000 * np.sin(2 * np.pi * freq * t) + rng.normal(0, 5, n),
+                      np.clip(4000 * np.sin(2 * np.pi * freq * t), -3000, 3000)])  # the second clips
+
+
+def test_a_track_read_in_parts_holds_the_whole_ranges_level_at_its_points():
+    fs, freq = 2000.0, 20.0
+    x = _drifting(fs, freq, 75.0, 6)  # three parts of TRACK_PART_S
+    s, e = 500, x.shape[1] - 300
+    read = lambda a, b, rows=None: x[slice(None) if rows is None else rows, a:b]  # noqa: E731
+    track = level_track(read, fs, freq, (s, e), 2, origin=100)
+    whole = slow_baseline(x[0, s:e], fs, freq, origin=s - 100)
+    at = track.positions.astype(int) + 100
+    assert at[0] == s and at[-1] == e - 1
+    spacing = np.diff(at[1:-1])
+    assert np.all(spacing == spacing[0]) and np.all((at[1:-1] - 100) % spacing[0] == 0)
+    assert spacing[0] / fs == pytest.approx(1 / TRACK_POINTS_PER_S, rel=0.1)
+    # at its points the track is the whole range's level (float32: 2000 uV to 1.2e-4 uV)
+    assert np.abs(track.values[0] - whole[at - s]).max() < 1e-3
+    # between them a line: within h**2 / 8 * max|x''| of a 2 mV drift at 0.05 Hz, h = 1/16 s (linear interpolation's
+    # error bound, e.g. Burden & Faires, Numerical Analysis, ch. 3): 0.096 uV
+    line = np.zeros((1, e - s))
+    track.subtract(line, s - 100, [0])
+    bound = (1 / TRACK_POINTS_PER_S) ** 2 / 8 * 2000 * (2 * np.pi * 0.05) ** 2
+    inner = slice(int(2 * SMOOTH_S * fs), -int(2 * SMOOTH_S * fs))
+    assert np.abs(-line[0] - whole)[inner].max() < bound + 0.02
+    # near the ends the level bends with the lines fitted there (itself 1-9 uV off such a drift)
+    assert np.abs(-line[0] - whole).max() < 0.25
+    # the clipped channel's track leaves its rails out (it is not taken off by the reader below)
+    assert np.isfinite(track.values[1]).all()
+
+
+def test_a_reader_takes_the_tracks_level_off_the_unclipped_rows():
+    fs, freq = 2000.0, 20.0
+    x = _drifting(fs, freq, 40.0, 7)
+    n = x.shape[1]
+    read = lambda a, b, rows=None: x[slice(None) if rows is None else rows, a:b]  # noqa: E731
+    track = level_track(read, fs, freq, (0, n), 2)
+    from artifactclean.clipping import find_clipped
+    seen = level_off_reader(read, track, (0, n), follow=lambda rows: ~find_clipped(rows).any(axis=1))
     a, b = int(15 * fs), int(18 * fs)
     got = seen(a, b)
-    assert np.abs(got[0] - whole[a:b]).max() < 1e-9
+    assert np.abs(got[0] - (x[0, a:b] - slow_baseline(x[0], fs, freq)[a:b])).max() < 0.15
     assert np.array_equal(got[1], x[1, a:b])
+    # rows read alone map onto the track's channels; reads outside the range come back as read
+    assert np.array_equal(seen(a, b, [0])[0], got[0])
+    assert np.array_equal(seen(n - 10, n + 10), read(n - 10, n + 10))

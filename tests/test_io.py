@@ -240,8 +240,8 @@ def test_long_block_cleaned_in_pieces_equals_array(tmp_path):
     # a small budget: one channel per task, with the DAC's reference and (channels clip here) the strongest
     # channels that judge the samples beside its edges, the block in pieces with 10 s of context (13.5 s
     # gave that with the reference alone, and gives 6.8 s with the judges, 0.65 uV off the array's).
-    # 10 s is less than the 18.1 s the template declares: the run says so, and the output still agrees
-    with pytest.warns(UserWarning, match=r"needs more context .* 10\.0 of 18\.1 s"):
+    # 10 s is less than the 16 s the template declares: the run says so, and the output still agrees
+    with pytest.warns(UserWarning, match=r"needs more context .* 10\.0 of 16\.0 s"):
         out = clean_recording(r, tmp_path / "long.dat", stim_freq=10.0, max_range_s=20.0)
     assert out["context_cut"] and out["context_cut"][0]["kept_s"] == pytest.approx(10.0, abs=0.05)
     assert len(out["written"]) == 2
@@ -253,7 +253,7 @@ def test_long_block_cleaned_in_pieces_equals_array(tmp_path):
 
 
 def test_pieces_short_of_context_are_reported_and_the_suggested_budget_mends_them(tmp_path):
-    # 10 Hz: the template declares 18.1 s of context; a 3 s budget gives pieces of 11 s that keep 2.8 s.
+    # 10 Hz: the template declares 16 s of context; a 3 s budget gives pieces of 11 s that keep 2.8 s.
     # The run warns, records the cut in the provenance, and the max_range_s it suggests gives the
     # whole-array result (1e-6 of the range: issue 7's goal for chunked runs)
     from neo.io import NixIO

@@ -22,7 +22,7 @@ from scipy import ndimage, signal
 from sklearn.base import clone
 
 from .._numeric import fractional_part
-from ..baseline import baseline_reach_s, bent_corners, level_off_reader, subtract_level
+from ..baseline import LevelTrack, bent_corners, level_off_reader, level_track
 from ..clipping import find_clipped, find_rails
 from ..parallel import channel_groups
 from ..resampling import MIN_SAMPLES_PER_CYCLE, ROW_SAMPLES_PER_CYCLE, TARGET_SAMPLES_PER_CYCLE, \
@@ -96,9 +96,12 @@ class BlockPlan(NamedTuple):
         Each channel's DC level over the plan's stretch (:func:`_level`),
         taken off before any fit (:func:`level_off`).
     follows : ndarray of bool or None
-        Channels whose level is followed in time as well
-        (:func:`artifactclean.baseline.slow_baseline`): those with no
-        clipped sample over the plan's stretch.
+        Channels whose level is followed in time as well (``track``): those
+        with no clipped sample over the plan's stretch.
+    track : LevelTrack or None
+        Each channel's slow level over the block's work range
+        (:func:`artifactclean.baseline.level_track`), read once by the plan
+        so that pieces of the block need no context for it.
     """
 
     ref: int
@@ -110,6 +113,7 @@ class BlockPlan(NamedTuple):
     judges: tuple = ()
     level: np.ndarray | None = None
     follows: np.ndarray | None = None
+    track: LevelTrack | None = None
 
 
 #: channels whose data judge the samples next to a DAC's tick edges (:class:`BlockPlan`, :func:`settle_edges`):
@@ -291,7 +295,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response, decided, harmonics, judges, level, follows = plan
+    ref, grid, unlocked, response, decided, harmonics, judges, level, follows, track = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -305,7 +309,8 @@ def _subset_plan(plan, fit: list[int]):
     # judges the clone does not see (an estimator that reads no reference data) are left out
     judges = tuple(rows.index(j) for j in judges if j in rows)
     return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics, judges,
-                     None if level is None else level[rows], None if follows is None else follows[rows])
+                     None if level is None else level[rows], None if follows is None else follows[rows],
+                     None if track is None else track.rows(rows))
 
 
 def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | None = None,
@@ -353,42 +358,37 @@ def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | Non
 _SHAM_LEVEL = 0.25
 
 
-def level_off(xb: np.ndarray, plan, fs: float | None = None, blk=None, weights: np.ndarray | None = None,
-              offset: int = 0) -> np.ndarray:
-    """``xb`` (samples from ``offset`` of ``blk``'s work range) less its block's DC level
-    (:attr:`BlockPlan.level`) and, on the channels the plan follows (:attr:`BlockPlan.follows`, given ``fs``
-    and ``blk``), less the level's drift (:func:`artifactclean.baseline.slow_baseline`; ``weights`` 0 where
-    a sample is lost, and within a cycle of a step or a short ramp, :func:`~artifactclean.baseline.bent_corners`):
-    a new array, the caller's is not changed.
+def level_off(xb: np.ndarray, plan, blk, offset: int = 0) -> np.ndarray:
+    """``xb`` (samples from ``offset`` of ``blk``'s recording) less its block's DC level
+    (:attr:`BlockPlan.level`) and, on the channels the plan follows (:attr:`BlockPlan.follows`), less the
+    level's drift (:attr:`BlockPlan.track`): a new array, the caller's is not changed.
 
     A DC-coupled amplifier holds tens of millivolts of electrode offset. The fits are blind to it only
     where every bin and part of the cycle weighs the same: outliers left out, clipped samples and the
     ramps' small gains let a share of it into the template's bins (a 20 mV offset at 40 Hz: 4000x the
     neural power within 3 Hz of the harmonics, the spike band at 5 x noise), and the row estimators
-    divide it by the envelope at the ramps' feet (110-200 x noise). The level is read once per block from
-    the plan's stretch, so every piece of a block takes off the same. Its drift is read from the data at
-    every sample (pieces carry :func:`~artifactclean.baseline.baseline_reach_s` more context, and the
-    points the level is read at are counted from the block's reference sample); on a channel that clips,
+    divide it by the envelope at the ramps' feet (110-200 x noise). Both the level and its drift are read
+    once per block by the plan, so every piece of a block takes off the same; on a channel that clips,
     whose samples at the rails are missing from every mean, only the constant level.
     """
     level = getattr(plan, "level", None)
     out = np.array(xb, dtype=np.float64) if level is None else xb - level[:xb.shape[0], None]
-    follows = getattr(plan, "follows", None)
-    if follows is None or fs is None or blk is None:
-        return out
-    subtract_level(out, fs, blk.freq_hz, np.flatnonzero(follows[:xb.shape[0]]), weights=weights,
-                   corners=np.asarray(bent_corners(blk.geometry(), fs / blk.freq_hz)) - offset,
-                   origin=offset - blk.ref_sample)
+    follows, track = getattr(plan, "follows", None), getattr(plan, "track", None)
+    if follows is not None and track is not None:
+        track.subtract(out, offset - blk.ref_sample, np.flatnonzero(follows[:xb.shape[0]]))
     return out
 
 
-def level_reader(read, blk, bounds: tuple[int, int], fs: float):
+def level_reader(read, blk, bounds: tuple[int, int], fs: float, mapper=map):
     """``read`` (as :meth:`CycleEstimator.prepare` takes it) with each channel's drifting level taken off where
-    none of its samples read is clipped (:func:`artifactclean.baseline.level_off_reader` within the block's
-    work range ``bounds``): the level :func:`level_off` takes off the same samples when the fits run."""
-    return level_off_reader(read, fs, blk.freq_hz, bounds, origin=blk.ref_sample,
-                            follow=lambda rows: ~find_clipped(rows, dilate=0).any(axis=1),
-                            corners=bent_corners(blk.geometry(), fs / blk.freq_hz))
+    none of its samples read is clipped, and the block's :class:`~artifactclean.baseline.LevelTrack` over its
+    work range ``bounds`` (read first, its parts spread by ``mapper``): the level :func:`level_off` takes off
+    the same samples when the fits run."""
+    n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+    track = level_track(read, fs, blk.freq_hz, bounds, n_ch, origin=blk.ref_sample,
+                        corners=bent_corners(blk.geometry(), fs / blk.freq_hz), mapper=mapper)
+    seen = level_off_reader(read, track, bounds, origin=blk.ref_sample, follow=lambda rows: ~find_clipped(rows, dilate=0).any(axis=1))
+    return seen, track
 
 
 #: float64 values of an upsampled block's copy (per channel: its samples times the factor times the estimator's
@@ -573,7 +573,7 @@ class CycleEstimator(ArtifactEstimator):
         # one block after another, each one's channels side by side (a block's plan waits for its jobs, so
         # blocks planned on the pool themselves could leave no worker for them)
         # every choice sees the data the fits will: each unclipped channel's drifting level taken off
-        seen = [level_reader(read, b, bounds[i], fs) for i, b in enumerate(blocks)]
+        seen, tracks = zip(*[level_reader(read, b, bounds[i], fs, mapper) for i, b in enumerate(blocks)])
         stretch = [self._stretch_plan(seen[i], b, fs, mapper) for i, b in enumerate(blocks)]
         # a heartbeat's phase over each whole block, once, from its reference channel: tasks on other channels
         # then need neither that channel nor the band-pass's context
@@ -615,7 +615,7 @@ class CycleEstimator(ArtifactEstimator):
         decided: dict[int, list] = {}
         for (i, _), part in zip(jobs, mapper(decide, jobs)):
             decided.setdefault(i, []).extend(part)
-        return [BlockPlan(*stretch[i][:4], decided.get(i), *stretch[i][4:]) for i in range(len(blocks))]
+        return [BlockPlan(*stretch[i][:4], decided.get(i), *stretch[i][4:], tracks[i]) for i in range(len(blocks))]
 
     def _heart_row(self, read, blk, fs, bounds, part, row):
         """One channel's share of a part of the heartbeat's track (see :meth:`_heart_part`): ``(positions,
@@ -1315,7 +1315,7 @@ class RowModelEstimator(CycleEstimator):
     def _block(self, xb, wb, u, fs, blk, offset):
         plan = self._block_plan(xb, blk, fs, offset)
         ref, dac, unlocked, response, decided = plan[:5]
-        xb = level_off(xb, plan, fs, blk, wb, offset)
+        xb = level_off(xb, plan, blk, offset)
         art, grid, censor, n_out, chosen = self._passes(xb, wb, u, fs, blk, offset, dac, response, decided)
         for info in chosen:
             del info["decided"]  # arrays: the report says what was chosen in words and counts
@@ -1418,11 +1418,12 @@ class RowModelEstimator(CycleEstimator):
         Per pass: the row filters' reach, the lost phases' censoring and the
         filling (:data:`_FILL_ROWS` rows each) and the row interpolation;
         between passes, the outlier threshold's stretch (:data:`_OUTLIER_ROWS` rows).
+        The slow level (:attr:`BlockPlan.track`) is read over the whole block
+        in the plan and needs no context here.
         """
         passes = 2 if self.robust else 1
         per_pass = HALF_S + (2 * _FILL_ROWS + 2) / freq_hz
-        return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz \
-            + baseline_reach_s(freq_hz)
+        return passes * per_pass + (passes - 1) * _OUTLIER_ROWS / freq_hz + self.margin_cycles / freq_hz
 
     #: the gain filter is always designed for these estimators (their rows follow the modulation)
     track_amplitude = True

@@ -50,7 +50,6 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage, signal, special
 
-from ..baseline import baseline_reach_s
 from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, shift_centres, \
@@ -414,14 +413,15 @@ class TemplateSubtraction(CycleEstimator):
         filter reaches :data:`artifactclean.modulation.HALF_S` seconds. With
         a DAC whose ticks repeat every ``cycles_per_row`` cycles the
         template's rows are such periods (see :meth:`block_context_seconds`).
-        The heartbeat's phase, where a block's plan models its harmonics, is
-        read over the whole block in the plan and needs no context here.
+        The heartbeat's phase, where a block's plan models its harmonics, and
+        the slow level (:attr:`~artifactclean.estimators.cycles.BlockPlan.track`)
+        are read over the whole block in the plan and need no context here.
         """
         k = self._rows(self._window(freq_hz), cycles_per_row)
         reach = (k + 2 * max(1, k // 4) + 2) * cycles_per_row
         # each pass builds on the previous pass's residual, so edge effects travel one window per pass
         passes = 3 if self.robust else 2
-        return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S + baseline_reach_s(freq_hz)
+        return (passes * reach + self.margin_cycles) / freq_hz + GAIN_HALF_S
 
     def block_context_seconds(self, blk) -> float:
         """:meth:`context_seconds` for ``blk``, with the rows its plan (:meth:`prepare`) gives it."""
@@ -451,7 +451,7 @@ class TemplateSubtraction(CycleEstimator):
         k_half = self._window(f)
         plan = self._block_plan(xb, blk, fs, offset)
         ref, grid, unlocked, response = plan[:4]
-        xb = level_off(xb, plan, fs, blk, wb, offset)
+        xb = level_off(xb, plan, blk, offset)
         pulse_model = None if response is None else response.pulse
         # the template's rows: cycles, or periods of a few cycles when a DAC's ticks repeat only so
         per = 1 if grid is None else grid.cycles_per_period
