@@ -634,3 +634,18 @@ def test_a_drifting_level_is_followed_before_the_fits(method):
         (drifted["spikeband_residual"], plain["spikeband_residual"])
     assert max(drifted["lfp_error_away"]) <= max(plain["lfp_error_away"]) + 0.01
     assert drifted["recall_ratio"] >= 0.99
+
+
+def test_stretch_bounds_read_a_chunk_at_a_time_number_the_samples_as_the_whole_block():
+    # the straightforward numbering: floor(u / span) over the whole block, a stretch starting where it changes
+    from artifactclean.estimators.cycles import _STRETCH_CHUNK, stretch_bounds
+
+    rng = np.random.default_rng(12)
+    for n in (1, 7, _STRETCH_CHUNK, _STRETCH_CHUNK + 1, 3 * _STRETCH_CHUNK + 5):
+        u = np.arange(n) * rng.uniform(1e-4, 1e-2) + rng.uniform(-5, 5)
+        for span in (0.7, 3.0, 30.0):
+            whole = np.concatenate(([0], np.flatnonzero(np.diff(np.floor(u / span).astype(np.int64))) + 1, [n]))
+            assert np.array_equal(stretch_bounds(u, span), whole)
+    # a stretch starting exactly at a chunk's first sample is found
+    u = np.arange(2 * _STRETCH_CHUNK) / _STRETCH_CHUNK
+    assert _STRETCH_CHUNK in stretch_bounds(u, 1.0).tolist()
