@@ -649,3 +649,20 @@ def test_stretch_bounds_read_a_chunk_at_a_time_number_the_samples_as_the_whole_b
     # a stretch starting exactly at a chunk's first sample is found
     u = np.arange(2 * _STRETCH_CHUNK) / _STRETCH_CHUNK
     assert _STRETCH_CHUNK in stretch_bounds(u, 1.0).tolist()
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_segment_positions_read_a_chunk_at_a_time_equal_numpy_interp(compiled):
+    # reference: numpy.interp row by row (held at the end knots as numpy.interp holds them)
+    from artifactclean.estimators._kernels import SegmentPositions
+
+    rng = np.random.default_rng(13)
+    n = 3 * SegmentPositions.chunk + 17
+    x = np.sort(rng.uniform(-1.0, 41.0, n))
+    xp = np.sort(rng.uniform(0.0, 40.0, 90))
+    fp = rng.normal(size=(3, xp.size))
+    got = SegmentPositions(xp, x).read(fp, compiled=compiled)
+    want = np.stack([np.interp(x, xp, row) for row in fp])
+    assert np.abs(got - want).max() < 1e-12
+    out = np.zeros((3, n))
+    assert SegmentPositions(xp, x).read(fp, out=out, compiled=compiled) is out and np.array_equal(out, got)

@@ -23,7 +23,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
 
 __all__ = ["HAVE_NUMBA", "PhaseGrid", "phase_eval", "phase_position", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
            "highpass_residual",
-           "lerp_positions", "lerp_rows", "widen_flags"]
+           "lerp_positions", "lerp_rows", "SegmentPositions", "widen_flags"]
 
 
 def _jit(fn):
@@ -273,6 +273,31 @@ def lerp_positions(xp: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarra
         return j, np.zeros(x.size)
     frac = np.clip((x - xp[j]) / (xp[j + 1] - xp[j]), 0.0, 1.0)
     return j, frac
+
+
+class SegmentPositions:
+    """Where each of the sorted samples ``x`` falls between the sorted knots ``xp``, found a chunk at a time
+    whenever rows of values at the knots are read there (:meth:`read`).
+
+    :func:`lerp_positions` of a whole block held an index and a fraction per sample through every pass
+    (1.5 float64 values a sample beside a one-channel task's 11); read a chunk at a time, the same numbers.
+    """
+
+    #: samples placed at once
+    chunk = 1 << 16
+
+    def __init__(self, xp: np.ndarray, x: np.ndarray) -> None:
+        self.xp, self.x = xp, x
+
+    def read(self, fp: np.ndarray, out: np.ndarray | None = None, *, compiled: bool = True) -> np.ndarray:
+        """Each row of ``fp`` (n_rows, n_knots) at every sample (:func:`lerp_rows`), into ``out`` if given."""
+        n = self.x.size
+        if out is None:
+            out = np.empty((fp.shape[0], n))
+        for c0 in range(0, n, self.chunk):
+            c1 = min(n, c0 + self.chunk)
+            out[:, c0:c1] = lerp_rows(fp, *lerp_positions(self.xp, self.x[c0:c1]), compiled=compiled)
+        return out
 
 
 def lerp_rows_np(fp, j, frac, out):

@@ -54,7 +54,7 @@ from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, shift_centres, \
     smooth_gain, to_middles
-from ._kernels import (PhaseGrid, group_position, grouped_eval, lerp_positions, lerp_rows, phase_eval, segment_stats,
+from ._kernels import (PhaseGrid, SegmentPositions, group_position, grouped_eval, phase_eval, segment_stats,
                        tick_eval, tick_sums)
 from ..pulse import HEART_HZ
 from ..staircase import DacClock
@@ -534,8 +534,8 @@ class TemplateSubtraction(CycleEstimator):
         del seg
         # each segment's first phase, and the phase step per sample (phase is linear in samples)
         seg_first = (u[seg_starts], (u[-1] - u[0]) / max(n - 1, 1), per_cycle)
-        # every pass reads the gain at the same phases: place them between segment centres once
-        seg_pos = lerp_positions(seg_u, u)
+        # every pass reads the gain at the same phases, placed between segment centres a chunk at a time
+        seg_pos = SegmentPositions(seg_u, u)
 
         censored = fill = failed = complete = None
         wb0 = wb
@@ -712,7 +712,7 @@ class TemplateSubtraction(CycleEstimator):
             eta = ndimage.convolve1d(to_middles(filled[None, :], np.where(use, shift, 0.0)[None, :], per_cycle,
                                                 slope=cycle_slope(eta[None, :], per_cycle))[0], taps, mode="nearest")
             eta[seg_env <= _FOOT] = 0.0
-            term = lerp_rows(eta[None, :], *seg_pos, compiled=self.compiled)
+            term = seg_pos.read(eta[None, :], compiled=self.compiled)
             term *= d_n
             t_n[ch] += term[0]
 
@@ -911,7 +911,7 @@ class TemplateSubtraction(CycleEstimator):
             # the heartbeat's harmonics are read back at the samples from the track, not between segment
             # centres (whose interpolation puts their images beside the stimulation frequency)
             g = g - part
-        out = lerp_rows(g, *seg_pos, out=out, compiled=self.compiled)
+        out = seg_pos.read(g, out=out, compiled=self.compiled)
         if fine:
             response.pulse.add_at_samples(out, seg_rate, pulse_grid, trap)
         if trap is not None:
