@@ -392,15 +392,15 @@ def level_off(xb: np.ndarray, plan, blk, offset: int = 0) -> np.ndarray:
     return out
 
 
-def level_reader(read, blk, bounds: tuple[int, int], fs: float, mapper=map):
+def level_reader(read, blk, bounds: tuple[int, int], fs: float, n_ch: int, mapper=map):
     """``read`` (as :meth:`CycleEstimator.prepare` takes it) with each channel's drifting level taken off where
     none of its samples read is clipped, and the block's :class:`~artifactclean.baseline.LevelTrack` over its
     work range ``bounds`` (read first, its parts spread by ``mapper``): the level :func:`level_off` takes off
-    the same samples when the fits run."""
-    n_ch = np.asarray(read(blk.start, blk.start + 1)).shape[0]
+    the same samples when the fits run (``n_ch``: the channels ``read`` gives)."""
     track = level_track(read, fs, blk.freq_hz, bounds, n_ch, origin=blk.ref_sample,
                         corners=bent_corners(blk.geometry(), fs / blk.freq_hz), mapper=mapper)
-    seen = level_off_reader(read, track, bounds, origin=blk.ref_sample, follow=lambda rows: ~find_clipped(rows, dilate=0).any(axis=1))
+    seen = level_off_reader(read, track, bounds, origin=blk.ref_sample,
+                            follow=lambda rows: ~find_clipped(rows, dilate=0).any(axis=1))
     return seen, track
 
 
@@ -586,7 +586,8 @@ class CycleEstimator(ArtifactEstimator):
         # one block after another, each one's channels side by side (a block's plan waits for its jobs, so
         # blocks planned on the pool themselves could leave no worker for them)
         # every choice sees the data the fits will: each unclipped channel's drifting level taken off
-        seen, tracks = zip(*[level_reader(read, b, bounds[i], fs, mapper) for i, b in enumerate(blocks)])
+        n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0]
+        seen, tracks = zip(*[level_reader(read, b, bounds[i], fs, n_ch, mapper) for i, b in enumerate(blocks)])
         stretch = [self._stretch_plan(seen[i], b, fs, mapper) for i, b in enumerate(blocks)]
         # a heartbeat's phase over each whole block, once, from its reference channel: tasks on other channels
         # then need neither that channel nor the band-pass's context
@@ -610,7 +611,6 @@ class CycleEstimator(ArtifactEstimator):
             track = join_tracks(done[i], model.heart_hz, fs)
             # every model the estimators apply has its track (none only if the range held no gain sample)
             stretch[i][3].pulse = None if track is None else model.with_track(track)
-        n_ch = np.asarray(read(blocks[0].start, blocks[0].start + 1)).shape[0]
         # the estimator's own choices, per block and group of channels, side by side
         jobs = [(i, rows) for i, b in enumerate(blocks) for rows in self._decide_groups(b, fs, n_ch, bounds[i])]
 
