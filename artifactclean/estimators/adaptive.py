@@ -302,16 +302,17 @@ class AdaptiveCanceller(CycleEstimator):
             monitor = self._monitor[offset:offset + xb.shape[1]]
         elif self.reference == "monitor":
             raise ValueError("reference='monitor' needs the monitor channel: pass stim_reference= to fit or clean")
+        only_taps = monitor is not None and self.reference == "monitor"
         art = np.zeros_like(xb)
         hs = []
         for ch in range(xb.shape[0]):
-            h = self._harmonics(xb[ch], wb[ch], u, fs, f)
+            # the monitor's taps alone need no count of the waveform's harmonics
+            h = None if only_taps else self._harmonics(xb[ch], wb[ch], u, fs, f)
             hs.append(h)
             refs = self._refs(u, monitor, h)
             # the references are zero outside the block's envelope only through the data: the filter
             # follows the ramps itself
             art[ch] = self._fit(refs, xb[ch], wb[ch], fs)
-        only_taps = monitor is not None and self.reference == "monitor"
         info = dict(freq_hz=f, algorithm=self.algorithm,
                     reference="model" if monitor is None else ("monitor" if only_taps else "monitor+model"),
                     harmonics=None if only_taps else hs,
