@@ -666,3 +666,19 @@ def test_segment_positions_read_a_chunk_at_a_time_equal_numpy_interp(compiled):
     assert np.abs(got - want).max() < 1e-12
     out = np.zeros((3, n))
     assert SegmentPositions(xp, x).read(fp, out=out, compiled=compiled) is out and np.array_equal(out, got)
+
+
+def test_segment_positions_compiled_walk_equals_the_numpy_search_to_the_bit():
+    # the compiled read walks samples and knots together; the numpy twin searches per sample: the same bits,
+    # for samples on the knots, beyond both ends and out of order
+    from artifactclean.estimators._kernels import HAVE_NUMBA, SegmentPositions
+
+    if not HAVE_NUMBA:
+        pytest.skip("numba not installed")
+    rng = np.random.default_rng(14)
+    xp = np.sort(rng.uniform(0.0, 40.0, 300))
+    x = np.sort(np.concatenate([xp, rng.uniform(-2.0, 42.0, 50_000)]))
+    fp = rng.normal(size=(2, xp.size))
+    for pts in (x, rng.permutation(x)):
+        walk = SegmentPositions(xp, pts).read(fp, compiled=True)
+        assert np.array_equal(walk, SegmentPositions(xp, pts).read(fp, compiled=False))

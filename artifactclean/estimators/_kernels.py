@@ -294,6 +294,12 @@ class SegmentPositions:
         n = self.x.size
         if out is None:
             out = np.empty((fp.shape[0], n))
+        if compiled and HAVE_NUMBA and fp.shape[1] >= 2:
+            # one walk along samples and knots together: no search per sample (sorted against sorted),
+            # no index or fraction arrays; the arithmetic of lerp_positions and lerp_rows, so the same bits
+            _lerp_sorted_c(np.ascontiguousarray(self.xp, dtype=np.float64), np.ascontiguousarray(self.x),
+                           np.ascontiguousarray(fp, dtype=np.float64), out)
+            return out
         for c0 in range(0, n, self.chunk):
             c1 = min(n, c0 + self.chunk)
             out[:, c0:c1] = lerp_rows(fp, *lerp_positions(self.xp, self.x[c0:c1]), compiled=compiled)
@@ -533,6 +539,25 @@ def _lerp_rows_loop(fp, j, frac, out):
             out[ch, i] = (fp[ch, j[i] + 1] - lo) * frac[i] + lo
 
 
+def _lerp_sorted_loop(xp, x, fp, out):
+    # j = clip(searchsorted(xp, x, "right") - 1, 0, m - 2) by walking the knots with the samples
+    # (forwards for sorted samples, either way for any), then lerp_positions' fraction and lerp_rows' sum
+    m = xp.size
+    cnt = 0  # knots at or below the sample: xp[cnt - 1] <= x[i] < xp[cnt]
+    for i in range(x.size):
+        xi = x[i]
+        while cnt < m and xp[cnt] <= xi:
+            cnt += 1
+        while cnt > 0 and xp[cnt - 1] > xi:
+            cnt -= 1
+        j = min(max(cnt - 1, 0), m - 2)
+        frac = (xi - xp[j]) / (xp[j + 1] - xp[j])
+        frac = min(max(frac, 0.0), 1.0)
+        for ch in range(fp.shape[0]):
+            lo = fp[ch, j]
+            out[ch, i] = (fp[ch, j + 1] - lo) * frac + lo
+
+
 def _widen_flags_loop(bad, half, out):
     n = bad.shape[1]
     for ch in range(bad.shape[0]):
@@ -552,6 +577,7 @@ def _widen_flags_loop(bad, half, out):
 _widen_flags_c = _jit(_widen_flags_loop)
 _highpass_residual_c = _jit(_highpass_residual_loop)
 _lerp_rows_c = _jit(_lerp_rows_loop)
+_lerp_sorted_c = _jit(_lerp_sorted_loop)
 _gain_bin_sums_c = _jit(_gain_bin_sums_loop)
 _gain_seg_sums_c = _jit(_gain_seg_sums_loop)
 
