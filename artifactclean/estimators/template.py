@@ -69,8 +69,16 @@ def _group_window(grp: np.ndarray, k_groups: int) -> np.ndarray:
     n_ch, n_groups, n_bins = grp.shape
     c = np.zeros((n_ch, n_groups + 1, n_bins))
     np.cumsum(grp, axis=1, out=c[:, 1:])
-    idx = np.arange(n_groups)
-    return c[:, np.minimum(idx + k_groups + 1, n_groups)] - c[:, np.maximum(idx - k_groups, 0)]
+    # c[min(i + k + 1, n)] - c[max(i - k, 0)] from slices (an index array per group gathered two copies)
+    k = max(int(k_groups), 0)
+    out = np.empty((n_ch, n_groups, n_bins))
+    m = max(0, n_groups - k - 1)  # groups whose window ends inside
+    out[:, :m] = c[:, k + 1:k + 1 + m]
+    out[:, m:] = c[:, n_groups:n_groups + 1]
+    s = min(k, n_groups)  # groups whose window starts at the first
+    out[:, :s] -= c[:, :1]
+    out[:, s:] -= c[:, :n_groups - s]
+    return out
 
 
 def _phase_derivative(t: np.ndarray, n_bins: int) -> np.ndarray:
