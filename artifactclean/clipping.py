@@ -22,14 +22,15 @@ def find_rails(data: np.ndarray, *, min_run: int = 2) -> tuple[np.ndarray, np.nd
     x = np.atleast_2d(data)
     hi = np.full(x.shape[0], np.inf)
     lo = np.full(x.shape[0], -np.inf)
+    top, bottom = (x.max(axis=1), x.min(axis=1)) if x.shape[1] else (np.zeros(x.shape[0]),) * 2
     for ch in range(x.shape[0]):
         row = x[ch]
-        if row.max() == row.min():
+        if top[ch] == bottom[ch]:
             continue  # flat: constant, not clipped
-        for rail, out in ((row.max(), hi), (row.min(), lo)):
+        for rail, out in ((top[ch], hi), (bottom[ch], lo)):
             at = row == rail
             # two equal neighbours at the extreme make a run; only then look for longer ones
-            if np.any(at[1:] & at[:-1]) and any(b - a >= min_run for a, b in mask_runs(at)):
+            if np.any(at[1:] & at[:-1]) and (min_run <= 2 or any(b - a >= min_run for a, b in mask_runs(at))):
                 out[ch] = rail
     return hi, lo
 
