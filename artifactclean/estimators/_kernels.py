@@ -391,11 +391,13 @@ def _phase_eval_loop(t, n_bins, u, row0, stride, n_groups, out):
         i0 = min(max(np.int64(np.floor(q)), 0), last)
         beta = min(max(q - i0, 0.0), 1.0)
         i1 = min(i0 + 1, last)
-        bpos = np.mod(uc, 1.0) * n_bins - 0.5
+        # np.mod(uc, 1.0) with a floor for its division (exact either way: the same bits), and the bins'
+        # wrap-around only where a bin falls outside the cycle
+        bpos = (uc - np.floor(uc)) * n_bins - 0.5
         b0f = np.int64(np.floor(bpos))
         a = bpos - b0f
-        b0 = np.mod(b0f, n_bins)
-        b1 = np.mod(b0f + 1, n_bins)
+        b0 = b0f if 0 <= b0f < n_bins else b0f % n_bins
+        b1 = b0f + 1 if b0f + 1 < n_bins and b0f + 1 >= 0 else (b0f + 1) % n_bins
         r0 = i0 * n_bins
         r1 = i1 * n_bins
         for ch in range(t.shape[0]):
