@@ -682,3 +682,22 @@ def test_segment_positions_compiled_walk_equals_the_numpy_search_to_the_bit():
     for pts in (x, rng.permutation(x)):
         walk = SegmentPositions(xp, pts).read(fp, compiled=True)
         assert np.array_equal(walk, SegmentPositions(xp, pts).read(fp, compiled=False))
+
+
+@pytest.mark.parametrize("shape", [(1, 1, 300), (2, 57, 300), (3, 10, 7), (1, 400, 25)])
+def test_group_window_sums_the_clamped_windows(shape):
+    # reference: the window's groups added one by one; and, to the bit, the running sum of numpy.cumsum read
+    # at index arrays (the form the slices and the row-by-row sum replaced)
+    from artifactclean.estimators.template import _group_window
+
+    rng = np.random.default_rng(15)
+    grp = rng.normal(size=shape) * 10.0 ** rng.uniform(-3, 3, size=shape)
+    n = shape[1]
+    for k in (0, 1, 2, 9, 60):
+        got = _group_window(grp, k)
+        plain = np.stack([grp[:, max(0, i - k):min(n, i + k + 1)].sum(axis=1) for i in range(n)], axis=1)
+        np.testing.assert_allclose(got, plain, rtol=1e-9, atol=1e-9 * np.abs(grp).sum())
+        c = np.zeros((shape[0], n + 1, shape[2]))
+        np.cumsum(grp, axis=1, out=c[:, 1:])
+        idx = np.arange(n)
+        assert np.array_equal(got, c[:, np.minimum(idx + k + 1, n)] - c[:, np.maximum(idx - k, 0)])

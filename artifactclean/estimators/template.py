@@ -67,8 +67,15 @@ __all__ = ["TemplateSubtraction"]
 def _group_window(grp: np.ndarray, k_groups: int) -> np.ndarray:
     """Sums over groups ``i-k .. i+k`` (clamped) of (n_ch, n_groups, n_bins) group sums."""
     n_ch, n_groups, n_bins = grp.shape
-    c = np.zeros((n_ch, n_groups + 1, n_bins))
-    np.cumsum(grp, axis=1, out=c[:, 1:])
+    c = np.empty((n_ch, n_groups + 1, n_bins))
+    c[:, 0] = 0.0
+    if n_ch * n_bins >= 256:
+        # the running sum a group at a time: whole rows added in order, the additions of numpy.cumsum along
+        # the groups (the same bits), three times as fast as its strided walk on a cycle's bins
+        for i in range(n_groups):
+            np.add(c[:, i], grp[:, i], out=c[:, i + 1])
+    else:
+        np.cumsum(grp, axis=1, out=c[:, 1:])
     # c[min(i + k + 1, n)] - c[max(i - k, 0)] from slices (an index array per group gathered two copies)
     k = max(int(k_groups), 0)
     out = np.empty((n_ch, n_groups, n_bins))
