@@ -281,6 +281,8 @@ class SegmentPositions:
 
     :func:`lerp_positions` of a whole block held an index and a fraction per sample through every pass
     (1.5 float64 values a sample beside a one-channel task's 11); read a chunk at a time, the same numbers.
+    Compiled, one loop walks the samples and the knots together and interpolates as it goes (no search
+    per sample, no position arrays), with the same arithmetic: the same bits.
     """
 
     #: samples placed at once
