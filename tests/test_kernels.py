@@ -38,6 +38,20 @@ def test_kernels_match_numpy(rng):
     buf = np.full(twin.shape, np.nan)
     assert K.tick_eval(t, key, 50, 3, 6, out=buf) is buf
     np.testing.assert_array_equal(buf, twin)
+    # runs of one key (a tick's samples) in any order of ticks, keys coming back later, a lone key at each end:
+    # the compiled loops reuse a run's cell and values, the twins compute every sample
+    ticks = rng.permutation(np.r_[np.arange(0, 20 * 50, 7), np.arange(0, 20 * 50, 11)])
+    runs = np.repeat(ticks, -(-x.shape[1] // ticks.size))
+    key = np.r_[5, runs[: x.shape[1] - 2], 999]
+    assert key.size == x.shape[1]
+    np.testing.assert_array_equal(K.tick_eval(t, key, 50, 3, 6), K.tick_eval_np(t, key, 50, 3, 6))
+    # (the sums' twin takes ticks in order; here a plain scatter-add, numpy.add.at, is the reference)
+    cell = (key // 50 // 3) * 50 + key % 50
+    for got, v in zip(K.tick_sums(x, w, gain, key, 50, 3, 7), (w * gain * x, w * gain * gain)):
+        want = np.zeros((x.shape[0], 7 * 50))
+        for ch in range(x.shape[0]):
+            np.add.at(want[ch], cell, v[ch])
+        np.testing.assert_allclose(got.reshape(x.shape[0], -1), want, rtol=1e-10, atol=1e-10)
     starts = np.unique(np.r_[0, rng.integers(1, x.shape[1], 50)])
     for a, b in zip(K.segment_stats(x, w, gain, starts), K.segment_stats_np(x, w, gain, starts)):
         np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)

@@ -360,14 +360,21 @@ def _grid_sums_loop(x, w, gain, u0, slope, row0, n_grid, n_bins, stride, s_out, 
 
 
 def _tick_sums_loop(x, w, gain, key, n_bins, stride, s_out, g_out):
+    # a tick's samples share its key: the cell (two integer divisions) is found once per run of them
     n_ch, n = x.shape
     for ch in range(n_ch):
+        have = False
+        prev = 0
+        k = 0
         for i in range(n):
             wg = w[ch, i] * gain[ch, i]
             if wg == 0.0:
                 continue
-            row = key[i] // n_bins
-            k = (row // stride) * n_bins + (key[i] - row * n_bins)
+            if not have or key[i] != prev:
+                have = True
+                prev = key[i]
+                row = prev // n_bins
+                k = (row // stride) * n_bins + (prev - row * n_bins)
             s_out[ch, k] += wg * x[ch, i]
             g_out[ch, k] += wg * gain[ch, i]
 
@@ -409,9 +416,14 @@ def _phase_eval_loop(t, n_bins, u, row0, stride, n_groups, out):
 
 
 def _tick_eval_loop(t, key, n_bins, stride, n_groups, out):
-    # tick_eval_np's arithmetic, operation for operation, without its five index arrays of the data's size
+    # tick_eval_np's arithmetic, operation for operation, without its five index arrays of the data's size;
+    # a sample with its predecessor's key takes its values (a tick's samples share one)
     last = n_groups - 1
     for i in range(key.size):
+        if i > 0 and key[i] == key[i - 1]:
+            for ch in range(t.shape[0]):
+                out[ch, i] = out[ch, i - 1]
+            continue
         row = key[i] // n_bins
         b = key[i] - row * n_bins
         q = (row + (b + 0.5) / n_bins) / stride - 0.5
