@@ -406,7 +406,7 @@ def _phase_eval_loop(t, n_bins, u, row0, stride, n_groups, out):
         b0f = np.int64(np.floor(bpos))
         a = bpos - b0f
         b0 = b0f if 0 <= b0f < n_bins else b0f % n_bins
-        b1 = b0f + 1 if b0f + 1 < n_bins and b0f + 1 >= 0 else (b0f + 1) % n_bins
+        b1 = b0f + 1 if 0 <= b0f + 1 < n_bins else (b0f + 1) % n_bins
         r0 = i0 * n_bins
         r1 = i1 * n_bins
         for ch in range(t.shape[0]):
