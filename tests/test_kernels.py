@@ -127,6 +127,50 @@ def test_residual_highpass_flag_widening_and_interpolation_match_scipy_and_numpy
     np.testing.assert_allclose(K.lerp_rows(fp, *K.lerp_positions(xp, pts), compiled=False), got, rtol=1e-12)
 
 
+def _outlier_flags_by_numpy_quantile(hp, w, bounds, scale):
+    # reference: numpy.quantile (default "linear" method, Hyndman & Fan 1996 definition 7) per stretch
+    bad = np.zeros(hp.shape, dtype=bool)
+    thr = np.full((hp.shape[0], len(bounds) - 1), np.nan)
+    for ch in range(hp.shape[0]):
+        for s, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
+            ok = w[ch, a:b] > 0
+            if ok.sum() >= 16:
+                med, q99 = np.quantile(hp[ch, a:b][ok], [0.5, 0.99])
+                thr[ch, s] = max(scale * med, q99, 1e-12)
+                bad[ch, a:b] = (hp[ch, a:b] > thr[ch, s]) & ok
+    return bad, thr
+
+
+@pytest.mark.parametrize("draw", ["spread", "ties", "zeros", "constant", "short stretches", "non-finite"])
+def test_outlier_flags_find_numpys_quantiles_to_the_bit(rng, draw):
+    n = 60000
+    hp = np.abs(rng.standard_normal((3, n))) * 10.0 ** rng.uniform(-3, 3, size=(3, 1))
+    w = (rng.uniform(size=hp.shape) > 0.2).astype(float)
+    bounds = np.concatenate(([0], np.sort(rng.choice(np.arange(1, n), 12, replace=False)), [n]))
+    if draw == "ties":  # many samples share a value, so a rank's bin holds equal values
+        hp = np.round(hp / hp.mean(), 1)
+    elif draw == "zeros":
+        hp[:, ::3] = 0.0
+    elif draw == "constant":
+        hp = np.full(hp.shape, 2.5)
+        hp[:, ::7] = 3.5
+    elif draw == "short stretches":  # around the 16 counted samples a stretch needs: wide gaps between ranks
+        bounds = np.concatenate(([0], np.cumsum(rng.integers(12, 40, size=400)), [n]))
+    elif draw == "non-finite":  # numpy's own handling (nan: no threshold) is kept for such stretches
+        hp[0, 100] = np.nan
+        hp[1, 30000] = np.inf
+    # 4.5 robust SDs (the median above it decides), then a scale under it (the 99th percentile decides)
+    for scale in (4.5 * 1.4826, 1.0):
+        got, thr = K.outlier_flags(hp, w, bounds, scale, return_thresholds=True)
+        ref, ref_thr = _outlier_flags_by_numpy_quantile(hp, w, bounds, scale)
+        np.testing.assert_array_equal(thr, ref_thr)  # bitwise, nan where a stretch is too short
+        np.testing.assert_array_equal(got, ref)
+        np.testing.assert_array_equal(K.outlier_flags(hp, w, bounds, scale, compiled=False), got)
+        assert not got[w == 0].any()
+        if draw == "spread" and scale == 1.0:  # about 1% of the counted samples above the 99th percentile
+            assert 0.009 < got.sum() / (w > 0).sum() < 0.011
+
+
 @pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])
 def test_estimator_same_with_and_without_compiled_loops(fixture, request):
     rec = request.getfixturevalue(fixture)

@@ -22,7 +22,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     HAVE_NUMBA = False
 
 __all__ = ["HAVE_NUMBA", "PhaseGrid", "phase_eval", "phase_position", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
-           "highpass_residual",
+           "highpass_residual", "outlier_flags",
            "lerp_positions", "lerp_rows", "SegmentPositions", "widen_flags"]
 
 
@@ -255,6 +255,31 @@ def highpass_residual_np(sos, x, t, gain, w):
     """``|sosfilt(sos, (x - gain t) * (w > 0))|`` along the last axis (``gain`` None means 1)."""
     r = x - (t if gain is None else gain * t)
     return np.abs(signal.sosfilt(sos, r * (w > 0), axis=-1))
+
+
+def outlier_flags_np(hp, w, bounds, scale):
+    """Flags of ``hp > max(scale * median, 99th percentile, 1e-12)`` per stretch, where ``w > 0``, and the thresholds.
+
+    The median and the 99th percentile are :func:`numpy.quantile`'s (linear
+    interpolation) of the stretch's samples with ``w > 0``; stretches with
+    fewer than 16 such samples flag nothing (threshold nan).
+    """
+    bad = np.zeros(hp.shape, dtype=bool)
+    thresholds = np.full((hp.shape[0], len(bounds) - 1), np.nan)
+    for ch in range(hp.shape[0]):
+        for s, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
+            _stretch_flags_np(hp, w, ch, s, a, b, scale, bad, thresholds)
+    return bad, thresholds
+
+
+def _stretch_flags_np(hp, w, ch, s, a, b, scale, bad, thresholds):
+    seg, ok = hp[ch, a:b], w[ch, a:b] > 0
+    use = seg[ok]
+    if use.size < 16:
+        return
+    med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
+    thresholds[ch, s] = thr = max(scale * med, q99, 1e-12)
+    bad[ch, a:b] = (seg > thr) & ok
 
 
 def widen_flags_np(bad, half):
@@ -574,6 +599,109 @@ def _lerp_sorted_loop(xp, x, fp, out):
             out[ch, i] = (fp[ch, j + 1] - lo) * frac + lo
 
 
+#: top bits of a non-negative float64 counted to place order statistics: sign, exponent, 4 mantissa bits
+_KEY_SHIFT = 48
+_N_KEYS = 1 << 16
+#: keys of inf and nan: their stretches go to numpy
+_KEY_NONFINITE = 0x7FF0
+
+
+def _quantile_lerp(a, b, g):
+    # numpy.quantile's linear interpolation (numpy/lib/_function_base_impl.py, _lerp), operation for operation
+    d = b - a
+    if g >= 0.5:
+        return b - d * (1.0 - g)
+    return a + d * g
+
+
+def _outlier_flags_loop(hp, bits, w, bounds, scale, q_mid, q_top, hist, slot, buf, bad, thresholds, to_numpy):
+    # hp >= 0, so its bit patterns sort as its values do: the order statistics' bins are found by counting
+    # keys (the patterns' top bits), and only those bins' samples are gathered and sorted
+    ranks = np.empty(4, dtype=np.int64)
+    bins = np.empty(4, dtype=np.int64)
+    before = np.empty(4, dtype=np.int64)
+    vals = np.empty(4)
+    sizes = np.empty(4, dtype=np.int64)
+    cursor = np.empty(4, dtype=np.int64)
+    start = np.empty(4, dtype=np.int64)
+    for ch in range(hp.shape[0]):
+        for s in range(bounds.size - 1):
+            a = bounds[s]
+            b = bounds[s + 1]
+            n = 0
+            kmin = _N_KEYS
+            kmax = -1
+            for i in range(a, b):
+                if w[ch, i] > 0:
+                    k = np.int64(bits[ch, i] >> _KEY_SHIFT)
+                    hist[k] += 1
+                    n += 1
+                    if k < kmin:
+                        kmin = k
+                    if k > kmax:
+                        kmax = k
+            if n < 16 or kmax >= _KEY_NONFINITE:
+                if n >= 16:
+                    to_numpy[ch, s] = True
+                for k in range(kmin, kmax + 1):
+                    hist[k] = 0
+                continue
+            # numpy's virtual indices (n - 1) * q; both fall below n - 1 from 16 samples on
+            v0 = (n - 1) * q_mid
+            v1 = (n - 1) * q_top
+            p0 = np.floor(v0)
+            p1 = np.floor(v1)
+            ranks[0] = np.int64(p0)
+            ranks[1] = ranks[0] + 1
+            ranks[2] = np.int64(p1)
+            ranks[3] = ranks[2] + 1
+            # the bin of each rank, the count below that bin and the bin's own count
+            r = 0
+            cum = 0
+            for k in range(kmin, kmax + 1):
+                c = hist[k]
+                while r < 4 and ranks[r] < cum + c:
+                    bins[r] = k
+                    before[r] = cum
+                    sizes[r] = c
+                    r += 1
+                cum += c
+                hist[k] = 0
+            # the distinct bins' samples go to consecutive stretches of buf
+            used = 0
+            for r in range(4):
+                if slot[bins[r]] < 0:
+                    slot[bins[r]] = r
+                    start[r] = used
+                    cursor[r] = used
+                    used += sizes[r]
+            for i in range(a, b):
+                if w[ch, i] > 0:
+                    t = slot[np.int64(bits[ch, i] >> _KEY_SHIFT)]
+                    if t >= 0:
+                        buf[cursor[t]] = hp[ch, i]
+                        cursor[t] += 1
+            for r in range(4):
+                t = slot[bins[r]]
+                if t == r:
+                    buf[start[r]:cursor[r]].sort()
+            for r in range(4):
+                t = slot[bins[r]]
+                vals[r] = buf[start[t] + ranks[r] - before[r]]
+            for r in range(4):
+                slot[bins[r]] = -1
+            med = _quantile_lerp_c(vals[0], vals[1], v0 - p0)
+            q99 = _quantile_lerp_c(vals[2], vals[3], v1 - p1)
+            thr = scale * med  # Python's max(scale * med, q99, 1e-12)
+            if q99 > thr:
+                thr = q99
+            if 1e-12 > thr:
+                thr = 1e-12
+            thresholds[ch, s] = thr
+            for i in range(a, b):
+                bad[ch, i] = hp[ch, i] > thr and w[ch, i] > 0
+
+
 def _widen_flags_loop(bad, half, out):
     n = bad.shape[1]
     for ch in range(bad.shape[0]):
@@ -591,6 +719,8 @@ def _widen_flags_loop(bad, half, out):
 
 
 _widen_flags_c = _jit(_widen_flags_loop)
+_quantile_lerp_c = _jit(_quantile_lerp)
+_outlier_flags_c = _jit(_outlier_flags_loop)
 _highpass_residual_c = _jit(_highpass_residual_loop)
 _lerp_rows_c = _jit(_lerp_rows_loop)
 _lerp_sorted_c = _jit(_lerp_sorted_loop)
@@ -765,6 +895,57 @@ def lerp_rows(fp, j, frac, out=None, *, compiled: bool = True) -> np.ndarray:
         return lerp_rows_np(fp, j, frac, out)
     _lerp_rows_c(np.ascontiguousarray(fp, dtype=np.float64), j, frac, out)
     return out
+
+
+def outlier_flags(hp, w, bounds, scale: float, *, compiled: bool = True,
+                  return_thresholds: bool = False):
+    """Spike-band outlier flags: ``hp > max(scale * median, 99th percentile, 1e-12)`` stretch by stretch.
+
+    Parameters
+    ----------
+    hp : ndarray, shape (n_rows, n)
+        Rectified (non-negative) high-passed residual.
+    w : ndarray, shape (n_rows, n)
+        Weights; only samples with ``w > 0`` are counted and flagged.
+    bounds : ndarray of int
+        Stretch starts and the end (:func:`~artifactclean.estimators.cycles.stretch_bounds`).
+    scale : float
+        Multiplier of the median (the threshold in robust SDs times 1.4826).
+    compiled : bool
+        Use the compiled loop where numba is installed.
+    return_thresholds : bool
+        Also return each row's and stretch's threshold (nan where a stretch
+        has fewer than 16 counted samples).
+
+    Returns
+    -------
+    bad : ndarray of bool, shape (n_rows, n)
+    thresholds : ndarray, shape (n_rows, len(bounds) - 1)
+        Only if ``return_thresholds``.
+
+    Notes
+    -----
+    The same flags and thresholds, to the bit, as :func:`outlier_flags_np`,
+    whose quantiles are :func:`numpy.quantile`'s: the compiled loop finds the
+    same order statistics by counting the samples' bit patterns (no
+    partition of a copy) and interpolates between them as numpy does.
+    """
+    bounds = np.asarray(bounds, dtype=np.int64)
+    if not (compiled and HAVE_NUMBA):
+        bad, thresholds = outlier_flags_np(hp, w, bounds, scale)
+        return (bad, thresholds) if return_thresholds else bad
+    hp = np.ascontiguousarray(hp, dtype=np.float64)
+    bad = np.zeros(hp.shape, dtype=bool)
+    thresholds = np.full((hp.shape[0], max(bounds.size - 1, 0)), np.nan)
+    to_numpy = np.zeros(thresholds.shape, dtype=bool)
+    longest = int(np.diff(bounds).max()) if bounds.size > 1 else 0
+    # 0.5 and 0.99 as numpy holds them: float64 of the Python floats
+    _outlier_flags_c(hp, hp.view(np.uint64), w, bounds, float(scale), 0.5, 0.99,
+                     np.zeros(_N_KEYS, dtype=np.int64), np.full(_N_KEYS, -1, dtype=np.int64), np.empty(longest),
+                     bad, thresholds, to_numpy)
+    for ch, s in zip(*np.nonzero(to_numpy)):
+        _stretch_flags_np(hp, w, ch, s, bounds[s], bounds[s + 1], scale, bad, thresholds)
+    return (bad, thresholds) if return_thresholds else bad
 
 
 def widen_flags(bad, half: int, *, compiled: bool = True) -> np.ndarray:

@@ -35,7 +35,7 @@ from ..modulation import _FOOT, FOLLOW_HZ, HALF_S, GainResponse, KEEP_HZ, design
     follow_below, lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, \
     segment_phase, segments_per_cycle, sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
-from ._kernels import group_position, grouped_eval, highpass_residual, phase_eval, piece_bounds, widen_flags
+from ._kernels import group_position, grouped_eval, highpass_residual, outlier_flags, phase_eval, piece_bounds, widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
@@ -280,20 +280,10 @@ def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compile
     sos = signal.butter(2, min(300.0, 0.4 * fs), btype="highpass", fs=fs, output="sos")
     # lost samples carry no residual (zero), so their edges do not ring into flags
     hp = highpass_residual(sos, x, fit, gain, wb, compiled=compiled)
-    bad = np.zeros(hp.shape, dtype=bool)
-    bounds = stretch_bounds(u, span_cycles)
-    for ch in range(hp.shape[0]):
-        for a, b in zip(bounds[:-1], bounds[1:]):
-            seg, ok = hp[ch, a:b], wb[ch, a:b] > 0
-            use = seg[ok]
-            if use.size < 16:
-                continue
-            # robust SD (MAD); the threshold never flags more than 1% of the samples, so a
-            # systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
-            med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
-            thr = max(outlier_z * 1.4826 * med, q99, 1e-12)
-            bad[ch, a:b] = (seg > thr) & ok
-    del hp, seg  # the largest array here: gone before the new weights are made
+    # robust SD (MAD) per stretch; the threshold never flags more than 1% of the samples (the 99th
+    # percentile), so a systematic residual (ramp corners, a near-noiseless channel) cannot empty the fit
+    bad = outlier_flags(hp, wb, stretch_bounds(u, span_cycles), outlier_z * 1.4826, compiled=compiled)
+    del hp  # the largest array here: gone before the new weights are made
     half = max(1, int(round(1e-3 * fs)))
     # widen each flag by `half` samples on either side (a running maximum)
     spread = widen_flags(bad, half, compiled=compiled)
