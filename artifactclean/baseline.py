@@ -43,6 +43,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from ._numeric import interp_sorted
 from .clipping import find_clipped
 
 __all__ = ["SMOOTH_S", "SHORT_RAMP_CYCLES", "POINTS_PER_CYCLE", "moving_mean", "slow_baseline", "without_corners",
@@ -407,7 +408,7 @@ class LevelTrack(NamedTuple):
         for c0 in range(0, n, _CHUNK):
             t = np.arange(offset + c0, offset + min(n, c0 + _CHUNK), dtype=np.float64)
             for r, k in zip(rows, rows if track_rows is None else list(track_rows)):
-                x[r, c0:c0 + t.size] -= np.interp(t, self.positions, self.values[k])
+                interp_sorted(t, self.positions, self.values[k], x[r, c0:c0 + t.size], mode="subtract")
 
 
 def level_track(read, fs: float, freq_hz: float, bounds: tuple[int, int], n_channels: int, *, origin: int = 0,

@@ -43,6 +43,7 @@ import numpy as np
 from scipy import linalg, ndimage, signal
 
 # the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
+from ._numeric import interp_sorted
 from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, seen_by_segments, segment_transfer
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase",
@@ -330,9 +331,7 @@ class PulseModel:
         if trap is not None:
             env = trap[np.clip(np.round(at), 0, n - 1).astype(np.int64)]
             vals = np.where(env > _FOOT, vals / np.where(env > _FOOT, env, 1.0), 0.0)
-        idx = np.arange(n, dtype=np.float64)
-        for ch in range(out.shape[0]):
-            out[ch] += np.interp(idx, at, vals[ch])
+        interp_sorted(np.arange(n, dtype=np.float64), at, vals, out, mode="add")
 
     def part_pattern(self, times: np.ndarray, part: np.ndarray, rate: float,
                      n_rows: int | None = None) -> np.ndarray | None:

@@ -32,7 +32,7 @@ import numpy as np
 from scipy import signal
 
 from .clipping import find_clipped
-from ._numeric import fractional_part
+from ._numeric import fractional_part, interp_sorted
 
 __all__ = ["DacClock", "DacGrid", "clock_as_grid", "find_dac_clock", "find_dac_grid", "find_dac_period", "find_fast_dac", "step_rate"]
 
@@ -79,7 +79,7 @@ class DacGrid:
         periods = cycles / self.cycles_per_period if self.cycles_per_period != 1 else cycles
         if self.offset_track:
             at, off = self.offset_track
-            c = np.interp(periods, at, off)
+            c = interp_sorted(periods, at, off) if np.ndim(periods) == 1 else np.interp(periods, at, off)
         else:
             c = self.offset
         return self.ticks_per_cycle * periods - c

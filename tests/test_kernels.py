@@ -171,6 +171,59 @@ def test_outlier_flags_find_numpys_quantiles_to_the_bit(rng, draw):
             assert 0.009 < got.sum() / (w > 0).sum() < 0.011
 
 
+def test_settled_keys_are_numpys_running_maximum_of_the_choices(rng):
+    # reference: numpy.maximum.accumulate after the choices are put in turn (the later wins on a shared sample)
+    base = np.sort(rng.integers(0, 500, 5000))
+    base[2000:2010] = base[2000:2010][::-1]  # stretches that run backwards: the maximum carries over them
+    base[-1] = 0
+    lo = np.sort(rng.choice(5000, 300, replace=False))
+    hi = np.concatenate((lo[:50], np.sort(rng.choice(5000, 200, replace=False))))  # 50 samples on both sides
+    chosen = [(lo, base[lo] - 1), (hi, base[hi] + 1)]
+    new = base.copy()
+    new[lo] = base[lo] - 1
+    new[hi] = base[hi] + 1
+    expected = np.maximum.accumulate(new)
+    for dtype in (np.int64, np.int32):
+        got = K.settled_keys(base.astype(dtype), [(s, v.astype(dtype)) for s, v in chosen])
+        assert got.dtype == dtype
+        np.testing.assert_array_equal(got, expected)
+    np.testing.assert_array_equal(K.settled_keys(base, chosen, compiled=False), expected)
+    np.testing.assert_array_equal(K.settled_keys(base, []), np.maximum.accumulate(base))
+
+
+@pytest.mark.parametrize("mode", ["put", "add", "subtract"])
+def test_interp_sorted_is_numpy_interp_to_the_bit(rng, mode):
+    from artifactclean._numeric import interp_sorted
+
+    # reference: numpy.interp row by row (end values outside the knots, a knot's own value on it)
+    for trial in range(40):
+        m = int(rng.integers(2, 40))
+        xp = np.sort(rng.uniform(-5, 5, m))
+        if trial % 3 == 0:
+            xp[m // 2] = xp[m // 2 - 1]  # a repeated knot
+        fp = rng.standard_normal((3, m)) * 10.0 ** rng.uniform(-3, 5)
+        if trial % 4 == 0:
+            fp[:, 1] = np.inf  # slopes that are not finite: numpy's nan rules
+            fp[:, 1 + (trial % 8 == 0 and m > 2)] = np.inf  # two infinite knots: their own value between them
+        x = np.sort(rng.uniform(-7, 7, 3000))
+        x[::40] = xp[rng.integers(0, m, x[::40].size)]  # points on the knots
+        x.sort()
+        if trial % 5 == 0:
+            x[30] = np.nan  # numpy's path
+        if trial % 7 == 0:
+            x = rng.permutation(x)  # unsorted: numpy's path
+        base = rng.standard_normal((3, x.size))
+        got = interp_sorted(x, xp, fp, None if mode == "put" else base.copy(), mode=mode)
+        for r in range(3):
+            v = np.interp(x, xp, fp[r])
+            ref = v if mode == "put" else base[r] + v if mode == "add" else base[r] - v
+            np.testing.assert_array_equal(got[r], ref)
+    one = interp_sorted(np.arange(10.0), np.array([2.0, 7.0]), np.array([1.0, -1.0]))  # a single row
+    np.testing.assert_array_equal(one, np.interp(np.arange(10.0), [2.0, 7.0], [1.0, -1.0]))
+    with pytest.raises(ValueError, match="mode"):
+        interp_sorted(x, xp, fp, mode="times")
+
+
 @pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])
 def test_estimator_same_with_and_without_compiled_loops(fixture, request):
     rec = request.getfixturevalue(fixture)

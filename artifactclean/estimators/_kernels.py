@@ -22,7 +22,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     HAVE_NUMBA = False
 
 __all__ = ["HAVE_NUMBA", "PhaseGrid", "phase_eval", "phase_position", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
-           "highpass_residual", "outlier_flags",
+           "highpass_residual", "outlier_flags", "settled_keys",
            "lerp_positions", "lerp_rows", "SegmentPositions", "widen_flags"]
 
 
@@ -280,6 +280,14 @@ def _stretch_flags_np(hp, w, ch, s, a, b, scale, bad, thresholds):
     med, q99 = np.quantile(use, [0.5, 0.99])  # one partition for both
     thresholds[ch, s] = thr = max(scale * med, q99, 1e-12)
     bad[ch, a:b] = (seg > thr) & ok
+
+
+def settled_keys_np(base, chosen):
+    """``numpy.maximum.accumulate`` of ``base`` with ``values`` put at ``samples`` for each pair in ``chosen``, in turn."""
+    new = base.copy()
+    for samples, values in chosen:
+        new[samples] = values
+    return np.maximum.accumulate(new)
 
 
 def widen_flags_np(bad, half):
@@ -702,6 +710,17 @@ def _outlier_flags_loop(hp, bits, w, bounds, scale, q_mid, q_top, hist, slot, bu
                 bad[ch, i] = hp[ch, i] > thr and w[ch, i] > 0
 
 
+def _settled_keys_loop(base, samples, values, out):
+    # the copy, the choices and the running maximum in one place: numpy's accumulate is a scalar loop
+    for i in range(base.size):
+        out[i] = base[i]
+    for j in range(samples.size):
+        out[samples[j]] = values[j]
+    for i in range(1, out.size):
+        if out[i] < out[i - 1]:
+            out[i] = out[i - 1]
+
+
 def _widen_flags_loop(bad, half, out):
     n = bad.shape[1]
     for ch in range(bad.shape[0]):
@@ -719,6 +738,7 @@ def _widen_flags_loop(bad, half, out):
 
 
 _widen_flags_c = _jit(_widen_flags_loop)
+_settled_keys_c = _jit(_settled_keys_loop)
 _quantile_lerp_c = _jit(_quantile_lerp)
 _outlier_flags_c = _jit(_outlier_flags_loop)
 _highpass_residual_c = _jit(_highpass_residual_loop)
@@ -946,6 +966,22 @@ def outlier_flags(hp, w, bounds, scale: float, *, compiled: bool = True,
     for ch, s in zip(*np.nonzero(to_numpy)):
         _stretch_flags_np(hp, w, ch, s, bounds[s], bounds[s + 1], scale, bad, thresholds)
     return (bad, thresholds) if return_thresholds else bad
+
+
+def settled_keys(base: np.ndarray, chosen, *, compiled: bool = True) -> np.ndarray:
+    """Tick keys after the choices next to edges: ``base`` with each ``(samples, values)`` of ``chosen`` put in turn
+    (a later pair wins where they share a sample), then made non-decreasing (``numpy.maximum.accumulate``).
+
+    Integer keys: the compiled loop gives numpy's result exactly.
+    """
+    chosen = [(np.asarray(s, dtype=np.int64), np.asarray(v)) for s, v in chosen]
+    if not (compiled and HAVE_NUMBA) or base.size == 0 or base.dtype.kind not in "iu":
+        return settled_keys_np(base, chosen)
+    samples = np.concatenate([s for s, _ in chosen] + [np.zeros(0, dtype=np.int64)])
+    values = np.concatenate([v for _, v in chosen] + [np.zeros(0, dtype=base.dtype)]).astype(base.dtype, copy=False)
+    out = np.empty_like(base)
+    _settled_keys_c(np.ascontiguousarray(base), samples, values, out)
+    return out
 
 
 def widen_flags(bad, half: int, *, compiled: bool = True) -> np.ndarray:

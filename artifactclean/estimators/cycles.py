@@ -35,7 +35,8 @@ from ..modulation import _FOOT, FOLLOW_HZ, HALF_S, GainResponse, KEEP_HZ, design
     follow_below, lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, \
     segment_phase, segments_per_cycle, sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
-from ._kernels import group_position, grouped_eval, highpass_residual, outlier_flags, phase_eval, piece_bounds, widen_flags
+from ._kernels import group_position, grouped_eval, highpass_residual, outlier_flags, phase_eval, piece_bounds, settled_keys, \
+    widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
@@ -199,7 +200,7 @@ def envelope_at(i: np.ndarray, blk) -> np.ndarray:
     return np.maximum(env, 1e-3)
 
 
-def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi, usable=None):
+def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi, usable=None, compiled=True):
     """Put samples next to a DAC tick edge in whichever tick explains them best.
 
     The phase model locates an edge to a fraction of a sample; the held
@@ -231,7 +232,7 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi, usable=None):
         read = lambda k, idx, r: one(k, idx)  # noqa: E731
     n = x.shape[1]
     hi = base_key.max()
-    new = base_key.copy()
+    chosen = []  # each side's ambiguous samples and the ticks they keep
     unsure = np.zeros(n, dtype=bool)
     unsure[amb_lo] = True
     unsure[amb_hi] = True
@@ -263,8 +264,8 @@ def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi, usable=None):
             e0 = x[r, a] - g[r, a] * read(k0[sel], a, r) - base
             e1 = x[r, a] - g[r, a] * read(k1[sel], a, r) - base
             favour[sel] += e0 * e0 - e1 * e1
-        new[amb] = np.where(favour > 0, k1, k0)
-    return np.maximum.accumulate(new)  # ticks never run backwards
+        chosen.append((amb, np.where(favour > 0, k1, k0)))
+    return settled_keys(base_key, chosen, compiled=compiled)  # ticks never run backwards
 
 
 def spike_outliers(x, fit, wb, fs, u, span_cycles, outlier_z, gain=None, compiled=True, out=None):

@@ -603,7 +603,7 @@ class TemplateSubtraction(CycleEstimator):
                 if it > 0:
                     ticks = settle_edges(xb[judge], gain[judge],
                                          lambda k, _, r: read_free(tmpl[judge[r]:judge[r] + 1], k)[0],
-                                         ticks, base_ticks, amb_lo, amb_hi, usable)
+                                         ticks, base_ticks, amb_lo, amb_hi, usable, compiled=self.compiled)
                     key, bin_off = held_bins(ticks)
                     key -= row0 * n_bins
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, self.denoise, stride,
@@ -614,7 +614,7 @@ class TemplateSubtraction(CycleEstimator):
                     key = settle_edges(xb[judge], gain[judge],
                                        lambda k, _, r: self._read_ticks(tmpl[judge[r]:judge[r] + 1], k, n_bins, stride,
                                                                         n_groups)[0],
-                                       key, base_key, amb_lo, amb_hi, usable)
+                                       key, base_key, amb_lo, amb_hi, usable, compiled=self.compiled)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per,
                                            complete=complete, failed=failed)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups, out=None if it == 0 else t_n)
