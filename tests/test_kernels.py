@@ -224,6 +224,23 @@ def test_interp_sorted_is_numpy_interp_to_the_bit(rng, mode):
         interp_sorted(x, xp, fp, mode="times")
 
 
+def test_linear_envelope_is_the_numpy_trapezoid_to_the_bit(rng):
+    # reference: the ramps written with numpy.minimum, numpy.clip and numpy.maximum (the estimator's former form)
+    i = np.sort(np.r_[rng.uniform(-500.0, 12500.0, 20000), np.arange(-3.0, 12004.0)])  # every sample, and between
+    for start, up_stop, down_start, stop in ((0, 3000, 9000, 12000), (100, 101, 11000, 11999), (0, 6000, 6000, 12000)):
+        up = (i - start) / max(up_stop - start, 1)
+        down = (stop - i) / max(stop - down_start, 1)
+        ref = np.maximum(np.clip(np.minimum(up, down), 0.0, 1.0), 1e-3)
+        got = K.linear_envelope(i, start, up_stop, down_start, stop, 1e-3)
+        np.testing.assert_array_equal(got, ref)
+        np.testing.assert_array_equal(K.linear_envelope(i, start, up_stop, down_start, stop, 1e-3, compiled=False), ref)
+        assert got.min() == 1e-3 and got.max() == 1.0
+    j = i.copy()
+    j[5] = np.nan  # numpy's nan rules
+    np.testing.assert_array_equal(K.linear_envelope(j, 0, 3000, 9000, 12000, 1e-3),
+                                  K.linear_envelope_np(j, 0, 3000, 9000, 12000, 1e-3))
+
+
 @pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])
 def test_estimator_same_with_and_without_compiled_loops(fixture, request):
     rec = request.getfixturevalue(fixture)

@@ -22,7 +22,7 @@ except ImportError:  # pragma: no cover - exercised where numba is absent
     HAVE_NUMBA = False
 
 __all__ = ["HAVE_NUMBA", "PhaseGrid", "phase_eval", "phase_position", "phase_sums", "tick_sums", "grouped_eval", "tick_eval", "segment_stats", "quadrature_sums", "gain_sums",
-           "highpass_residual", "outlier_flags", "settled_keys",
+           "highpass_residual", "linear_envelope", "outlier_flags", "settled_keys",
            "lerp_positions", "lerp_rows", "SegmentPositions", "widen_flags"]
 
 
@@ -290,6 +290,13 @@ def settled_keys_np(base, chosen):
     return np.maximum.accumulate(new)
 
 
+def linear_envelope_np(i, start, up_stop, down_start, stop, floor):
+    """A block's envelope with linear ramps at positions ``i``: ``max(clip(min(up, down), 0, 1), floor)``."""
+    up = (i - start) / max(up_stop - start, 1)
+    down = (stop - i) / max(stop - down_start, 1)
+    return np.maximum(np.clip(np.minimum(up, down), 0.0, 1.0), floor)
+
+
 def widen_flags_np(bad, half):
     """Flags widened by ``half`` samples on either side, along the last axis."""
     return ndimage.maximum_filter1d(bad, 2 * half + 1, axis=-1, mode="constant", cval=False)
@@ -375,13 +382,24 @@ def _phase_sums_loop(x, w, gain, gi, ga, inside, n_bins, stride, s_out, g_out):
 def _grid_sums_loop(x, w, gain, u0, slope, row0, n_grid, n_bins, stride, s_out, g_out):
     # _phase_sums_loop with PhaseGrid.sampler's arithmetic inline, operation for operation
     n_ch, n = x.shape
+    # the grid point's bin, its row's place in its group and the group, counted along (no integer
+    # division per point): k = (row // stride) * n_bins + bin
+    b = 0
+    in_group = 0
+    k0 = 0
     for j in range(n_grid):
         ng = ((row0 + (j + 0.5) / n_bins) - u0) / slope
         inside = 1.0 if (ng >= 0 and ng <= n - 1) else 0.0
         i = min(max(np.int64(np.floor(ng)), 0), n - 2)
         a = min(max(ng - i, 0.0), 1.0)
-        row = j // n_bins
-        k = (row // stride) * n_bins + (j - row * n_bins)
+        k = k0 + b
+        b += 1
+        if b == n_bins:
+            b = 0
+            in_group += 1
+            if in_group == stride:
+                in_group = 0
+                k0 += n_bins
         for ch in range(n_ch):
             wr = w[ch, i] * w[ch, i + 1] * inside
             if wr == 0.0:
@@ -721,6 +739,17 @@ def _settled_keys_loop(base, samples, values, out):
             out[i] = out[i - 1]
 
 
+def _linear_envelope_loop(i, start, d_up, stop, d_down, floor, out):
+    # linear_envelope_np's operations per sample (np.clip is maximum then minimum; no nan here)
+    for k in range(i.size):
+        up = (i[k] - start) / d_up
+        down = (stop - i[k]) / d_down
+        v = up if up < down else down
+        v = v if v > 0.0 else 0.0
+        v = v if v < 1.0 else 1.0
+        out[k] = v if v > floor else floor
+
+
 def _widen_flags_loop(bad, half, out):
     n = bad.shape[1]
     for ch in range(bad.shape[0]):
@@ -738,6 +767,7 @@ def _widen_flags_loop(bad, half, out):
 
 
 _widen_flags_c = _jit(_widen_flags_loop)
+_linear_envelope_c = _jit(_linear_envelope_loop)
 _settled_keys_c = _jit(_settled_keys_loop)
 _quantile_lerp_c = _jit(_quantile_lerp)
 _outlier_flags_c = _jit(_outlier_flags_loop)
@@ -981,6 +1011,22 @@ def settled_keys(base: np.ndarray, chosen, *, compiled: bool = True) -> np.ndarr
     values = np.concatenate([v for _, v in chosen] + [np.zeros(0, dtype=base.dtype)]).astype(base.dtype, copy=False)
     out = np.empty_like(base)
     _settled_keys_c(np.ascontiguousarray(base), samples, values, out)
+    return out
+
+
+def linear_envelope(i: np.ndarray, start: int, up_stop: int, down_start: int, stop: int, floor: float, *,
+                    compiled: bool = True) -> np.ndarray:
+    """A block's envelope with linear ramps (``start..up_stop`` up, ``down_start..stop`` down) at positions ``i``.
+
+    ``max(clip(min((i - start) / max(up_stop - start, 1), (stop - i) / max(stop - down_start, 1)), 0, 1),
+    floor)``: the same numbers as :func:`linear_envelope_np` in one pass, without its five arrays of
+    ``i``'s size (nan positions take the numpy path).
+    """
+    if not (compiled and HAVE_NUMBA) or np.ndim(i) != 1 or np.isnan(i).any():
+        return linear_envelope_np(i, start, up_stop, down_start, stop, floor)
+    out = np.empty(i.shape)
+    _linear_envelope_c(np.ascontiguousarray(i, dtype=np.float64), float(start), float(max(up_stop - start, 1)),
+                       float(stop), float(max(stop - down_start, 1)), float(floor), out)
     return out
 
 

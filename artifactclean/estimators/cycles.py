@@ -35,8 +35,8 @@ from ..modulation import _FOOT, FOLLOW_HZ, HALF_S, GainResponse, KEEP_HZ, design
     follow_below, lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, \
     segment_phase, segments_per_cycle, sideband_support
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
-from ._kernels import group_position, grouped_eval, highpass_residual, outlier_flags, phase_eval, piece_bounds, settled_keys, \
-    widen_flags
+from ._kernels import group_position, grouped_eval, highpass_residual, linear_envelope, outlier_flags, phase_eval, \
+    piece_bounds, settled_keys, widen_flags
 from .base import ArtifactEstimator
 
 __all__ = ["BlockPlan", "CycleEstimator", "CycleGrid", "RowModelEstimator", "array_reader", "block_key", "fill_rows",
@@ -193,11 +193,18 @@ def trapezoid(n: int, blk, offset: int) -> np.ndarray:
 def envelope_at(i: np.ndarray, blk) -> np.ndarray:
     """:func:`trapezoid` at samples ``i`` only (float)."""
     start, up_stop, down_start, stop = blk.geometry()  # the whole block's ramps, in a piece too
+    shape = getattr(blk, "ramp_shape", "linear")
+    if shape == "linear" and up_stop > start and stop > down_start and np.ndim(i) == 1:
+        # linear ramps on both sides, the common case: one compiled pass, the same arithmetic
+        return linear_envelope(np.asarray(i, dtype=np.float64), start, up_stop, down_start, stop, _ENV_FLOOR)
     up = (i - start) / max(up_stop - start, 1) if up_stop > start else np.where(i >= start, 1.0, 0.0)
     down = (stop - i) / max(stop - down_start, 1) if stop > down_start else np.where(i < stop, 1.0, 0.0)
-    env = ramp_level(np.minimum(up, down), getattr(blk, "ramp_shape", "linear"))
-    # a small floor keeps margin cycles (no artifact expected) from dividing by zero
-    return np.maximum(env, 1e-3)
+    env = ramp_level(np.minimum(up, down), shape)
+    return np.maximum(env, _ENV_FLOOR)
+
+
+#: the envelope's floor: margin cycles (no artifact expected) are not divided by zero
+_ENV_FLOOR = 1e-3
 
 
 def settle_edges(x, g, read, key, base_key, amb_lo, amb_hi, usable=None, compiled=True):
