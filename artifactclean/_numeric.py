@@ -9,7 +9,7 @@ try:  # as in estimators/_kernels.py: compiled where numba is installed, numpy o
 except ImportError:  # pragma: no cover - exercised where numba is absent
     numba = None
 
-__all__ = ["fractional_part", "interp_sorted"]
+__all__ = ["floor_runs", "fractional_part", "interp_sorted"]
 
 
 def fractional_part(u):
@@ -157,3 +157,46 @@ def interp_sorted(x: np.ndarray, xp: np.ndarray, fp: np.ndarray, out: np.ndarray
             else:
                 out2[r] -= v
     return out
+
+
+def _floor_runs_loop(u, scale, starts, values):
+    # twice along u: the runs counted (starts is None-sized 0), then written; False on a nan
+    m = 0
+    prev = np.int64(0)
+    for i in range(u.size):
+        v = u[i] * scale
+        if v != v:
+            return -1
+        k = np.int64(np.floor(v))
+        if i == 0 or k != prev:
+            if m < starts.size:
+                starts[m] = i
+                values[m] = k
+            m += 1
+            prev = k
+    return m
+
+
+_floor_runs_c = None if numba is None else numba.njit(cache=True, nogil=True)(_floor_runs_loop)
+
+
+def floor_runs(u: np.ndarray, scale: float, *, compiled: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """Runs of equal ``floor(u * scale)`` along ``u`` (1-D, not empty): each run's first index and its value.
+
+    The same integers as ``seg = numpy.floor(u * scale).astype(numpy.int64)``,
+    ``starts = numpy.concatenate(([0], numpy.flatnonzero(numpy.diff(seg)) + 1))``
+    and ``seg[starts]``, without the three arrays of ``u``'s size (a gain
+    segment's or a stretch's first sample, at every sample of a piece).
+    """
+    u = np.asarray(u, dtype=np.float64)
+    if compiled and _floor_runs_c is not None and u.ndim == 1 and u.size:
+        empty = np.zeros(0, dtype=np.int64)
+        m = _floor_runs_c(u, float(scale), empty, empty)
+        if m >= 0:
+            starts = np.empty(m, dtype=np.int64)
+            values = np.empty(m, dtype=np.int64)
+            _floor_runs_c(u, float(scale), starts, values)
+            return starts, values
+    seg = np.floor(u * scale).astype(np.int64)
+    starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
+    return starts, seg[starts]

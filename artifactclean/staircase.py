@@ -92,6 +92,10 @@ class DacGrid:
         """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
         return fractional_part(self._position(cycles))
 
+    def ticks_and_edges(self, cycles: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`tick_index` and :meth:`edge_distance` from one evaluation of the position (the same numbers)."""
+        return _ticks_and_edges(self._position(cycles))
+
 
 @dataclass(frozen=True)
 class DacClock:
@@ -132,9 +136,19 @@ class DacClock:
         """Position within the tick, in [0, 1): near 0 or 1 means next to an edge."""
         return fractional_part(self.ticks_per_cycle * cycles - self.offset)
 
+    def ticks_and_edges(self, cycles: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`tick_index` and :meth:`edge_distance` from one evaluation of the position (the same numbers)."""
+        return _ticks_and_edges(self.ticks_per_cycle * cycles - self.offset)
+
     def held_cycles(self, ticks: np.ndarray) -> np.ndarray:
         """Stimulation phase (unwrapped cycles) at which each tick sampled the waveform."""
         return (np.asarray(ticks, dtype=np.float64) + self.offset) / self.ticks_per_cycle
+
+
+def _ticks_and_edges(pos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    # floor(pos) as the tick and pos - floor(pos) (fractional_part's own arithmetic) as the edge distance
+    fl = np.floor(pos)
+    return fl.astype(np.int64), np.subtract(pos, fl, out=fl)
 
 
 def find_dac_clock(x: np.ndarray, cycles: np.ndarray, fs: float, freq: float, *, z_threshold: float = 6.0,

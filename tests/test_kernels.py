@@ -241,6 +241,24 @@ def test_linear_envelope_is_the_numpy_trapezoid_to_the_bit(rng):
                                   K.linear_envelope_np(j, 0, 3000, 9000, 12000, 1e-3))
 
 
+def test_floor_runs_are_the_changes_of_numpy_floor(rng):
+    from artifactclean._numeric import floor_runs
+
+    # reference: numpy.floor, numpy.diff and numpy.flatnonzero (the segment starts the template used to build)
+    for u in (0.3 + np.arange(50000) * (20 / 30000), np.sort(rng.uniform(-7.0, 9.0, 20000)),
+              np.r_[np.arange(-2.0, 3.0, 0.25), 3.0, 3.0, 2.9]):  # on the edges, equal and falling values
+        for scale in (1, 5, 7.5):
+            seg = np.floor(u * scale).astype(np.int64)
+            starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
+            got_starts, got_values = floor_runs(u, scale)
+            np.testing.assert_array_equal(got_starts, starts)
+            np.testing.assert_array_equal(got_values, seg[starts])
+            assert got_starts.dtype == got_values.dtype == np.int64
+    bad = np.array([0.1, np.nan, 2.0])  # nan: numpy's path, whatever it gives
+    with np.errstate(invalid="ignore"):  # numpy's cast of nan to an integer
+        np.testing.assert_array_equal(floor_runs(bad, 2)[0], floor_runs(bad, 2, compiled=False)[0])
+
+
 @pytest.mark.parametrize("fixture", ["rec20", "rec10_dac"])
 def test_estimator_same_with_and_without_compiled_loops(fixture, request):
     rec = request.getfixturevalue(fixture)

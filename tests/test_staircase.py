@@ -384,3 +384,18 @@ def test_a_faint_dac_at_3_hz_leaves_the_spike_band_clean():
         warnings.simplefilter("ignore")  # stimulation below 4 Hz is warned about
         s = score_cleaning(rec, clean(rec.data, rec.fs))
     assert max(s["spikeband_residual"]) <= 0.1, s["spikeband_residual"]
+
+
+def test_ticks_and_edges_are_tick_index_and_edge_distance():
+    # one evaluation of the position gives both, to the bit: the template reads them together
+    from artifactclean.staircase import DacClock, DacGrid
+
+    u = np.sort(np.random.default_rng(11).uniform(-3.0, 40.0, 20000))
+    u[::97] = np.round(u[::97] * 50) / 50  # phases on tick edges
+    grids = (DacGrid(50, 0.3, 0.99, 1000), DacGrid(37, 0.1, 0.99, 1000, offset_track=((0.0, 10.0, 20.0), (0.1, 0.4, 0.2)),
+                                                   cycles_per_period=3), DacClock(41.7, 0.37, 0.99, 1000))
+    for g in grids:
+        ticks, edges = g.ticks_and_edges(u)
+        np.testing.assert_array_equal(ticks, g.tick_index(u))
+        np.testing.assert_array_equal(edges, g.edge_distance(u))
+        assert ticks.dtype == np.int64 and 0.0 <= edges.min() and edges.max() < 1.0

@@ -1048,8 +1048,7 @@ class CycleGrid:
         self.dac = dac
         if dac is not None:
             self.n_bins = int(dac.ticks_per_cycle)
-            key = dac.tick_index(u)
-            edge = dac.edge_distance(u)
+            key, edge = dac.ticks_and_edges(u)
             delta = dac.settle_width * self.n_bins * f / fs
             self.amb_lo = np.flatnonzero(edge < delta)
             self.amb_hi = np.flatnonzero(edge > 1 - delta)

@@ -50,6 +50,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage, signal, special
 
+from .._numeric import floor_runs
 from ..clipping import find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, shift_centres, \
@@ -475,10 +476,9 @@ class TemplateSubtraction(CycleEstimator):
         # read, at the phase their tick held (DacClock.held_cycles), on bins of the cycle
         free = isinstance(grid, DacClock)
         if grid is not None:
-            ticks = grid.tick_index(u)
             # samples next to a tick edge (within a quarter sample, for a grid from single steps)
             # are assigned by the data
-            edge = grid.edge_distance(u)
+            ticks, edge = grid.ticks_and_edges(u)
             delta = grid.settle_width * grid.ticks_per_cycle * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
@@ -543,10 +543,9 @@ class TemplateSubtraction(CycleEstimator):
             key = None  # the sampler and the reader place every sample: bin keys are for DAC ticks only
         # gain segments: enough per cycle to sample the tracking band
         per_cycle = segments_per_cycle(self.tracking_hz, f)
-        seg = np.floor(u * per_cycle).astype(np.int64)
-        seg_starts = np.concatenate(([0], np.flatnonzero(np.diff(seg)) + 1))
-        seg_u = (seg[seg_starts] + 0.5) / per_cycle
-        del seg
+        seg_starts, seg_at = floor_runs(u, per_cycle, compiled=self.compiled)
+        seg_u = (seg_at + 0.5) / per_cycle
+        del seg_at
         # each segment's first phase, and the phase step per sample (phase is linear in samples)
         seg_first = (u[seg_starts], (u[-1] - u[0]) / max(n - 1, 1), per_cycle)
         # every pass reads the gain at the same phases, placed between segment centres a chunk at a time
