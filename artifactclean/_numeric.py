@@ -27,8 +27,9 @@ def fractional_part(u):
 
 def _interp_sorted_loop(x, xp, fp, out, mode):
     # numpy.interp's value at each x, operation for operation (numpy/_core/src/multiarray/compiled_base.c,
-    # arr_interp: the slope times the distance from the knot below, plus the knot's value; on a knot its
-    # value; a nan tried from the knot above), walked interval by interval because x is sorted
+    # arr_interp, as recalled from memory and checked to the bit against numpy.interp in tests/test_kernels.py:
+    # the slope times the distance from the knot below, plus the knot's value; on a knot its value; a nan
+    # tried from the knot above), walked interval by interval because x is sorted
     m = xp.size
     n = x.size
     for k in range(1, n):
