@@ -161,7 +161,7 @@ def interp_sorted(x: np.ndarray, xp: np.ndarray, fp: np.ndarray, out: np.ndarray
 
 
 def _floor_runs_loop(u, scale, starts, values):
-    # twice along u: the runs counted (starts is None-sized 0), then written; False on a nan
+    # called twice: with empty starts the runs are only counted, then written; -1 on a nan
     m = 0
     prev = np.int64(0)
     for i in range(u.size):
@@ -186,8 +186,8 @@ def floor_runs(u: np.ndarray, scale: float, *, compiled: bool = True) -> tuple[n
 
     The same integers as ``seg = numpy.floor(u * scale).astype(numpy.int64)``,
     ``starts = numpy.concatenate(([0], numpy.flatnonzero(numpy.diff(seg)) + 1))``
-    and ``seg[starts]``, without the three arrays of ``u``'s size (a gain
-    segment's or a stretch's first sample, at every sample of a piece).
+    and ``seg[starts]``, without their three arrays of ``u``'s size (the
+    template's gain segments, from every sample's phase).
     """
     u = np.asarray(u, dtype=np.float64)
     if compiled and _floor_runs_c is not None and u.ndim == 1 and u.size:
