@@ -111,7 +111,8 @@ def interp_sorted(x: np.ndarray, xp: np.ndarray, fp: np.ndarray, out: np.ndarray
     Parameters
     ----------
     x : ndarray, shape (n,)
-        Points, ascending (float64).
+        Points, ascending (float64). A scalar or an array of another shape
+        is passed to :func:`numpy.interp` as it is (a 1-D ``fp``, no ``out``).
     xp : ndarray, shape (m,)
         Knots, ascending and finite.
     fp : ndarray, shape (n_rows, m) or (m,)
@@ -135,6 +136,10 @@ def interp_sorted(x: np.ndarray, xp: np.ndarray, fp: np.ndarray, out: np.ndarray
     signs = {"put": 0, "add": 1, "subtract": -1}
     if mode not in signs:
         raise ValueError(f"mode must be one of {sorted(signs)}, got {mode!r}")
+    if np.ndim(x) != 1:
+        if out is not None or np.ndim(fp) != 1 or mode != "put":
+            raise ValueError(f"points of shape {np.shape(x)} need a 1-D fp and no out (numpy.interp's own shapes)")
+        return np.interp(x, xp, fp)
     if out is None:
         if mode != "put":
             raise ValueError(f"mode {mode!r} needs out")

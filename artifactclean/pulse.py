@@ -42,8 +42,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, ndimage, signal
 
-# the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from ._numeric import interp_sorted
+# the gain filter's own bounds: the harmonics are boosted, and the plateau read, as it does
 from .modulation import _FOOT, _MAX_BOOST, as_moved, as_seen, plateau_level, seen_by_segments, segment_transfer
 
 __all__ = ["HEART_HZ", "PULSE_HALF_S", "PulseModel", "fit_pulse", "fundamental", "fundamental_of_rows", "harmonic_phase",

@@ -79,7 +79,7 @@ class DacGrid:
         periods = cycles / self.cycles_per_period if self.cycles_per_period != 1 else cycles
         if self.offset_track:
             at, off = self.offset_track
-            c = interp_sorted(periods, at, off) if np.ndim(periods) == 1 else np.interp(periods, at, off)
+            c = interp_sorted(periods, at, off)
         else:
             c = self.offset
         return self.ticks_per_cycle * periods - c

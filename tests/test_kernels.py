@@ -222,6 +222,12 @@ def test_interp_sorted_is_numpy_interp_to_the_bit(rng, mode):
     np.testing.assert_array_equal(one, np.interp(np.arange(10.0), [2.0, 7.0], [1.0, -1.0]))
     with pytest.raises(ValueError, match="mode"):
         interp_sorted(x, xp, fp, mode="times")
+    # a scalar or a 2-D array of points: numpy.interp's own shapes
+    assert interp_sorted(4.5, np.array([2.0, 7.0]), np.array([1.0, -1.0])) == np.interp(4.5, [2.0, 7.0], [1.0, -1.0])
+    grid = np.arange(12.0).reshape(3, 4)
+    np.testing.assert_array_equal(interp_sorted(grid, [2.0, 7.0], [1.0, -1.0]), np.interp(grid, [2.0, 7.0], [1.0, -1.0]))
+    with pytest.raises(ValueError, match="1-D fp"):
+        interp_sorted(grid, xp, fp)
 
 
 def test_linear_envelope_is_the_numpy_trapezoid_to_the_bit(rng):
