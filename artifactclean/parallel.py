@@ -23,7 +23,8 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 
 __all__ = ["channel_groups", "check_workers", "clean_in_groups", "subset_clip", "RecordingSpec", "ordered_results",
-           "open_client", "client_threads", "check_cluster", "piece_task", "ClusterError"]
+           "open_client", "client_threads", "check_cluster", "piece_task", "edge_keys_task",
+           "ClusterError"]
 
 
 def check_workers(workers) -> int:
@@ -171,12 +172,18 @@ class LockedReader:
 
 
 def piece_task(source, channels: Sequence[int], n_keep: int, lo: int, hi: int, a: int, b: int, est, model,
-               clip_level, fs: float):
+               clip_level, fs: float, edge_keys=None):
     """Read samples ``lo..hi`` of ``channels`` from ``source``, clean them, return the core ``a..b``.
 
     Runs in a worker: ``source`` is a :class:`LockedReader` (threads) or a
-    :class:`RecordingSpec` (processes, a cluster), opened here.
+    :class:`RecordingSpec` (processes, a cluster), opened here. ``edge_keys``
+    (for a clone made with ``shared_edges=True``) is what
+    :func:`edge_keys_task` returned for the same piece, or a future of it on
+    this process (a dask cluster hands over the value itself).
     """
+    if edge_keys is not None:
+        # a thread waits for the piece's judges, submitted before it (the pool takes tasks in order)
+        est._edge_keys = edge_keys.result() if hasattr(edge_keys, "result") else edge_keys
     x = source.open().read(lo, hi, list(channels))
     # the piece was read for this task alone: the estimator cleans it in place, without a copy
     est._adopt_input = True
@@ -185,6 +192,24 @@ def piece_task(source, channels: Sequence[int], n_keep: int, lo: int, hi: int, a
     y = y[:n_keep, a - lo: b - lo].copy()
     lost = est.lost_[:n_keep, a - lo: b - lo].copy()
     return y, lost, est.report_
+
+
+def edge_keys_task(source, channels: Sequence[int], lo: int, hi: int, est, model, clip_level, fs: float) -> dict:
+    """The tick keys a piece's judges settle beside a DAC's edges, for the piece's channel tasks.
+
+    ``est`` and ``channels`` come from ``for_channels(edge_judges(blk))``
+    (:meth:`~artifactclean.estimators.cycles.CycleEstimator.edge_judges`);
+    the judges are fitted as far as their last settling. Every channel task
+    of the piece then cleans its channels alone with these keys, as it would
+    have with the judges' data beside them, to the bit; without them each
+    task read and cleaned the judges again (with one output channel a task,
+    half its time).
+    """
+    x = source.open().read(lo, hi, list(channels))
+    est._adopt_input = True
+    est._record_edges = True
+    est.fit(x, fs=fs, stim_model=model, clip_level=clip_level)
+    return dict(getattr(est, "edge_keys_", {}))
 
 
 def ordered_results(items: Iterable, submit: Callable, ahead: int):

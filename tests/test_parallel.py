@@ -92,6 +92,53 @@ def test_groups_of_a_clipped_session_see_the_channels_that_judge_the_dacs_edges(
     assert [fit[j] for j in sub_plan.judges] == list(plan.judges)
 
 
+@pytest.mark.parametrize("case", ["clipped_20hz_dac", "free_13p37"])
+def test_a_channel_cleaned_with_the_judges_keys_equals_it_cleaned_beside_the_judges(case):
+    """The judges (a DAC's reference, and the strongest channels where some clip) settle the samples beside the
+    tick edges; fitted once on their own (edge_keys_task's way), their keys let every other channel be cleaned
+    alone with the bits it gets beside them. With the grid's keys unsettled a channel comes out otherwise."""
+    from artifactclean.estimators.base import _fit_model
+    from artifactclean.scenarios import make_scenario
+    from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
+
+    if case == "clipped_20hz_dac":
+        rec = make_scenario("clipped_20hz_dac", seed=3, duration_s=6)
+    else:  # a DAC not locked to the cycle: samples are binned at the phase their tick held
+        rec = simulate_recording(8.0, artifact=ArtifactSpec(freq_hz=13.37, dac_rate_hz=1000.0, drift_ppm=40.0,
+                                                            channel_gains=(1.0, -0.6, 0.8)),
+                                 blocks=[BlockSpec(0.5, 7.0, ramp_s=0.5)], seed=8, n_channels=3)
+    x, fs = rec.data, rec.fs
+    model = _fit_model(x, fs, None, None)
+    est = TemplateSubtraction()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        est.prepare(array_reader(x), model, fs)
+        blk = model.blocks[0]
+        judges = est.edge_judges(blk)
+        assert judges and judges[0] == est._plans[next(iter(est._plans))].ref
+        assert len(judges) == (4 if case == "clipped_20hz_dac" else 1)
+        sub, fit = est.for_channels(judges)
+        sub._record_edges = True
+        sub.fit(x[fit], fs=fs, stim_model=model)
+        (passes,) = sub.edge_keys_.values()
+        assert len(passes) == 2 and all(idx.size > 0 for idx, _ in passes)  # the judges moved some samples
+        for ch in range(x.shape[0]):
+            joint, fit = est.for_channels([ch])
+            want = joint.fit_transform(x[fit], fs=fs, stim_model=model)[:1]
+            alone, fit = est.for_channels([ch], shared_edges=True)
+            assert fit == [ch]
+            alone._edge_keys = sub.edge_keys_
+            np.testing.assert_array_equal(alone.fit_transform(x[fit], fs=fs, stim_model=model), want)
+            np.testing.assert_array_equal(alone.lost_, joint.lost_[:1])
+        unsettled = {k: [(idx[:0], val[:0]) for idx, val in v] for k, v in sub.edge_keys_.items()}
+        alone, fit = est.for_channels([ch], shared_edges=True)
+        alone._edge_keys = unsettled
+        assert not np.array_equal(alone.fit_transform(x[fit], fs=fs, stim_model=model), want)
+        alone, fit = est.for_channels([ch], shared_edges=True)
+        with pytest.raises(RuntimeError, match="judges' keys"):
+            alone.fit(x[fit], fs=fs, stim_model=model)
+
+
 def test_clipped_and_blanked_samples_equal_with_workers(rng):
     from artifactclean.scenarios import make_scenario
 
@@ -155,6 +202,25 @@ def test_file_cleaned_by_two_workers_is_the_same_file(oe_file, tmp_path):
     assert prov["workers"] == 2 and prov["channel_groups"] == [["CH1"], ["CH2"], ["CH3"], ["CH4"]]
     assert len({r["start_s"] for r in prov["estimator_report"]}) > 2  # several pieces in time
     assert {tuple(r["channels"]) for r in prov["estimator_report"]} == {("CH1",), ("CH2",), ("CH3",), ("CH4",)}
+
+
+def test_a_files_judges_are_fitted_once_a_piece(oe_file, tmp_path, monkeypatch):
+    """One channel a task with a DAC grid: the reference's keys are settled by one task per piece and handed to
+    the four channels' tasks, which give the file the bytes of tasks that each fit the reference beside their
+    channel (edge_judges empty: the tasks before)."""
+    import artifactclean.io.pipeline as pipe
+
+    calls = []
+    task = pipe.edge_keys_task
+    monkeypatch.setattr(pipe, "edge_keys_task", lambda *a: calls.append(a[2:4]) or task(*a))
+    shared, _ = _clean_file(oe_file, tmp_path / "shared.dat", workers=2)
+    prov = json.loads((tmp_path / "shared.json").read_text())["provenance"]
+    pieces = sorted({(r["start_s"], r["stop_s"]) for r in prov["estimator_report"]})
+    assert len(calls) == len(pieces) > 2 and len(set(calls)) == len(calls)
+    monkeypatch.setattr(TemplateSubtraction, "edge_judges", lambda self, blk: [])
+    calls.clear()
+    joint, _ = _clean_file(oe_file, tmp_path / "joint.dat", workers=2)
+    assert not calls and joint == shared
 
 
 def test_file_cleaned_on_a_dask_cluster_is_the_same_file(oe_file, tmp_path):

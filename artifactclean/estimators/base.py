@@ -236,7 +236,7 @@ class ArtifactEstimator(BaseEstimator):
     #: attributes :meth:`prepare` sets that a copy for other channels carries along
     _prepared_attrs: tuple = ()
 
-    def for_channels(self, channels) -> tuple["ArtifactEstimator", list[int]]:
+    def for_channels(self, channels, *, shared_edges: bool = False) -> tuple["ArtifactEstimator", list[int]]:
         """A clone for a subset of the channels, carrying what ``prepare`` decided.
 
         Workers clean groups of channels with such clones. Every estimator
@@ -248,6 +248,11 @@ class ArtifactEstimator(BaseEstimator):
         ----------
         channels : sequence of int
             Channel indices (into the array ``prepare`` saw) the clone cleans.
+        shared_edges : bool
+            Leave the channels that judge a DAC's tick edges out of
+            ``fit_channels``: the clone is given their choices instead
+            (:meth:`~artifactclean.estimators.cycles.CycleEstimator.edge_judges`).
+            Estimators that read no other channel ignore it.
 
         Returns
         -------

@@ -688,13 +688,15 @@ class CycleEstimator(ArtifactEstimator):
     #: or at any phase (DacClock)
     _dac_periods = False
 
-    def for_channels(self, channels):
+    def for_channels(self, channels, *, shared_edges: bool = False):
         """A clone for ``channels`` with the block plans of :meth:`prepare` restricted to them.
 
         A plan's reference channel and gain responses are indexed into the
         channels the clone sees; when the estimator reads the reference
         channel's data (:attr:`_reads_reference`, with a DAC grid) that channel
-        is added to ``fit_channels``.
+        and the plan's judges are added to ``fit_channels``, unless
+        ``shared_edges``: the clone then takes the judges' choices from
+        outside (:meth:`edge_judges`) and fits ``channels`` alone.
         """
         est, fit = super().for_channels(channels)
         plans = getattr(self, "_plans", None)
@@ -703,12 +705,33 @@ class CycleEstimator(ArtifactEstimator):
         for plan in plans.values():
             # the reference's data for a DAC grid (the heartbeat's phase is in the plan's track), and the
             # channels that judge the samples next to its edges
-            if self._reads_reference and plan.grid is not None:
+            if self._reads_reference and plan.grid is not None and not shared_edges:
                 for ch in (plan.ref, *plan.judges):
                     if ch not in fit:
                         fit.append(int(ch))
         est._plans = {key: _subset_plan(plan, fit) for key, plan in plans.items()}
+        if shared_edges and self._reads_reference:
+            est._shared_edges = True
         return est, fit
+
+    def edge_judges(self, blk) -> list[int]:
+        """Channels that judge the samples beside ``blk``'s DAC tick edges, where other channels' fits depend on
+        them (the plan's reference first); empty where none do.
+
+        A clone from ``for_channels(judges)`` with ``_record_edges`` set
+        fits the judges only as far as their last settling, and leaves in
+        ``edge_keys_`` the tick keys they settle, block by block and pass by
+        pass (where they differ from the grid's). A clone from
+        ``for_channels(..., shared_edges=True)`` with those keys in
+        ``_edge_keys`` then cleans its channels as a clone that also fits the
+        judges would, to the bit, without reading or cleaning them
+        (:func:`artifactclean.parallel.edge_keys_task`).
+        """
+        plan = getattr(self, "_plans", {}).get(block_key(blk)) if blk is not None else None
+        up = 1 if blk is None else getattr(self, "_factors", {}).get(block_key(blk), 1)
+        if not self._reads_reference or plan is None or plan.grid is None or up > 1:
+            return []
+        return [int(c) for c in dict.fromkeys((plan.ref, *plan.judges))]
 
     def _decide_groups(self, blk, fs, n_ch, bounds) -> list:
         """Groups of channels (lists of indices) :meth:`_decide` is called on; none by default."""

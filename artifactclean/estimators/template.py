@@ -554,7 +554,35 @@ class TemplateSubtraction(CycleEstimator):
         censored = fill = failed = complete = None
         wb0 = wb
         judge, usable = [ref], None
-        if grid is not None:
+        # the judges' settled keys from a run of their own (CycleEstimator.edge_judges), or recorded for others
+        bkey = block_key(blk)
+        given = None
+        if grid is not None and getattr(self, "_shared_edges", False):
+            given = getattr(self, "_edge_keys", None)
+            given = None if given is None else given.get(bkey)
+            if given is None:
+                raise RuntimeError("a clone for shared edges needs the judges' keys of each block with a DAC grid "
+                                   "(edge_keys_ of a clone fitted on CycleEstimator.edge_judges)")
+        record = None
+        if grid is not None and getattr(self, "_record_edges", False):
+            # one list a block and fit: a refit starts the block's passes again
+            self.__dict__.setdefault("edge_keys_", {})[bkey] = record = []
+
+        def settled(now, base, read):
+            # each pass's keys differ from the grid's at a few % of the samples: those are handed on
+            if given is not None:
+                idx, val = given[it - 1]
+                out = base.copy()
+                out[idx] = val
+                return out
+            out = settle_edges(xb[judge], gain[judge], read, now, base, amb_lo, amb_hi, usable,
+                               compiled=self.compiled)
+            if record is not None:
+                idx = np.flatnonzero(out != base)
+                record.append((idx, out[idx]))
+            return out
+
+        if grid is not None and given is None:
             # samples beside a tick edge are judged on the plan's strongest channels where they are not at a
             # rail (settle_edges): the reference alone is the strongest unclipped one, weaker than a clipped one
             judge = [int(c) for c in plan.judges if c < n_ch] or [ref]
@@ -593,16 +621,25 @@ class TemplateSubtraction(CycleEstimator):
         # the phase shift is followed where the block's plan found it modulated (heartbeat, respiration)
         follow_shift = self.track_phase and self.track_amplitude and response is not None and n > 64 and any(
             response.phase_taps(min(ch, response.response.shape[0] - 1)) is not None for ch in range(n_ch))
+
+        def read_judged(k, _, r):
+            # the current pass's template of judge r at tick keys k
+            if free:
+                return read_free(tmpl[judge[r]:judge[r] + 1], k)[0]
+            return self._read_ticks(tmpl[judge[r]:judge[r] + 1], k, n_bins, stride, n_groups)[0]
+
         for it in range(passes):
             if fill is not None and it > 0:
                 self._fill_rails(xb, wb, gain, t_n, fill, u, max(4, k_half // 2))
             # the harmonic clean-up only matters for the template that is subtracted
             denoise = self.denoise and it == passes - 1
+            if record is not None and it == passes - 1 and it > 0:
+                # the judges' last keys are settled below; what the last pass fits is not needed from them
+                settled(ticks if free else key, base_ticks if free else base_key, read_judged)
+                return np.zeros((n_ch, n)), {}, None
             if free:
                 if it > 0:
-                    ticks = settle_edges(xb[judge], gain[judge],
-                                         lambda k, _, r: read_free(tmpl[judge[r]:judge[r] + 1], k)[0],
-                                         ticks, base_ticks, amb_lo, amb_hi, usable, compiled=self.compiled)
+                    ticks = settled(ticks, base_ticks, read_judged)
                     key, bin_off = held_bins(ticks)
                     key -= row0 * n_bins
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, self.denoise, stride,
@@ -610,10 +647,7 @@ class TemplateSubtraction(CycleEstimator):
                 t_n = read_free(tmpl, ticks, out=None if it == 0 else t_n)
             elif sampler is None:
                 if it > 0:
-                    key = settle_edges(xb[judge], gain[judge],
-                                       lambda k, _, r: self._read_ticks(tmpl[judge[r]:judge[r] + 1], k, n_bins, stride,
-                                                                        n_groups)[0],
-                                       key, base_key, amb_lo, amb_hi, usable, compiled=self.compiled)
+                    key = settled(key, base_key, read_judged)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per,
                                            complete=complete, failed=failed)
                 t_n = self._read_ticks(tmpl, key, n_bins, stride, n_groups, out=None if it == 0 else t_n)

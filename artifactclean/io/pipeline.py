@@ -36,7 +36,7 @@ from ..estimators.base import check_stim_freq
 from ..staircase import find_dac_clock, find_dac_grid, find_dac_period, step_rate
 from ..stimulation import StimulationModel, decimate_reader, decimated_rate, fit_decimated
 from ..parallel import (LockedReader, RecordingSpec, subset_clip, channel_groups, check_cluster, check_workers,
-                        client_threads, open_client, ordered_results, piece_task)
+                        client_threads, edge_keys_task, open_client, ordered_results, piece_task)
 from .reader import NeoRecording, Recording
 from .writers import open_writer, output_paths
 
@@ -385,19 +385,36 @@ def clean_recording(
                 for s, e, blk in work:
                     if s > pos:
                         yield "copy", (pos, s)
-                    for piece in _pieces(s, e, _context(est, blk, model, fs), span):
+                    pieces = _pieces(s, e, _context(est, blk, model, fs), span)
+                    # where a DAC's tick edges are judged on channels other groups need (the plan's judges), they
+                    # are fitted once per piece and their keys handed to every group (edge_keys_task); a piece's
+                    # judges are submitted before the groups of the piece before it, so threads rarely wait
+                    judges = est.edge_judges(blk) if hasattr(est, "edge_judges") and len(groups) > 1 else []
+                    for i, piece in enumerate(pieces):
+                        for nxt in ([0, 1] if i == 0 else [i + 1]) if judges else []:
+                            if nxt < len(pieces):
+                                yield "task", ("judges", pieces[nxt], blk)
                         for k in range(len(groups)):
-                            yield "task", piece + (k,)
+                            yield "task", piece + (k, bool(judges))
                     pos = e
                 if pos < n:
                     yield "copy", (pos, n)
 
+            judged: dict = {}  # each piece's judges' task, until its last group is submitted
+
             def submit(item):
-                lo_, hi_, a, b, k = item
+                if item[0] == "judges":
+                    (lo_, hi_, _, _), blk = item[1:]
+                    sub, fit = est.for_channels(est.edge_judges(blk))
+                    judged[lo_, hi_] = f = submit_fn(edge_keys_task, src, [channels[i] for i in fit], lo_, hi_, sub,
+                                                     model.window(lo_, hi_), subset_clip(rails, fit), fs)
+                    return f
+                lo_, hi_, a, b, k, shared = item
                 # a fresh clone per task: tasks of consecutive pieces run at once
-                sub, fit = est.for_channels(groups[k])
+                sub, fit = est.for_channels(groups[k], shared_edges=shared)
+                keys = (judged.pop if k == len(groups) - 1 else judged.get)((lo_, hi_)) if shared else None
                 return submit_fn(piece_task, src, [channels[i] for i in fit], len(groups[k]), lo_, hi_, a, b,
-                                 sub, model.window(lo_, hi_), subset_clip(rails, fit), fs)
+                                 sub, model.window(lo_, hi_), subset_clip(rails, fit), fs, keys)
 
             # tasks submitted ahead keep the workers busy while results are written
             ahead = 1 if submit_fn is _run_now else 2 * n_workers
@@ -405,7 +422,9 @@ def clean_recording(
                 if kind == "copy":
                     copy(*item)
                     continue
-                _, _, a, b, k = item
+                if item[0] == "judges":
+                    continue  # handed to the piece's groups
+                _, _, a, b, k, _ = item
                 y, lost, rep = result
                 del result
                 g = groups[k]
