@@ -393,26 +393,29 @@ def test_a_file_piece_is_cleaned_in_the_array_read_for_it(short_dac):
 
 def test_task_shape_keeps_a_task_within_the_memory_of_four_channels():
     """Groups and spans from the estimator's memory per sample (per channel ``a``, shared ``b``): a task
-    holds at most the memory of ``length`` samples of 4 channels, shared arrays counted, and its group is
-    the largest whose span reaches ``least``; with nothing shared (``b = 0``) that is the old count of
-    channels x time (4 channels, 3 with a reference channel added)."""
+    holds at most the memory of ``length`` samples of 4 channels, shared arrays counted, and at least
+    ``held`` channels (a DAC piece's judges, fitted by a task of their own); its group is the largest whose
+    span reaches ``least``; with nothing shared (``b = 0``) that is the old count of channels x time."""
     from artifactclean.io.pipeline import _task_shape
 
     length, fs = 900_000, 30_000
     for a, b in ((4.7, 21.0), (4.4, 8.0), (10.0, 20.5), (3.1, 0.0)):
         budget = length * (4 * a + b)
-        for extra in (0, 1):
+        for held in (0, 1, 4):
             for least_s in (30, 36, 64, 120):
                 least = least_s * fs
-                g, span = _task_shape(8, length, least, extra, (a, b))
+                g, span = _task_shape(8, length, least, held, (a, b))
                 assert 1 <= g <= 8
-                assert span * (a * (g + extra) + b) <= budget * (1 + 1e-9)
+                assert span * (a * max(g, held) + b) <= budget * (1 + 1e-9)
                 if span >= least and g < 8:
-                    assert budget / (a * (g + 1 + extra) + b) < least  # one more channel would not fit
+                    assert budget / (a * max(g + 1, held) + b) < least  # one more channel would not fit
                 if span < least:
                     assert g == 1  # even one channel's piece is short: the shortest group
-    assert _task_shape(8, length, length, 0, (3.1, 0.0)) == (4, length)
-    assert _task_shape(8, length, length, 1, (3.1, 0.0)) == (3, length)
+    assert _task_shape(8, length, length, 0, (3.1, 0.0)) == _task_shape(8, length, length, 1, (3.1, 0.0)) \
+        == _task_shape(8, length, length, 4, (3.1, 0.0)) == (4, length)
+    # four judges make every task as large as four channels: fewer channels get no longer a span than four
+    assert _task_shape(8, length, 3 * length // 2, 0, (3.1, 0.0)) == (2, 2 * length)
+    assert _task_shape(8, length, 3 * length // 2, 4, (3.1, 0.0)) == (1, length)
     # the template at 5 Hz (one channel, a context of 30 s): 46 s, not the 120 s four channels' samples gave
     g, span = _task_shape(8, length, 120 * fs, 0, (4.7, 21.0))
     assert g == 1 and 45 * fs < span < 47 * fs

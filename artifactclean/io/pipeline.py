@@ -341,15 +341,14 @@ def clean_recording(
             # the plans' temporaries stay in this thread's heap unless handed back: the worker
             # threads allocate from heaps of their own (8 ch x 480 s, 2 workers: 1070 -> 960 MiB peak)
             _release_memory()
-        # the groups and the pieces' span from the plans' contexts, and a reference channel a plan adds
-        # to every group (a DAC grid's tick edges) counted in the budget: with both left out, 2 workers
-        # on an 8 ch x 480 s file peaked at 1049 MiB while the heartbeat's phase was read in every task
+        # the groups and the pieces' span from the plans' contexts, and the channels that judge a DAC
+        # grid's tick edges (fitted once a piece by a task of their own) counted in the budget: with both
+        # left out, 2 workers on an 8 ch x 480 s file peaked at 1049 MiB
         work = est.work_ranges(model, fs)
         ctx_max = max([_context(est, blk, model, fs) for _, _, blk in work] or [0])
-        extra = max(len(est.for_channels([c])[1]) - 1 for c in (0, 1)) \
-            if hasattr(est, "for_channels") and len(channels) > 1 else 0
+        held = max([len(est.edge_judges(blk)) for _, _, blk in work] or [0]) if hasattr(est, "edge_judges") else 0
         per_sample = [est.block_memory_per_sample(blk) for _, _, blk in work] or [est.memory_per_sample]
-        per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), extra,
+        per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), held,
                                       (max(a for a, _ in per_sample), max(b for _, b in per_sample)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
         cuts = _context_cuts(work, lambda blk: _context(est, blk, model, fs), span, fs)
@@ -357,7 +356,7 @@ def clean_recording(
         # three passes; 4 ch x 240 s, the file against the whole array: keeping 0.73-0.74 of it gave 4e-8
         # to 8e-8 of the range, 0.56 1e-5, 0.50 5e-5 and 0.38 3e-4, a few microvolts)
         if any(c["kept_s"] < _CUT_WARN * c["context_s"] for c in cuts):
-            _warn_context_cuts(cuts, method, max_range_s, extra, per_sample, fs)
+            _warn_context_cuts(cuts, method, max_range_s, held, per_sample, fs)
         writer = open_writer(output, fs, names, n, gain_uv=gain_uv, groups=groups) \
             if Path(output).suffix.lower() != ".nix" else open_writer(output, fs, names, n, groups=groups)
         with writer:
@@ -489,19 +488,20 @@ def _context(est, blk, model, fs: float) -> int:
     return int(np.ceil(est.context_seconds(f_ctx) * fs))
 
 
-def _task_shape(n_ch: int, length: int, least: int, extra: int, per_sample: tuple[float, float]) -> tuple[int, int]:
+def _task_shape(n_ch: int, length: int, least: int, held: int, per_sample: tuple[float, float]) -> tuple[int, int]:
     """Channels per group and samples of time per piece, from the memory of ``length`` samples of 4 channels.
 
     A task's memory is ``span * (a * channels + b)`` float64 values (``a, b``
     the estimator's :attr:`~artifactclean.estimators.ArtifactEstimator.memory_per_sample`:
-    per channel, and per sample of time whatever the channels), with
-    ``extra`` reference channels in every group. The group is the largest
-    whose span still reaches ``least`` samples (a piece of four contexts, at
-    least ``length``), else one channel. Counting channels only, one channel
-    got four times the span, and a 5 or 10 Hz task (one channel, 120 s) held
-    2.6 times the memory of a 20 Hz one (4 channels, 30 s): the template's
-    arrays shared by all channels held 21 values per sample (5.5 now), a
-    channel 4.7.
+    per channel, and per sample of time whatever the channels), where a
+    task holds at least ``held`` channels (a DAC piece's judges, fitted by a
+    task of their own: :func:`artifactclean.parallel.edge_keys_task`). The
+    group is the largest whose span still reaches ``least`` samples (a piece
+    of four contexts, at least ``length``), else one channel. Counting
+    channels only, one channel got four times the span, and a 5 or 10 Hz
+    task (one channel, 120 s) held 2.6 times the memory of a 20 Hz one (4
+    channels, 30 s): the template's arrays shared by all channels held 21
+    values per sample (5.5 now), a channel 4.7.
     The span depends on neither the worker count nor the recording's
     length, so the pieces (and the output, to the bit) do not either.
     """
@@ -509,7 +509,7 @@ def _task_shape(n_ch: int, length: int, least: int, extra: int, per_sample: tupl
     memory = length * (4 * a + b)
 
     def span_of(g: int) -> int:
-        return max(1, int(memory / (a * (g + extra) + b) * (1 + 1e-12)))  # 4 channels: length, not one less
+        return max(1, int(memory / (a * max(g, held) + b) * (1 + 1e-12)))  # 4 channels: length, not one less
 
     fits = [g for g in range(1, n_ch + 1) if span_of(g) >= least]
     g = max(fits) if fits else 1
@@ -540,17 +540,17 @@ def _context_cuts(work, context_of, span: int, fs: float) -> list[dict]:
     return out
 
 
-def _warn_context_cuts(cuts, method, max_range_s, extra, per_sample, fs) -> None:
+def _warn_context_cuts(cuts, method, max_range_s, held, per_sample, fs) -> None:
     """Say where pieces were cut short of their context, and the ``max_range_s`` that avoids it.
 
-    A one-channel group's span is ``max_range_s * fs * (4a + b) / (a (1 +
-    extra) + b)`` (:func:`_task_shape`); a piece keeps its whole context
+    A one-channel group's span is ``max_range_s * fs * (4a + b) / (a max(1,
+    held) + b)`` (:func:`_task_shape`); a piece keeps its whole context
     when twice the span holds four contexts, and a range shorter than four
     contexts is one piece when twice the span holds it.
     """
     a = max(p[0] for p in per_sample)
     b = max(p[1] for p in per_sample)
-    per_span = (a * (1 + extra) + b) / (4 * a + b)  # seconds of max_range_s per second of span
+    per_span = (a * max(1, held) + b) / (4 * a + b)  # seconds of max_range_s per second of span
 
     def need_of(c):
         ctx, length = c["context_s"], c["stop_s"] - c["start_s"]
