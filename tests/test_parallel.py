@@ -204,19 +204,29 @@ def test_file_cleaned_by_two_workers_is_the_same_file(oe_file, tmp_path):
     assert {tuple(r["channels"]) for r in prov["estimator_report"]} == {("CH1",), ("CH2",), ("CH3",), ("CH4",)}
 
 
-def test_a_files_judges_are_fitted_once_a_piece(oe_file, tmp_path, monkeypatch):
-    """One channel a task with a DAC grid: the reference's keys are settled by one task per piece and handed to
-    the four channels' tasks, which give the file the bytes of tasks that each fit the reference beside their
-    channel (edge_judges empty: the tasks before)."""
+@pytest.mark.parametrize("case", ["reference", "clipped"])
+def test_a_files_judges_are_fitted_once_a_piece(case, oe_file, tmp_path, monkeypatch):
+    """One channel a task with a DAC grid: the judges' keys (the reference's; where channels clip, the four
+    strongest's) are settled by one task per piece and handed to every group's task, which give the file the
+    bytes of tasks that each fit the judges beside their channel (edge_judges empty: the tasks before; the
+    groups and pieces held as they were, since the judges count in a task's memory)."""
     import artifactclean.io.pipeline as pipe
 
-    calls = []
-    task = pipe.edge_keys_task
-    monkeypatch.setattr(pipe, "edge_keys_task", lambda *a: calls.append(a[2:4]) or task(*a))
+    if case == "clipped":
+        from artifactclean.demo_files import write_openephys_binary
+        from artifactclean.scenarios import make_scenario
+
+        rec = make_scenario("clipped_20hz_dac", seed=3, duration_s=12)
+        oe_file = write_openephys_binary(tmp_path / "clipped", rec.data, rec.fs)
+    calls, shapes = [], {}
+    task, shape = pipe.edge_keys_task, pipe._task_shape
+    monkeypatch.setattr(pipe, "edge_keys_task", lambda *a: calls.append((a[2:4], len(a[1]))) or task(*a))
+    monkeypatch.setattr(pipe, "_task_shape", lambda *a: shapes.setdefault(a[:3], shape(*a)))
     shared, _ = _clean_file(oe_file, tmp_path / "shared.dat", workers=2)
     prov = json.loads((tmp_path / "shared.json").read_text())["provenance"]
     pieces = sorted({(r["start_s"], r["stop_s"]) for r in prov["estimator_report"]})
-    assert len(calls) == len(pieces) > 2 and len(set(calls)) == len(calls)
+    assert len(calls) == len(pieces) > 2 and len({c for c, _ in calls}) == len(calls)
+    assert {n for _, n in calls} == {4 if case == "clipped" else 1}
     monkeypatch.setattr(TemplateSubtraction, "edge_judges", lambda self, blk: [])
     calls.clear()
     joint, _ = _clean_file(oe_file, tmp_path / "joint.dat", workers=2)
