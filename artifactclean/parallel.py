@@ -22,6 +22,8 @@ from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
+from ._blas import one_blas_thread
+
 __all__ = ["channel_groups", "check_workers", "clean_in_groups", "subset_clip", "RecordingSpec", "ordered_results",
            "open_client", "client_threads", "check_cluster", "piece_task", "edge_keys_task",
            "ClusterError"]
@@ -62,6 +64,7 @@ def _clean_group(est, x, n_keep: int, fit_kwargs: dict, out: np.ndarray):
     return est.lost_[:n_keep], est.report_
 
 
+@one_blas_thread
 def clean_in_groups(est, data, fs: float, *, workers: int, stim_freq=None, stim_reference=None,
                     clip_level=None, nan_policy: str = "raise") -> tuple[np.ndarray, np.ndarray, list[dict]]:
     """Clean an array as groups of channels on ``workers`` threads.

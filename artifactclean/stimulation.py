@@ -27,6 +27,7 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage, optimize, signal
 
+from ._blas import one_blas_thread
 from .baseline import slow_baseline
 from .clipping import mask_runs
 from ._numeric import fractional_part
@@ -758,6 +759,7 @@ def _crossing(env: np.ndarray, near: int, value: float, rising: bool, origin: in
     return (i + origin) + (value - env[i]) / (env[i + 1] - env[i])
 
 
+@one_blas_thread
 def fit_stimulation(
     data: np.ndarray,
     fs: float,
@@ -833,6 +835,7 @@ def decimated_rate(stim_freq=None, fmax: float = 200.0) -> float:
     return max(16 * f_top, 200.0)
 
 
+@one_blas_thread
 def fit_decimated(
     x_ds: np.ndarray,
     fs_ds: float,

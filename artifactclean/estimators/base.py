@@ -18,6 +18,7 @@ import warnings
 import numpy as np
 from sklearn.base import BaseEstimator
 
+from .._blas import one_blas_thread
 from ..clipping import find_clipped
 from ..stimulation import StimulationModel, fit_stimulation
 
@@ -107,6 +108,7 @@ class ArtifactEstimator(BaseEstimator):
     #: file pieces are sized from it (:func:`artifactclean.io.pipeline.clean_recording`)
     memory_per_sample: tuple[float, float] = (5.0, 20.0)
 
+    @one_blas_thread
     def fit(
         self,
         X,

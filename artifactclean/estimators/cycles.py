@@ -21,6 +21,7 @@ import numpy as np
 from scipy import ndimage, signal
 from sklearn.base import clone
 
+from .._blas import one_blas_thread
 from .._numeric import fractional_part
 from ..baseline import LevelTrack, bent_corners, level_off_reader, level_track
 from ..clipping import find_clipped, find_rails
@@ -544,6 +545,7 @@ class CycleEstimator(ArtifactEstimator):
             infos.append(info)
         return art, dict(_joined_reports(infos), upsampled_by=up), cen
 
+    @one_blas_thread
     def prepare(self, read, model, fs: float, mapper=map) -> None:
         """Decide, once per block, what must not depend on how a recording is cut.
 

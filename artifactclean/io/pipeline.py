@@ -29,6 +29,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
+from .._blas import one_blas_thread
 from .._version import __version__
 from ..clipping import find_clipped, mask_runs
 from ..estimators import DEFAULT_METHOD, make_estimator
@@ -178,6 +179,7 @@ def _checksum(path: Path) -> dict:
     return dict(path=str(Path(path).resolve()), size_bytes=size, sha256=h.hexdigest(), files=len(files))
 
 
+@one_blas_thread
 def clean_recording(
     rec: Recording,
     output,
@@ -642,6 +644,7 @@ def _warn_other_segments(rec, stacklevel: int = 3) -> None:
                       "for the rest", stacklevel=stacklevel)
 
 
+@one_blas_thread
 def survey_recording(rec: Recording, *, channels: Sequence[int] | None = None, stim_freq: float | None = None,
                      monitor: tuple[Recording, int] | None = None, progress: Progress | None = None) -> dict:
     """What to know before cleaning: blocks, refined frequencies, drift, per-channel artifact and clipping."""
