@@ -27,19 +27,13 @@ from __future__ import annotations
 import threading
 from contextlib import ContextDecorator
 
+from threadpoolctl import threadpool_limits
+
 __all__ = ["one_blas_thread"]
 
-_LOCK = threading.Lock()
+# touched by the main thread only
 _users = 0
 _limits = None
-
-
-def _limit():
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - a dependency of scikit-learn, and of this project
-        return None
-    return threadpool_limits(limits=1, user_api="blas")
 
 
 class _OneBlasThread(ContextDecorator):
@@ -48,20 +42,18 @@ class _OneBlasThread(ContextDecorator):
     def __enter__(self):
         global _users, _limits
         if threading.current_thread() is threading.main_thread():
-            with _LOCK:
-                if _users == 0:
-                    _limits = _limit()
-                _users += 1
+            if _users == 0:
+                _limits = threadpool_limits(limits=1, user_api="blas")
+            _users += 1
         return self
 
     def __exit__(self, *exc):
         global _users, _limits
         if threading.current_thread() is threading.main_thread():
-            with _LOCK:
-                _users -= 1
-                if _users == 0 and _limits is not None:
-                    _limits.restore_original_limits()
-                    _limits = None
+            _users -= 1
+            if _users == 0:
+                _limits.restore_original_limits()
+                _limits = None
         return False
 
 

@@ -4,12 +4,10 @@ import threading
 import warnings
 
 import numpy as np
-import pytest
+import threadpoolctl
 
-threadpoolctl = pytest.importorskip("threadpoolctl")
-
-from artifactclean import TemplateSubtraction, clean  # noqa: E402
-from artifactclean._blas import one_blas_thread  # noqa: E402
+from artifactclean import TemplateSubtraction, clean
+from artifactclean._blas import one_blas_thread
 
 
 def _blas_threads() -> int:

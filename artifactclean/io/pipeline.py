@@ -391,10 +391,11 @@ def clean_recording(
                     # are fitted once per piece and their keys handed to every group (edge_keys_task); a piece's
                     # judges are submitted before the groups of the piece before it, so threads rarely wait
                     judges = est.edge_judges(blk) if hasattr(est, "edge_judges") and len(groups) > 1 else []
+                    n_judged = 0  # pieces whose judges are submitted: up to the one after the piece at hand
                     for i, piece in enumerate(pieces):
-                        for nxt in ([0, 1] if i == 0 else [i + 1]) if judges else []:
-                            if nxt < len(pieces):
-                                yield "task", ("judges", pieces[nxt], blk)
+                        while judges and n_judged < min(i + 2, len(pieces)):
+                            yield "task", ("judges", pieces[n_judged], blk)
+                            n_judged += 1
                         for k in range(len(groups)):
                             yield "task", piece + (k, bool(judges))
                     pos = e
