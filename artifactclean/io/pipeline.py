@@ -394,7 +394,7 @@ def clean_recording(
                     n_judged = 0  # pieces whose judges are submitted: up to the one after the piece at hand
                     for i, piece in enumerate(pieces):
                         while judges and n_judged < min(i + 2, len(pieces)):
-                            yield "task", ("judges", pieces[n_judged], blk)
+                            yield "task", ("judges", pieces[n_judged], judges)
                             n_judged += 1
                         for k in range(len(groups)):
                             yield "task", piece + (k, bool(judges))
@@ -406,8 +406,8 @@ def clean_recording(
 
             def submit(item):
                 if item[0] == "judges":
-                    (lo_, hi_, _, _), blk = item[1:]
-                    sub, fit = est.for_channels(est.edge_judges(blk))
+                    (lo_, hi_, _, _), judges = item[1:]
+                    sub, fit = est.for_channels(judges)
                     judged[lo_, hi_] = f = submit_fn(edge_keys_task, src, [channels[i] for i in fit], lo_, hi_, sub,
                                                      model.window(lo_, hi_), subset_clip(rails, fit), fs)
                     return f
