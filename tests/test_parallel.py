@@ -401,6 +401,57 @@ def test_a_file_piece_is_cleaned_in_the_array_read_for_it(short_dac):
     np.testing.assert_array_equal(read[0], y)
 
 
+def test_freed_memory_is_handed_back_only_beyond_what_is_kept(monkeypatch):
+    """``_release_memory(keep)`` trims the heap (glibc's ``malloc_trim``) only once the free memory it holds
+    passes ``keep``; with nothing kept, or where the free memory cannot be read, it always trims."""
+    from artifactclean.io import pipeline as pipe
+
+    trims, held = [], [100.0]
+    monkeypatch.setattr(pipe, "_TRIM", lambda pad: trims.append(pad))
+    monkeypatch.setattr(pipe, "_HELD", lambda: held[0])
+    for keep, expected in ((0.0, 1), (99.0, 1), (100.0, 0), (1e9, 0)):
+        trims.clear()
+        pipe._release_memory(keep)
+        assert len(trims) == expected, keep
+    monkeypatch.setattr(pipe, "_HELD", None)
+    trims.clear()
+    pipe._release_memory(1e9)
+    assert trims == [0]
+
+
+def test_the_free_heap_memory_is_read_from_glibc():
+    """The free bytes ``_release_memory`` compares with what it keeps are glibc's own count
+    (``mallinfo2().fordblks``, glibc's malloc.h): holes freed between live blocks raise it by their size."""
+    from artifactclean.io import pipeline as pipe
+
+    pipe._release_memory(float("inf"))  # binds the C functions, hands nothing back
+    if not pipe._TRIM or pipe._HELD is None:
+        pytest.skip("not glibc 2.33 or later")
+    blocks = [bytearray(64 * 1024) for _ in range(1200)]  # under glibc's mmap threshold: from the heap
+    before = pipe._HELD()
+    del blocks[::2]  # 600 holes of 64 KiB between live blocks: no trim at the heap's top can take them
+    assert pipe._HELD() - before > 0.9 * 600 * 64 * 1024
+    del blocks
+
+
+def test_a_file_run_keeps_the_memory_of_tasks_for_the_next(oe_file, tmp_path, monkeypatch):
+    """Between a file's tasks the heap keeps ``_KEPT_TASKS`` tasks' memory (``_task_shape``'s float64
+    values) rather than handing it back to fault it in again for the next task; before the cleaning it keeps
+    that on one worker (the tasks reuse this thread's heap) and nothing on two."""
+    from artifactclean import make_estimator
+    from artifactclean.io import pipeline as pipe
+
+    keeps = []
+    monkeypatch.setattr(pipe, "_release_memory", lambda keep=0.0: keeps.append(keep))
+    a, b = make_estimator("template").memory_per_sample
+    task = 8 * 30_000 * (4 * a + b)  # the 1 s budget of _clean_file, 4 channels' worth
+    for workers in (1, 2):
+        keeps.clear()
+        _clean_file(oe_file, tmp_path / f"kept{workers}.dat", workers=workers)
+        assert len(keeps) > 4 and min(keeps[2:]) >= pipe._KEPT_TASKS * task >= 2 * task
+        assert min(keeps[:2]) >= pipe._KEPT_TASKS * task if workers == 1 else keeps[:2] == [0.0, 0.0]
+
+
 def test_task_shape_keeps_a_task_within_the_memory_of_four_channels():
     """Groups and spans from the estimator's memory per sample (per channel ``a``, shared ``b``): a task
     holds at most the memory of ``length`` samples of 4 channels, shared arrays counted, and at least

@@ -272,9 +272,17 @@ def clean_recording(
     est._validate_params()
     # chunk_s is for 4 channels: more channels read shorter chunks, so memory follows the budget
     chunk = max(1, int(chunk_s * rec.fs * min(1.0, 4 / len(channels))))
+    fs = rec.fs
+    # a task holds the memory of `budget` samples (4 channels x time): groups of channels, each cleaned
+    # over pieces long enough for the estimator's full context; whatever the channel count
+    budget = max(int(max_range_s * fs * 4), 4 * chunk)
+    # freed heap memory the cleaning reuses rather than hands back (pages handed back fault when touched
+    # again), where the tasks run on this thread: _KEPT_TASKS tasks' memory (float64 values, see _task_shape)
+    kept_here = 8.0 * _KEPT_TASKS * (budget // 4) * (4 * est.memory_per_sample[0] + est.memory_per_sample[1]) \
+        if n_workers == 1 and cluster is None else 0.0
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
     model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
-    _release_memory()  # the stimulation fit's spectra grow with the recording: handed back before the cleaning
+    _release_memory(kept_here)  # the stimulation fit's spectra grow with the recording
     names = [rec.channel_names[i] for i in channels]
     if not model.blocks:
         hint = f" near {stim_freq} Hz" if stim_freq else ""
@@ -293,10 +301,6 @@ def clean_recording(
     n = rec.n_samples
     stretches: list[dict] = []
     reports = []
-    fs = rec.fs
-    # a task holds the memory of `budget` samples (4 channels x time): groups of channels, each cleaned
-    # over pieces long enough for the estimator's full context; whatever the channel count
-    budget = max(int(max_range_s * fs * 4), 4 * chunk)
     client, own_client = open_client(cluster)
     pool = None
     # the input's SHA-256 for the provenance, read beside the cleaning (hashlib releases the GIL)
@@ -342,7 +346,7 @@ def clean_recording(
                 progress(1, 1, "planning")
             # the plans' temporaries stay in this thread's heap unless handed back: the worker
             # threads allocate from heaps of their own (8 ch x 480 s, 2 workers: 1070 -> 960 MiB peak)
-            _release_memory()
+            _release_memory(kept_here)
         # the groups and the pieces' span from the plans' contexts, and the channels that judge a DAC
         # grid's tick edges (fitted once a piece by a task of their own) counted in the budget: with both
         # left out, 2 workers on an 8 ch x 480 s file peaked at 1049 MiB
@@ -353,6 +357,7 @@ def clean_recording(
         per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), held,
                                       (max(a for a, _ in per_sample), max(b for _, b in per_sample)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
+        keep = 8.0 * _KEPT_TASKS * (budget // 4) * max(4 * a + b for a, b in per_sample)
         cuts = _context_cuts(work, lambda blk: _context(est, blk, model, fs), span, fs)
         # every cut is recorded; the run warns below two thirds of the declared context (the template's
         # three passes; 4 ch x 240 s, the file against the whole array: keeping 0.73-0.74 of it gave 4e-8
@@ -436,7 +441,7 @@ def clean_recording(
                 if progress and k == len(groups) - 1:
                     progress(b, n, "cleaning")
                 del y, lost
-                _release_memory()
+                _release_memory(keep)
             meta = dict(
                 provenance=dict(
                     artifactclean_version=__version__,
@@ -602,22 +607,46 @@ def _pieces(s: int, e: int, ctx: int, span: int) -> list[tuple[int, int, int, in
     return out
 
 
-def _release_memory() -> None:
-    """Hand freed heap memory back to the system between pieces (glibc), so peak memory
-    follows the piece size rather than how many pieces came before."""
-    global _TRIM
+def _release_memory(keep: float = 0.0) -> None:
+    """Hand freed heap memory back to the system (glibc) once the heap holds more than ``keep`` bytes of it.
+
+    Peak memory then follows the pieces' size, not how many pieces came
+    before, while up to ``keep`` freed bytes stay for the next tasks to
+    reuse: memory handed back costs a page fault a page when touched again.
+    Where glibc cannot say how much it holds (``mallinfo2``, glibc 2.33 and
+    later), everything is handed back; elsewhere (not glibc), nothing.
+    """
+    global _TRIM, _HELD
     if _TRIM is None:
         try:
             import ctypes
 
-            _TRIM = ctypes.CDLL("libc.so.6").malloc_trim
+            libc = ctypes.CDLL("libc.so.6")
+            _TRIM = libc.malloc_trim
         except (OSError, AttributeError):
             _TRIM = False
-    if _TRIM:
+        else:
+            try:
+                class _Info(ctypes.Structure):  # struct mallinfo2 of glibc's malloc.h
+                    _fields_ = [(n, ctypes.c_size_t) for n in ("arena", "ordblks", "smblks", "hblks", "hblkhd",
+                                                               "usmblks", "fsmblks", "uordblks", "fordblks",
+                                                               "keepcost")]
+
+                libc.mallinfo2.restype = _Info
+                _HELD = lambda: libc.mallinfo2().fordblks  # noqa: E731  (free bytes of all arenas)
+            except AttributeError:
+                _HELD = None
+    if _TRIM and (keep <= 0 or _HELD is None or _HELD() > keep):
         _TRIM(0)
 
 
 _TRIM = None
+_HELD = None
+#: tasks' memory (each ``_task_shape``'s) the heap may keep free between a file's tasks. A file of 8 ch x 120 s
+#: at 20 Hz on 1 worker, trimmed after every task: 260-280 thousand page faults, 1.0-1.35 s of system time,
+#: 7.0-8.4 s; keeping one task's memory, half the tasks still trimmed (the freed blocks lie scattered); two:
+#: 80-90 thousand faults, 0.65-0.75 s, 6.6-7.7 s, and 20 MiB more at the peak (this project's measure)
+_KEPT_TASKS = 2
 
 
 def _merge(stretches: list[dict]) -> list[dict]:
