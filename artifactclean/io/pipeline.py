@@ -277,7 +277,9 @@ def clean_recording(
     # over pieces long enough for the estimator's full context; whatever the channel count
     budget = max(int(max_range_s * fs * 4), 4 * chunk)
     # freed heap memory the cleaning reuses rather than hands back (pages handed back fault when touched
-    # again), where the tasks run on this thread: _KEPT_TASKS tasks' memory (float64 values, see _task_shape)
+    # again), where the tasks run on this thread: _KEPT_TASKS tasks' memory (float64 values, see _task_shape).
+    # Not on worker threads: their heaps grow and shrink by themselves, and what stayed held raised the peak
+    # (8 ch x 480 s at 5 Hz, 2 workers: 858-870 -> 925 MiB, 1.09x the 120 s file's)
     kept_here = 8.0 * _KEPT_TASKS * (budget // 4) * (4 * est.memory_per_sample[0] + est.memory_per_sample[1]) \
         if n_workers == 1 and cluster is None else 0.0
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
@@ -357,7 +359,7 @@ def clean_recording(
         per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), held,
                                       (max(a for a, _ in per_sample), max(b for _, b in per_sample)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
-        keep = 8.0 * _KEPT_TASKS * (budget // 4) * max(4 * a + b for a, b in per_sample)
+        keep = 8.0 * _KEPT_TASKS * (budget // 4) * max(4 * a + b for a, b in per_sample) if kept_here else 0.0
         cuts = _context_cuts(work, lambda blk: _context(est, blk, model, fs), span, fs)
         # every cut is recorded; the run warns below two thirds of the declared context (the template's
         # three passes; 4 ch x 240 s, the file against the whole array: keeping 0.73-0.74 of it gave 4e-8
