@@ -278,8 +278,8 @@ def clean_recording(
     budget = max(int(max_range_s * fs * 4), 4 * chunk)
     # freed heap memory the cleaning reuses rather than hands back (pages handed back fault when touched
     # again), where the tasks run on this thread: _KEPT_TASKS tasks' memory (float64 values, see _task_shape).
-    # Not on worker threads: their heaps grow and shrink by themselves, and what stayed held raised the peak
-    # (8 ch x 480 s at 5 Hz, 2 workers: 858-870 -> 925 MiB, 1.09x the 120 s file's)
+    # Not on worker threads: their heaps grow and shrink by themselves, so it gained nothing there, and a
+    # 5 Hz file of 8 ch x 480 s then peaked at 925 MiB (852-892 MiB trimmed after every task)
     kept_here = 8.0 * _KEPT_TASKS * (budget // 4) * (4 * est.memory_per_sample[0] + est.memory_per_sample[1]) \
         if n_workers == 1 and cluster is None else 0.0
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
@@ -647,7 +647,8 @@ _HELD = None
 #: tasks' memory (each ``_task_shape``'s) the heap may keep free between a file's tasks. A file of 8 ch x 120 s
 #: at 20 Hz on 1 worker, trimmed after every task: 260-280 thousand page faults, 1.0-1.35 s of system time,
 #: 7.0-8.4 s; keeping one task's memory, half the tasks still trimmed (the freed blocks lie scattered); two:
-#: 80-90 thousand faults, 0.65-0.75 s, 6.6-7.7 s, and 20 MiB more at the peak (this project's measure)
+#: 80-90 thousand faults, 0.65-0.75 s, 6.6-8.1 s (medians 7.5 -> 7.1 s in six fresh runs each), and 20 MiB
+#: more at the peak (this project's measure)
 _KEPT_TASKS = 2
 
 
