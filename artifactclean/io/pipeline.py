@@ -280,8 +280,7 @@ def clean_recording(
     # again), where the tasks run on this thread: _KEPT_TASKS tasks' memory (float64 values, see _task_shape).
     # Not on worker threads: their heaps grow and shrink by themselves, so it gained nothing there, and a
     # 5 Hz file of 8 ch x 480 s then peaked at 925 MiB (852-892 MiB trimmed after every task)
-    kept_here = 8.0 * _KEPT_TASKS * (budget // 4) * (4 * est.memory_per_sample[0] + est.memory_per_sample[1]) \
-        if n_workers == 1 and cluster is None else 0.0
+    kept_here = _kept_bytes(budget, [est.memory_per_sample]) if n_workers == 1 and cluster is None else 0.0
     scan = scan_recording(rec, channels, chunk=chunk, progress=progress)
     model = fit_recording_stimulation(rec, channels, scan, stim_freq=stim_freq, monitor=monitor)
     _release_memory(kept_here)  # the stimulation fit's spectra grow with the recording
@@ -359,7 +358,7 @@ def clean_recording(
         per_group, span = _task_shape(len(channels), budget // 4, max(budget // 4, 4 * ctx_max, 1), held,
                                       (max(a for a, _ in per_sample), max(b for _, b in per_sample)))
         groups = channel_groups(len(channels), max(n_workers, -(-len(channels) // per_group)))
-        keep = 8.0 * _KEPT_TASKS * (budget // 4) * max(4 * a + b for a, b in per_sample) if kept_here else 0.0
+        keep = _kept_bytes(budget, per_sample) if kept_here else 0.0  # the blocks' own memory per sample
         cuts = _context_cuts(work, lambda blk: _context(est, blk, model, fs), span, fs)
         # every cut is recorded; the run warns below two thirds of the declared context (the template's
         # three passes; 4 ch x 240 s, the file against the whole array: keeping 0.73-0.74 of it gave 4e-8
@@ -650,6 +649,12 @@ _HELD = None
 #: 80-90 thousand faults, 0.65-0.75 s, 6.6-8.1 s (medians 7.5 -> 7.1 s in six fresh runs each), and 20 MiB
 #: more at the peak (this project's measure)
 _KEPT_TASKS = 2
+
+
+def _kept_bytes(budget: int, per_sample) -> float:
+    """Bytes of :data:`_KEPT_TASKS` tasks of ``budget`` samples (4 channels x time; ``per_sample``: the
+    ``(a, b)`` of each work range, the largest counted), as :func:`_task_shape` counts a task."""
+    return 8.0 * _KEPT_TASKS * (budget // 4) * max(4 * a + b for a, b in per_sample)
 
 
 def _merge(stretches: list[dict]) -> list[dict]:
