@@ -99,8 +99,9 @@ _HALF_LINE = 2.0
 #: channel of one trace, doubled the LFP error away from the harmonics at 10 Hz, 0.021 -> 0.044). z is
 #: about exponential with mean 1 for the floor alone, so a harmonic passes by chance once in e^5 = 150
 _SIGNIFICANCE = 5.0
-#: harmonics modelled at most (2 ... this + 1)
-_MAX_HARMONICS = 8
+#: harmonics modelled at most (2 ... this + 1; session 37: 8 left a 1.2 Hz alpha-shaped pulse's 10th-13th
+#: harmonics beside 20 and 40 Hz, LFP away 0.045-0.052 where 12 gave 0.026-0.037)
+_MAX_HARMONICS = 12
 #: a harmonic within this fraction above the highest frequency the gain follows is still modelled: the heart
 #: rate wanders by a few per cent (and is read within about a per cent), so its line spends time on both sides
 #: of the limit (this project's choice: a 2.49 Hz heart read as 2.51 Hz lost its 4th harmonic at 10 Hz, whose
@@ -1000,7 +1001,7 @@ def _line_at(score: np.ndarray, peak: np.ndarray, freqs: np.ndarray, hz: float) 
 
 def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, pool=None,
               shift: np.ndarray | None = None, per_cycle: int = 1, cycle: np.ndarray | None = None,
-              first: int = 0, band: tuple[float, float] = HEART_HZ) -> PulseModel | None:
+              first: int = 0, band: tuple[float, float] = HEART_HZ, beyond: bool = True) -> PulseModel | None:
     """Find a heartbeat in ``gain`` and fit its harmonics' ratios to its fundamental.
 
     Parameters
@@ -1011,8 +1012,19 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     rate : float
         Gain samples per second.
     max_hz : float
-        Highest modulation frequency the gain may follow: harmonics beyond it
-        are not modelled.
+        Highest modulation frequency the gain may follow (the tracking
+        limit; harmonics to :data:`_RATE_WANDER` beyond it are modelled as
+        within it).
+    beyond : bool
+        Model harmonics beyond ``max_hz`` too, as far as the gain's samples
+        hold them (0.45 of ``rate``), each only while every harmonic below
+        it stands out of the floor: the gain's filter takes off all beyond
+        the limit, so a harmonic left unmodelled there stays as sidebands
+        beside every stimulation harmonic, and a pulse's harmonics fall off
+        smoothly (an alpha-shaped pulse's as ``1 / k^2``,
+        :func:`artifactclean.synthetic.alpha_pulse_harmonics`), so a line
+        beyond the limit after one that does not stand out is the floor's.
+        False: none beyond the limit.
     ref : int
         Row whose fundamental gives the heartbeat's phase to all, with those
         of up to :data:`_POOL_MAX` - 1 more rows of ``pool`` (indices; all
@@ -1050,8 +1062,10 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     heart = heart_rate(dev, rate, band)
     if heart is None:
         return None
-    n_harm = int(min(_MAX_HARMONICS, np.floor(min(max_hz * (1 + _RATE_WANDER), 0.45 * rate) / heart) - 1))
-    if n_harm < 1:
+    # harmonics 2 .. within + 1 lie within the tracking limit; up to n_harm + 1 where the gain's samples hold them
+    within = int(min(_MAX_HARMONICS, np.floor(min(max_hz * (1 + _RATE_WANDER), 0.45 * rate) / heart) - 1))
+    n_harm = int(min(_MAX_HARMONICS, np.floor(0.45 * rate / heart) - 1)) if beyond else within
+    if within < 1:
         return None
     # fit away from the sequence's ends, where the band-pass holds the edge value
     edge = int(PULSE_HALF_S * rate)
@@ -1101,6 +1115,12 @@ def fit_pulse(gain: np.ndarray, rate: float, *, max_hz: float, ref: int = 0, poo
     stat = np.abs(shape) ** 2 / _pooled_variance(resid, a, rate, heart * hs[1:], t_fit, amp2, nper_fit)
     # shrunk by how far each harmonic stands out of the floor (none at about the floor's own fit)
     shrink = np.clip(1.0 - _SIGNIFICANCE / np.maximum(stat, 1e-300), 0.0, 1.0)
+    # beyond the tracking limit only an unbroken run of harmonics: on a sinusoidal heart every harmonic the gain's
+    # rate holds, each tested alone, made the floor's chance lines into harmonics (session 28: LFP away 0.039 ->
+    # 0.046 at 10 Hz on one draw)
+    if n_harm > within:
+        run = np.cumprod(shrink[within - 1:] > 0)[1:]  # from the last harmonic within the limit
+        shrink[within:] *= run
     coefs = k[:, None] * (shape * shrink)[None, :]
     if held is None:
         # fitted as the gains hold them; a plain mean over each segment holds sinc(f / rate) of the modulation

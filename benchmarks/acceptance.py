@@ -11,11 +11,14 @@ the worst channel's spike-band residual (x noise), residual within +-3 Hz
 of the harmonics (x neural), LFP error away from those bands, recall
 ratio, worst/best sixth, delta PPC and the locked unit's PLV and phase
 errors. ``--param NAME=VALUE`` (repeatable; VALUE a Python literal) passes
-an estimator parameter to ``clean``. Figures, not seconds: nothing here is
-timed.
+an estimator parameter to ``clean``. ``--pulse-tau S`` makes the pulsatile
+heartbeat a train of alpha-function pulses rising within ``S`` seconds, ten
+harmonics falling as ``1 / k^2`` (the default pulse has two, at 0.5 and
+0.25 of the fundamental; :func:`artifactclean.synthetic.alpha_pulse_harmonics`).
+Figures, not seconds: nothing here is timed.
 
     python benchmarks/acceptance.py [--method template] [--seconds 20] [--seeds 1 3] [--freqs 5 10 20 40]
-                                    [--dac-rate 1000] [--heart-hz 2] [--param tracking_hz=20 ...]
+                                    [--dac-rate 1000] [--heart-hz 2] [--pulse-tau 0.07] [--param tracking_hz=20 ...]
 """
 
 from __future__ import annotations
@@ -40,7 +43,7 @@ def main(argv=None) -> list[dict]:
     from artifactclean import DEFAULT_METHOD, clean, make_estimator
     from artifactclean.evaluation import score_cleaning
     from artifactclean.scenarios import SCENARIOS, locked_units
-    from artifactclean.synthetic import NeuralSpec, simulate_recording
+    from artifactclean.synthetic import NeuralSpec, alpha_pulse_harmonics, simulate_recording
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--method", default=DEFAULT_METHOD)
@@ -50,6 +53,8 @@ def main(argv=None) -> list[dict]:
     ap.add_argument("--dac-rate", type=float, default=1000.0, help="updates per second of the DAC rows (Hz)")
     ap.add_argument("--heart-hz", type=float, default=SCENARIOS["modulated_20hz"][0].heart_rate_hz,
                     help="heart rate of the traces (Hz)")
+    ap.add_argument("--pulse-tau", type=float, default=None, metavar="S",
+                    help="the pulsatile heartbeat as alpha-function pulses rising within S seconds (e.g. 0.07)")
     ap.add_argument("--param", type=_param, action="append", default=[], metavar="NAME=VALUE",
                     help="an estimator parameter for clean(), e.g. tracking_hz=20 or 'heart_band_hz=(4, 12)'")
     args = ap.parse_args(argv)
@@ -58,13 +63,17 @@ def main(argv=None) -> list[dict]:
         ap.error(f"--dac-rate must be positive, got {args.dac_rate:g}")
     if not args.heart_hz > 0:
         ap.error(f"--heart-hz must be positive, got {args.heart_hz:g}")
+    if args.pulse_tau is not None and not args.pulse_tau > 0:
+        ap.error(f"--pulse-tau must be positive, got {args.pulse_tau:g}")
     params = dict(args.param)
     try:
         make_estimator(args.method, **params)
     except (ValueError, TypeError) as exc:
         ap.error(str(exc))
     print(f"{args.method!r}, {args.seconds:g} s traces, seeds {args.seeds}, DAC rows at {args.dac_rate:g} Hz, "
-          f"heart at {args.heart_hz:g} Hz{''.join(f', {k}={v!r}' for k, v in params.items())}; worst channel")
+          f"heart at {args.heart_hz:g} Hz"
+          f"{'' if args.pulse_tau is None else f', alpha pulses of {args.pulse_tau:g} s'}"
+          f"{''.join(f', {k}={v!r}' for k, v in params.items())}; worst channel")
     print(f"{'heartbeat':<10} {'Hz':>3} {'DAC':>4} {'seed':>4} {'spike-band':>10} {'+-3 Hz':>7} {'away':>6} "
           f"{'recall':>7} {'sixth':>6} {'dPPC':>9} {'PLV err':>8} {'phase':>6}")
     rows = []
@@ -76,6 +85,9 @@ def main(argv=None) -> list[dict]:
                                           dac_rate_hz=args.dac_rate if dac else None)
                 if heart == "sine":
                     art = dataclasses.replace(art, heart_harmonics=())
+                elif args.pulse_tau is not None:
+                    art = dataclasses.replace(art, heart_harmonics=alpha_pulse_harmonics(args.heart_hz,
+                                                                                         args.pulse_tau))
                 for seed in args.seeds:
                     rec = simulate_recording(args.seconds, artifact=art, neural=NeuralSpec(units=locked_units()),
                                              seed=seed)

@@ -6,7 +6,8 @@ from scipy import signal
 from scipy.special import i0, i1
 
 from artifactclean.phase_stats import plv
-from artifactclean.synthetic import ArtifactSpec, BlockSpec, NeuralSpec, UnitSpec, simulate_recording
+from artifactclean.synthetic import (ArtifactSpec, BlockSpec, NeuralSpec, UnitSpec, _harmonic_sum,
+                                     alpha_pulse_harmonics, simulate_recording)
 
 
 def _line(x, fs, f):
@@ -132,6 +133,28 @@ def test_heartbeat_depth_is_the_peak_change_and_its_harmonics_are_sidebands(harm
         assert second > 0.1 * first  # (0.5)^2 = 0.25 in power, smeared by the rate wander
     else:
         assert second < 1e-4 * first  # window leakage only
+
+
+@pytest.mark.parametrize("rate_hz, tau_s", [(2.0, 0.07), (1.25, 0.1)])
+def test_alpha_pulse_harmonics_are_those_of_a_sampled_pulse_train(rate_hz, tau_s):
+    # reference: numpy.fft.rfft of one period of a train of (t / tau) exp(1 - t / tau) pulses, sampled at 2 kHz
+    # (the tails of earlier pulses wrapped in); its harmonics relative to the fundamental, and the waveform
+    # _harmonic_sum builds from them, must match
+    fs = 2000.0
+    t = np.arange(int(round(fs / rate_hz))) / fs  # a whole number of samples a period
+    one = sum(((t + r / rate_hz) / tau_s) * np.exp(1 - (t + r / rate_hz) / tau_s) for r in range(40))
+    c = np.fft.rfft(one)
+    harm = alpha_pulse_harmonics(rate_hz, tau_s, n=6)
+    assert len(harm) == 6
+    for k, (rel, ph) in enumerate(harm, start=2):
+        ratio = c[k] / c[1] / (c[1] / abs(c[1])) ** (k - 1)  # the fundamental's phase taken off k times
+        assert abs(abs(ratio) - rel) < 2e-4
+        assert abs(np.angle(ratio * np.exp(-1j * ph))) < 1e-3
+    wave = _harmonic_sum(2 * np.pi * rate_hz * t + np.angle(c[1]), harm)
+    ref = np.fft.irfft(np.concatenate(([0], c[1:8], np.zeros(c.size - 8))), t.size)
+    assert np.corrcoef(wave, ref)[0, 1] > 1 - 1e-6
+    with pytest.raises(ValueError, match="positive"):
+        alpha_pulse_harmonics(2.0, 0.0)
 
 
 def test_heartbeat_phase_shift_of_the_artifact():
