@@ -27,6 +27,7 @@ from dataclasses import dataclass, field, asdict
 from typing import Sequence
 
 import numpy as np
+from scipy import signal
 from scipy.special import i0
 
 from .stimulation import ramp_level
@@ -95,6 +96,12 @@ class ArtifactSpec:
     also sets the waveform's frequency, so a cycle holds a fixed number of
     updates); a waveform synthesised at a frequency the DAC's rate does not
     divide (finite frequency resolution) is the same case.
+    ``lowpass_hz`` is the amplifier's anti-aliasing low-pass (a causal
+    3rd-order Butterworth, as an analog filter is; None: none), applied to
+    everything it records, so the neural truth is what the amplifier sees
+    of it: a DAC's steps reach the samples as the filter's step response,
+    spread over the samples after each edge by where between samples the
+    edge fell.
     """
 
     freq_hz: float = 20.0
@@ -112,6 +119,7 @@ class ArtifactSpec:
     dac_clock_ppm: float | None = None
     clip_uv: float | None = None
     lsb_uv: float | None = 0.195
+    lowpass_hz: float | None = None
 
 
 @dataclass
@@ -456,6 +464,13 @@ def simulate_recording(
         spike_times.append(st)
         unit_channels.append(unit.channel)
 
+    if artifact.lowpass_hz is not None:
+        if not 0 < artifact.lowpass_hz < fs / 2:
+            raise ValueError(f"lowpass_hz must lie between 0 and fs / 2 = {fs / 2:g}, got {artifact.lowpass_hz!r}")
+        # an amplifier's front end: 3rd order (common practice for anti-aliasing in neural amplifiers, from memory)
+        sos = signal.butter(3, artifact.lowpass_hz, fs=fs, output="sos")
+        art = signal.sosfilt(sos, art, axis=-1)
+        clean = signal.sosfilt(sos, clean, axis=-1)
     data = clean + art
     clipped = np.zeros(data.shape, dtype=bool)
     if artifact.clip_uv is not None:

@@ -1,5 +1,7 @@
 """The generator checked against its own parameters."""
 
+import dataclasses
+
 import numpy as np
 import pytest
 from scipy import signal
@@ -155,6 +157,26 @@ def test_alpha_pulse_harmonics_are_those_of_a_sampled_pulse_train(rate_hz, tau_s
     assert np.corrcoef(wave, ref)[0, 1] > 1 - 1e-6
     with pytest.raises(ValueError, match="positive"):
         alpha_pulse_harmonics(2.0, 0.0)
+
+
+def test_the_amplifiers_lowpass_filters_what_it_records():
+    # reference: scipy.signal.sosfreqz of a 3rd-order Butterworth at the cut-off (its gain there is 1 / sqrt(2));
+    # a DAC's 1 kHz steps then reach the samples as its step response, and the neural truth is filtered alike
+    spec = ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, lsb_uv=None)
+    plain = simulate_recording(4.0, n_channels=1, artifact=spec, seed=3)
+    low = simulate_recording(4.0, n_channels=1, artifact=dataclasses.replace(spec, lowpass_hz=5000.0), seed=3)
+    sos = signal.butter(3, 5000.0, fs=plain.fs, output="sos")
+    np.testing.assert_allclose(low.artifact, signal.sosfilt(sos, plain.artifact, axis=-1), atol=1e-9)
+    np.testing.assert_allclose(low.neural, signal.sosfilt(sos, plain.neural, axis=-1), atol=1e-9)
+    np.testing.assert_allclose(low.data, low.neural + low.artifact, atol=1e-9)
+    _, h = signal.sosfreqz(sos, worN=[5000.0], fs=plain.fs)
+    assert abs(abs(h[0]) - 2 ** -0.5) < 1e-6
+    # the steps are no longer flat next to every edge: the first differences spread over the samples after it
+    d_plain, d_low = np.abs(np.diff(plain.artifact[0, 40000:70000])), np.abs(np.diff(low.artifact[0, 40000:70000]))
+    # (1 kHz at 30 kHz: an edge every 30 samples, 3.3% of the differences; the filter's 3 or more samples an edge)
+    assert np.mean(d_plain > 0.03 * d_plain.max()) < 0.04 and np.mean(d_low > 0.03 * d_low.max()) > 0.15
+    with pytest.raises(ValueError, match="lowpass_hz"):
+        simulate_recording(1.0, artifact=dataclasses.replace(spec, lowpass_hz=20000.0))
 
 
 def test_heartbeat_phase_shift_of_the_artifact():
