@@ -96,6 +96,10 @@ class ArtifactSpec:
     also sets the waveform's frequency, so a cycle holds a fixed number of
     updates); a waveform synthesised at a frequency the DAC's rate does not
     divide (finite frequency resolution) is the same case.
+    ``heart_jitter`` makes each heartbeat's length differ from the smooth
+    rate's by that fraction (SD) at random, beat by beat: heart-rate
+    variability's fastest part (successive beats of a person at rest differ
+    by 20-50 ms, from memory), which no smooth rate follows.
     ``lowpass_hz`` is the amplifier's anti-aliasing low-pass (a causal
     3rd-order Butterworth, as an analog filter is; None: none), applied to
     everything it records, so the neural truth is what the amplifier sees
@@ -120,6 +124,7 @@ class ArtifactSpec:
     clip_uv: float | None = None
     lsb_uv: float | None = 0.195
     lowpass_hz: float | None = None
+    heart_jitter: float = 0.0
 
 
 @dataclass
@@ -228,6 +233,23 @@ def _smooth_rate_phase(n: int, fs: float, rate_hz: float, variability: float, rn
     wander = np.interp(np.linspace(0, n_knots - 1, n), np.arange(n_knots), knots)
     rate = rate_hz * (1.0 + variability * wander)
     return 2 * np.pi * np.cumsum(rate) / fs + rng.uniform(0, 2 * np.pi)
+
+
+def _jittered_beats(phase: np.ndarray, jitter: float, rng) -> np.ndarray:
+    """``phase`` (rad) with each cycle's length scaled by ``1 + jitter * N(0, 1)``, independently cycle by cycle.
+
+    Beat ``k`` ends where cycle ``k + w_k`` of ``phase`` ends, ``w`` the sum
+    of the beats' changes so far (a random walk of one step a beat), and the
+    phase rises linearly in ``phase``'s cycles between those ends (so it
+    keeps rising while ``jitter`` is well under 1).
+    """
+    if not 0 <= jitter < 0.25:
+        raise ValueError(f"heart_jitter must lie in [0, 0.25), got {jitter!r}")
+    cycles = phase / (2 * np.pi)
+    first, last = int(np.floor(cycles.min())) - 1, int(np.ceil(cycles.max())) + 2
+    ends = np.arange(first, last + 1, dtype=np.float64)
+    shift = np.concatenate(([0.0], np.cumsum(jitter * rng.standard_normal(last - first))))
+    return 2 * np.pi * np.interp(cycles, ends + shift, ends)
 
 
 def _harmonic_sum(phase: np.ndarray, harmonics: Sequence[tuple[float, float]]) -> np.ndarray:
@@ -435,7 +457,10 @@ def simulate_recording(
         raise ValueError(f"channel_gains needs {n_channels} values, got {gains.size}")
     mod = np.ones(n)
     if artifact.heart_depth or artifact.heart_phase_deg:
-        heart = _heart_shape(_smooth_rate_phase(n, fs, artifact.heart_rate_hz, 0.03, rng), artifact.heart_harmonics)
+        heart_phase = _smooth_rate_phase(n, fs, artifact.heart_rate_hz, 0.03, rng)
+        if artifact.heart_jitter:
+            heart_phase = _jittered_beats(heart_phase, artifact.heart_jitter, rng)
+        heart = _heart_shape(heart_phase, artifact.heart_harmonics)
         mod += artifact.heart_depth * heart
         if artifact.heart_phase_deg:
             # the electrode-tissue interface is partly capacitive: the pulse also shifts the

@@ -17,11 +17,13 @@ harmonics falling as ``1 / k^2`` (the default pulse has two, at 0.5 and
 0.25 of the fundamental; :func:`artifactclean.synthetic.alpha_pulse_harmonics`).
 ``--lowpass HZ`` records the traces through an amplifier's anti-aliasing
 low-pass at HZ (``ArtifactSpec.lowpass_hz``; 7500 is common at 30 kHz).
+``--heart-jitter F`` makes each heartbeat's length differ by F (SD) from
+beat to beat (``ArtifactSpec.heart_jitter``; 0.04 is a person at rest).
 Figures, not seconds: nothing here is timed.
 
     python benchmarks/acceptance.py [--method template] [--seconds 20] [--seeds 1 3] [--freqs 5 10 20 40]
                                     [--dac-rate 1000] [--heart-hz 2] [--pulse-tau 0.07] [--lowpass 7500]
-                                    [--param tracking_hz=20 ...]
+                                    [--heart-jitter 0.04] [--param tracking_hz=20 ...]
 """
 
 from __future__ import annotations
@@ -60,6 +62,8 @@ def main(argv=None) -> list[dict]:
                     help="the pulsatile heartbeat as alpha-function pulses rising within S seconds (e.g. 0.07)")
     ap.add_argument("--lowpass", type=float, default=None, metavar="HZ",
                     help="the amplifier's anti-aliasing low-pass (Hz, e.g. 7500)")
+    ap.add_argument("--heart-jitter", type=float, default=0.0, metavar="F",
+                    help="beat-to-beat change of each heartbeat's length, a fraction (SD, e.g. 0.04)")
     ap.add_argument("--param", type=_param, action="append", default=[], metavar="NAME=VALUE",
                     help="an estimator parameter for clean(), e.g. tracking_hz=20 or 'heart_band_hz=(4, 12)'")
     args = ap.parse_args(argv)
@@ -70,6 +74,8 @@ def main(argv=None) -> list[dict]:
         ap.error(f"--heart-hz must be positive, got {args.heart_hz:g}")
     if args.pulse_tau is not None and not args.pulse_tau > 0:
         ap.error(f"--pulse-tau must be positive, got {args.pulse_tau:g}")
+    if not 0 <= args.heart_jitter < 0.25:
+        ap.error(f"--heart-jitter must lie in [0, 0.25), got {args.heart_jitter:g}")
     if args.lowpass is not None and not 0 < args.lowpass < 15000:
         ap.error(f"--lowpass must lie between 0 and 15000 Hz (the traces' fs / 2), got {args.lowpass:g}")
     params = dict(args.param)
@@ -81,6 +87,7 @@ def main(argv=None) -> list[dict]:
           f"heart at {args.heart_hz:g} Hz"
           f"{'' if args.pulse_tau is None else f', alpha pulses of {args.pulse_tau:g} s'}"
           f"{'' if args.lowpass is None else f', amplifier low-pass at {args.lowpass:g} Hz'}"
+          f"{f', beats {args.heart_jitter:g} apart' if args.heart_jitter else ''}"
           f"{''.join(f', {k}={v!r}' for k, v in params.items())}; worst channel")
     print(f"{'heartbeat':<10} {'Hz':>3} {'DAC':>4} {'seed':>4} {'spike-band':>10} {'+-3 Hz':>7} {'away':>6} "
           f"{'recall':>7} {'sixth':>6} {'dPPC':>9} {'PLV err':>8} {'phase':>6}")
@@ -90,7 +97,8 @@ def main(argv=None) -> list[dict]:
             for dac in ("", "_dac"):
                 # the built-in modulated scenarios, at any frequency (5, 10, 20 and 40 Hz are theirs)
                 art = dataclasses.replace(SCENARIOS["modulated_20hz"][0], freq_hz=f, heart_rate_hz=args.heart_hz,
-                                          dac_rate_hz=args.dac_rate if dac else None, lowpass_hz=args.lowpass)
+                                          dac_rate_hz=args.dac_rate if dac else None, lowpass_hz=args.lowpass,
+                                          heart_jitter=args.heart_jitter)
                 if heart == "sine":
                     art = dataclasses.replace(art, heart_harmonics=())
                 elif args.pulse_tau is not None:
