@@ -243,8 +243,6 @@ def _jittered_beats(phase: np.ndarray, jitter: float, rng) -> np.ndarray:
     phase rises linearly in ``phase``'s cycles between those ends (so it
     keeps rising while ``jitter`` is well under 1).
     """
-    if not 0 <= jitter < 0.25:
-        raise ValueError(f"heart_jitter must lie in [0, 0.25), got {jitter!r}")
     cycles = phase / (2 * np.pi)
     first, last = int(np.floor(cycles.min())) - 1, int(np.ceil(cycles.max())) + 2
     ends = np.arange(first, last + 1, dtype=np.float64)
@@ -442,6 +440,11 @@ def simulate_recording(
     if fs <= 0 or duration_s <= 0 or n_channels < 1:
         raise ValueError("fs, duration_s and n_channels must be positive")
     artifact = artifact or ArtifactSpec()
+    # checked before any work is done
+    if artifact.lowpass_hz is not None and not 0 < artifact.lowpass_hz < fs / 2:
+        raise ValueError(f"lowpass_hz must lie between 0 and fs / 2 = {fs / 2:g}, got {artifact.lowpass_hz!r}")
+    if not 0 <= artifact.heart_jitter < 0.25:
+        raise ValueError(f"heart_jitter must lie in [0, 0.25), got {artifact.heart_jitter!r}")
     neural = neural or NeuralSpec()
     if blocks is None:
         blocks = [BlockSpec(start_s=min(1.0, duration_s / 10), duration_s=duration_s - 2 * min(1.0, duration_s / 10))]
@@ -490,8 +493,6 @@ def simulate_recording(
         unit_channels.append(unit.channel)
 
     if artifact.lowpass_hz is not None:
-        if not 0 < artifact.lowpass_hz < fs / 2:
-            raise ValueError(f"lowpass_hz must lie between 0 and fs / 2 = {fs / 2:g}, got {artifact.lowpass_hz!r}")
         # an amplifier's front end: 3rd order (common practice for anti-aliasing in neural amplifiers, from memory)
         sos = signal.butter(3, artifact.lowpass_hz, fs=fs, output="sos")
         art = signal.sosfilt(sos, art, axis=-1)

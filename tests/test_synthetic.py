@@ -182,7 +182,7 @@ def test_the_amplifiers_lowpass_filters_what_it_records():
 def test_beats_jitter_by_their_own_length_one_by_one():
     # each beat's length differs from the smooth rate's by `jitter` (SD), independently: the lengths' relative SD
     # and their successive differences over sqrt(2) (RMSSD, heart-rate variability's beat-to-beat measure; Task
-    # Force of the ESC and NASPE 1996, from memory) both read the jitter, within what 1200 beats allow (2%)
+    # Force of the ESC and NASPE 1996, from memory) both read the jitter, within 10% (1200 beats: about 2% spread)
     fs = 500.0
     rng = np.random.default_rng(4)
     smooth = _smooth_rate_phase(int(1000 * fs), fs, 1.2, 0.0, rng)

@@ -130,7 +130,8 @@ def test_dense_firing_stays_out_of_the_template():
     # the outlier pass leaves in lies at 0.3-3 kHz, where the median of all the template's harmonics (mostly the
     # white noise above) put it out of the noise: 0.16-0.18 x noise in the spike band; judged against the
     # harmonics beside each, 0.007
-    units = [UnitSpec(channel=c, rate_hz=15.0, amplitude_uv=a, shape="broad") for c in range(2) for a in (60, 90, 120, 160)]
+    units = [UnitSpec(channel=c, rate_hz=15.0, amplitude_uv=a, shape="broad")
+             for c in range(2) for a in (60, 90, 120, 160)]
     rec = simulate_recording(10.0, n_channels=2, artifact=ArtifactSpec(freq_hz=20.0, channel_gains=(1.0, -0.7)),
                              neural=NeuralSpec(noise_uv=5.0, units=units), blocks=[BlockSpec(1.0, 9.0, ramp_s=1.0)], seed=1)
     s = score_cleaning(rec, clean(rec.data, rec.fs))
