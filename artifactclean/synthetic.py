@@ -333,8 +333,65 @@ def _oscillation(n_channels: int, n: int, fs: float, f0: float, amp: float, rng)
     return gains[:, None] * osc[None, :]
 
 
+#: order of the amplifier's anti-aliasing low-pass (``ArtifactSpec.lowpass_hz``; common practice for neural
+#: amplifiers' front ends, from memory)
+LOWPASS_ORDER = 3
+
+
+def step_response_terms(lowpass_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """Poles ``p`` (rad/s) and weights ``c`` of the analog low-pass's step response ``1 + sum c exp(p t)``.
+
+    The amplifier's filter acts before its sampler, so a DAC step at any
+    instant reaches each later sample as this response at the sample's
+    delay after the step. From the partial fractions of the analog
+    Butterworth ``H(s) = sum r / (s - p)`` (scipy.signal.residue), the step
+    response is ``H(s) / s``'s inverse transform, ``1 + sum (r / p) exp(p t)``.
+    """
+    b, a = signal.butter(LOWPASS_ORDER, 2 * np.pi * lowpass_hz, analog=True)
+    r, p, _ = signal.residue(b, a)
+    return p, r / p
+
+
+def held_through_lowpass(edges: np.ndarray, steps: np.ndarray, n: int, fs: float, lowpass_hz: float) -> np.ndarray:
+    """What an analog low-pass adds to a staircase's samples: ``sum_k steps[k] (S(t - edges[k]) - [t >= edges[k]])``.
+
+    ``edges`` are the steps' instants in samples (any real number), ``steps``
+    their sizes; ``S`` is the filter's step response
+    (:func:`step_response_terms`). The staircase sampled as it holds, plus
+    this, is the filtered staircase sampled exactly: each term
+    ``c exp(p t)`` is a first-order recursion from sample to sample, fed at
+    the first sample after each step by the step times the term at that
+    sample's delay (sub-sample, which is what a filter applied to samples
+    cannot know). Returns ``n`` samples from sample 0.
+    """
+    p, c = step_response_terms(lowpass_hz)
+    p = p / fs  # per sample
+    first = np.ceil(edges).astype(np.int64)
+    keep = (first >= 0) & (first < n)
+    at, delay, size = first[keep], first[keep] - edges[keep], steps[keep]
+    out = np.zeros(n)
+    for pk, ck in zip(p, c):
+        feed = np.zeros(n, dtype=np.complex128)
+        np.add.at(feed, at, size * np.exp(pk * delay))
+        out += (ck * signal.lfilter([1.0], [1.0, -np.exp(pk)], feed)).real
+    return out
+
+
+def _held_edges(t_held: np.ndarray, values: np.ndarray, i0: int, fs: float) -> tuple[np.ndarray, np.ndarray]:
+    """Instants (samples) and sizes of a held block's steps: where its tick changes, its switching on and off."""
+    change = np.flatnonzero(np.diff(t_held) != 0) + 1
+    edges = np.concatenate(([i0], i0 + t_held[change] * fs, [i0 + t_held.size]))
+    steps = np.concatenate((values[:1], values[change] - values[change - 1], -values[-1:]))
+    return edges, steps
+
+
 def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpec], rng):
-    """Stimulator output (unit peak fundamental), true phase, block table, and the output's phase derivative."""
+    """Stimulator output (unit peak fundamental), true phase, block table, and the output's phase derivative.
+
+    With a DAC and ``spec.lowpass_hz``, the output and its derivative are as
+    the amplifier's analog low-pass passes them to its sampler
+    (:func:`held_through_lowpass`).
+    """
     out = np.zeros(n)
     quad = np.zeros(n)
     phase = np.full(n, np.nan)
@@ -367,6 +424,10 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
             env = ramp_level(np.minimum(t_held, dur - t_held) / blk.ramp_s, blk.ramp_shape)
         out[i0_:i1_] = blk.amplitude_scale * env * wave
         quad[i0_:i1_] = blk.amplitude_scale * env * _harmonic_derivative(ph_held, spec.harmonics)
+        if spec.dac_rate_hz and spec.lowpass_hz is not None:
+            for seq in (out, quad):
+                edges, steps = _held_edges(t_held, seq[i0_:i1_], i0_, fs)
+                seq += held_through_lowpass(edges, steps, n, fs, spec.lowpass_hz)
         phase[i0_:i1_] = np.mod(2 * np.pi * f_true * t + blk.phase0, 2 * np.pi)
         table.append(
             dict(
@@ -493,9 +554,11 @@ def simulate_recording(
         unit_channels.append(unit.channel)
 
     if artifact.lowpass_hz is not None:
-        # an amplifier's front end: 3rd order (common practice for anti-aliasing in neural amplifiers, from memory)
-        sos = signal.butter(3, artifact.lowpass_hz, fs=fs, output="sos")
-        art = signal.sosfilt(sos, art, axis=-1)
+        # the analog filter as a digital one (bilinear transform) where the signal is smooth; a DAC's staircase
+        # went through it in _stimulator, each step at its own instant
+        sos = signal.butter(LOWPASS_ORDER, artifact.lowpass_hz, fs=fs, output="sos")
+        if not artifact.dac_rate_hz:
+            art = signal.sosfilt(sos, art, axis=-1)
         clean = signal.sosfilt(sos, clean, axis=-1)
     data = clean + art
     clipped = np.zeros(data.shape, dtype=bool)
