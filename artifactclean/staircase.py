@@ -320,7 +320,7 @@ def find_dac_grid(
         # 20-40 uV) leave the check above open, and 1000 slots a cycle fit every third one's ticks: the pairs'
         # power at the slots' edges must fall on every slot, not on one in a few (as in find_fast_dac)
         w, level = _pair_power(x)
-        if _edges_skip_ticks(np.minimum(w, _PAIR_CAP * level), cycles, grid, int(m * freq // 200.0)):
+        if _edges_skip_ticks(np.minimum(w, _PAIR_CAP * level), cycles, grid, int(m * freq // _SLOWEST_DAC_HZ)):
             return None
     return grid
 
@@ -510,8 +510,12 @@ def find_fast_dac(
     # 10 kHz DAC (13.37 Hz) folds as well as its line, and came within 0.05 of 7479 ticks every 5
     # cycles. Next to fs / 2 both are tried and the better fold kept (15 kHz with 40 ppm shows at
     # 14999.4 Hz, whose 1499.88 ticks a 10 Hz cycle fit 25498 per 17 cycles; 15000.6 Hz fits 1500)
+    # Nor where the line is a slower DAC's harmonic, whose rate's lines stand at its fractions too: behind an
+    # amplifier's low-pass a 1 kHz DAC's steps spread over two or three pairs, its 4th harmonic was the band's
+    # strongest line (13.37 Hz), and the alias of that a 26 kHz grid on which nearly every pair holds an edge
     rates = (rate, fs - rate)
-    if abs(rate - 0.5 * fs) > 0.01 * fs and _edge_power(mid, np.arange(n_fft) * (rate / fs), 1) >= min_edge_power:
+    if (abs(rate - 0.5 * fs) > 0.01 * fs and _edge_power(mid, np.arange(n_fft) * (rate / fs), 1) >= min_edge_power) \
+            or _has_subharmonic(spec, k, int(rate // _SLOWEST_DAC_HZ)):
         rates = (rate,)
     found = [_grid_at_rate(w, cycles, fs, freq, r, max_period=max_period, min_z=min_z,
                            min_edge_power=min_edge_power, window_s=window_s, steps=steps) for r in rates]
@@ -519,8 +523,29 @@ def find_fast_dac(
     # find an edge at every tick (7.3 Hz from 1 kHz: the line at 4 kHz folded as 9863 ticks every 18
     # cycles, which only nearly repeat, one in four of them with an edge; the ticks repeat every 73
     # cycles, which the step search's clock models)
-    found = [g for g in found if g is not None and not _edges_skip_ticks(w, cycles, g, int(rate // 200.0))]
+    found = [g for g in found if g is not None and not _edges_skip_ticks(w, cycles, g, int(rate // _SLOWEST_DAC_HZ))]
     return max(found, key=lambda g: g.concentration) if found else None
+
+
+#: the slowest DAC (Hz) whose harmonics :func:`find_fast_dac` checks a line against (this project's choice; the
+#: rate's bound of the edge check beside it)
+_SLOWEST_DAC_HZ = 200.0
+#: a line at ``k / j`` holding this share of the line's amplitude makes it a harmonic (this project's choice: a
+#: 1 kHz DAC behind a 7.5 kHz low-pass has its 1st-3rd harmonics at 0.6-1.5 of the 4th; a DAC faster than
+#: fs / 2 has nothing at its alias's fractions beyond the noise)
+_SUBHARMONIC_SHARE = 0.3
+
+
+def _has_subharmonic(spec: np.ndarray, k: int, max_j: int) -> bool:
+    """Whether the spectrum ``spec`` has a line at ``k / j`` (``2 <= j <= max_j``) of :data:`_SUBHARMONIC_SHARE`
+    of its line at bin ``k``: the line is a harmonic of a slower rate (within two bins of each fraction)."""
+    for j in range(2, max_j + 1):
+        at = int(round(k / j))
+        if at < 3:
+            break
+        if spec[at - 2:at + 3].max() >= _SUBHARMONIC_SHARE * spec[k]:
+            return True
+    return False
 
 
 def _edges_skip_ticks(w: np.ndarray, cycles: np.ndarray, grid: DacGrid, max_j: int) -> bool:
@@ -853,7 +878,7 @@ def _tick_line(x: np.ndarray, z_threshold: float):
     for row, at_rail in zip(rows, lost):
         qs, sigma = _step_statistic(row, at_rail if at_rail.any() else None)
         if sigma > 0:
-            pos.append(_step_positions(qs, z_threshold * sigma))
+            pos.append(_strongest_within(qs, _step_positions(qs, z_threshold * sigma), _STEP_REACH))
     if not pos:
         return None
     t = np.unique(np.concatenate(pos)) + 1.5  # the step lies between samples i+1 and i+2
@@ -862,7 +887,7 @@ def _tick_line(x: np.ndarray, z_threshold: float):
     d = np.diff(t)
     # consecutive ticks: the shortest common spacing (steps are found wherever the waveform is steep)
     p0 = float(np.median(d[d <= np.percentile(d, 25)]))
-    if p0 < 2:
+    if p0 <= _STEP_REACH:
         return None
     # fold the first 500 ticks' steps on periods around it (a fold over many more has peaks too
     # narrow for the grid, and the waveform's own rhythm in the steps puts side peaks at R +- f),
@@ -970,6 +995,26 @@ def _fold_concentration(u: np.ndarray, ms: np.ndarray, width: int = 64) -> np.nd
         k = min(width, ms.size - c0)
         r[c0:c0 + k] = np.abs(table[:k] @ np.exp(2j * np.pi * ms[c0] * u)) / u.size
     return r
+
+
+#: samples within which one step of the statistic is kept (:func:`_strongest_within`): an amplifier's anti-aliasing
+#: low-pass spreads a DAC's step over the samples after its edge and rings, and the statistic peaks at several of
+#: them (a 7.5 kHz filter at 30 kHz: 2 samples apart, which a clock search took for a 15 kHz DAC)
+_STEP_REACH = 2
+
+
+def _strongest_within(q: np.ndarray, pos: np.ndarray, reach: int) -> np.ndarray:
+    """The positions ``pos`` (ascending) of ``|q|`` with none larger within ``reach`` samples."""
+    if pos.size < 2:
+        return pos
+    qa = np.abs(q[pos])
+    keep = np.ones(pos.size, dtype=bool)
+    for k in range(1, reach + 1):
+        # the k-th neighbours in the list, where within reach: the larger one stays (the earlier on a tie)
+        near = pos[k:] - pos[:-k] <= reach
+        keep[k:] &= ~(near & (qa[:-k] >= qa[k:]))
+        keep[:-k] &= ~(near & (qa[k:] > qa[:-k]))
+    return pos[keep]
 
 
 def _step_positions(q: np.ndarray, level: float) -> np.ndarray:

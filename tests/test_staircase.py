@@ -8,10 +8,12 @@ import pytest
 from artifactclean.staircase import find_dac_grid, find_dac_period, find_fast_dac
 
 
-def _held_sine(freq, dac, fs=30000.0, seconds=6.0, ppm=40.0, seed=0, ticks=False, amplitude=4000.0):
+def _held_sine(freq, dac, fs=30000.0, seconds=6.0, ppm=40.0, seed=0, ticks=False, amplitude=4000.0, lowpass=None):
     """A DAC staircase of a sine on a clock ``ppm`` fast, sampled by the amplifier, with white noise.
 
-    With ``ticks``, each sample's true tick number is returned too.
+    With ``ticks``, each sample's true tick number is returned too; with
+    ``lowpass`` (Hz) the staircase goes through the amplifier's analog
+    low-pass first (:func:`artifactclean.synthetic.held_through_lowpass`).
     """
     rng = np.random.default_rng(seed)
     t = np.arange(int(seconds * fs)) / fs
@@ -19,7 +21,18 @@ def _held_sine(freq, dac, fs=30000.0, seconds=6.0, ppm=40.0, seed=0, ticks=False
     tick = 1.0 / (dac * clock)
     number = np.floor(t / tick + 0.37)
     held = (number - 0.37) * tick
-    x = amplitude * np.cos(2 * np.pi * freq * clock * held) + 10.0 * rng.standard_normal(t.size)
+    x = amplitude * np.cos(2 * np.pi * freq * clock * held)
+    noise = 10.0 * rng.standard_normal(t.size)
+    if lowpass is not None:
+        # the staircase and the noise both through the filter (the noise as the generator filters it)
+        from scipy import signal
+
+        from artifactclean.synthetic import held_through_lowpass
+
+        at = np.flatnonzero(np.diff(number)) + 1
+        x = x + held_through_lowpass(held[at] * fs, x[at] - x[at - 1], x.size, fs, lowpass)
+        noise = signal.sosfilt(signal.butter(3, lowpass, fs=fs, output="sos"), noise)
+    x = x + noise
     cycles = freq * clock * t  # the unwrapped stimulation phase, as the model gives it
     return (x, cycles, fs, freq * clock) + ((number,) if ticks else ())
 
@@ -70,6 +83,32 @@ def test_a_free_running_dac_clock_is_found(freq):
     held = 4000.0 * np.cos(2 * np.pi * clock.held_cycles(clock.tick_index(cycles)))
     inner = (clock.edge_distance(cycles) > 0.02) & (clock.edge_distance(cycles) < 0.98)
     assert np.sqrt(np.mean((x - held)[inner] ** 2)) < 12.0  # the white noise (10 uV), no steps left
+
+
+def test_a_free_running_clock_is_found_behind_the_amplifiers_lowpass():
+    """A 7.5 kHz low-pass spreads each step over the samples after its edge, and the step statistic peaks at
+    two or three of them: until session 38 the clock search took their spacing for a 15 kHz DAC (a tick
+    every 2 samples, every step on it) and the template averaged the spikes away (recall 0.2)."""
+    from artifactclean.staircase import find_dac_clock
+
+    x, cycles, fs, f = _held_sine(13.37, 1000.0, lowpass=7500.0)
+    clock = find_dac_clock(x, cycles, fs, f)
+    assert clock is not None
+    assert clock.ticks_per_cycle == pytest.approx(1000.0 / 13.37, rel=1e-5)
+    # and the pooled search for a fast DAC leaves it alone: behind the filter its 4th harmonic (4 kHz) is the
+    # strongest line above fs / 8, and the alias of that line folded as a 26 kHz grid
+    assert find_fast_dac(x, cycles, fs, f) is None
+
+
+def test_one_step_is_kept_within_reach_the_largest():
+    from artifactclean.staircase import _strongest_within
+
+    q = np.zeros(40)
+    q[[3, 4, 5, 12, 20, 22, 30, 33]] = [1.0, -3.0, 2.0, 5.0, 2.0, 2.0, -1.0, 1.0]
+    pos = np.flatnonzero(q)
+    # 4 beats 3 and 5; 12 alone; 20 and 22 tie (the earlier stays); 30 and 33 are 3 apart
+    assert _strongest_within(q, pos, 2).tolist() == [4, 12, 20, 30, 33]
+    assert _strongest_within(q, pos, 3).tolist() == [4, 12, 20, 30]
 
 
 @pytest.mark.parametrize("rho, ticks, period", [(49.998, 50, 1), (136.986, 137, 1), (99.01 / 2, 99, 2),
