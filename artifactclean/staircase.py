@@ -26,7 +26,7 @@ falls between two samples (:func:`find_fast_dac`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import signal
@@ -96,6 +96,20 @@ class DacGrid:
         """:meth:`tick_index` and :meth:`edge_distance` from one evaluation of the position (the same numbers)."""
         return _ticks_and_edges(self._position(cycles))
 
+    def moved(self, cycles: np.ndarray, ticks: np.ndarray) -> DacGrid:
+        """The grid with its edges later by ``ticks`` (a line through two phases ``cycles``, extended).
+
+        The offset track gains knots at ``cycles`` and keeps its own: within
+        them, the new edges are the old ones plus the line exactly (the track
+        is linear between knots and constant beyond the outer ones).
+        """
+        periods = np.asarray(cycles, dtype=np.float64) / self.cycles_per_period
+        slope = (ticks[1] - ticks[0]) / (periods[1] - periods[0])
+        at = np.unique(np.concatenate((periods, self.offset_track[0] if self.offset_track else [])))
+        old = interp_sorted(at, *self.offset_track) if self.offset_track else np.full(at.size, self.offset)
+        # position = M p - c: edges later by t ticks where c grows by t
+        return replace(self, offset_track=(at, old + ticks[0] + slope * (at - periods[0])))
+
 
 @dataclass(frozen=True)
 class DacClock:
@@ -143,6 +157,13 @@ class DacClock:
     def held_cycles(self, ticks: np.ndarray) -> np.ndarray:
         """Stimulation phase (unwrapped cycles) at which each tick sampled the waveform."""
         return (np.asarray(ticks, dtype=np.float64) + self.offset) / self.ticks_per_cycle
+
+    def moved(self, cycles: np.ndarray, ticks: np.ndarray) -> DacClock:
+        """The clock with its edges later by ``ticks``, a line through two phases ``cycles``: a rate and offset."""
+        slope = (ticks[1] - ticks[0]) / (cycles[1] - cycles[0])
+        # position rho u - offset, less the line t0 + slope (u - u0)
+        return replace(self, ticks_per_cycle=self.ticks_per_cycle - slope,
+                       offset=self.offset + ticks[0] - slope * cycles[0])
 
 
 def _ticks_and_edges(pos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

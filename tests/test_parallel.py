@@ -360,6 +360,20 @@ def test_pieces_with_a_dac_that_is_not_locked_to_the_cycle_equal_the_whole_array
     assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
 
 
+def test_pieces_with_a_dac_behind_the_amplifiers_lowpass_equal_the_whole_array(tmp_path):
+    """The DAC steps' response and the grid's drift are learned once per block (prepare), on the plan's
+    stretch: every piece adds the same response beside its tick levels."""
+    from artifactclean.synthetic import ArtifactSpec, BlockSpec, simulate_recording
+
+    rec = simulate_recording(40.0, artifact=ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, lowpass_hz=7500.0,
+                                                         drift_ppm=40.0, channel_gains=(1.0, -0.6)),
+                             blocks=[BlockSpec(1.0, 38.0, ramp_s=1.0)], seed=8, n_channels=2)
+    prov, y, whole = _pieces_and_whole(rec, tmp_path / "y.nix", max_range_s=9.0)
+    assert len({r["start_s"] for r in prov["estimator_report"]}) >= 2
+    assert all(r["blocks"][0]["dac_step_response"] for r in prov["estimator_report"])
+    assert np.abs(y - whole).max() <= 1e-6 * np.ptp(rec.data)
+
+
 def test_pieces_with_a_phase_shifting_heartbeat_equal_the_whole_array(tmp_path):
     """The phase shift is planned once per block and fitted per segment on high-passed data: pieces
     read the context their filters need and give the whole array's result."""

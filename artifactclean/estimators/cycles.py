@@ -35,6 +35,7 @@ from ..pulse import HEART_HZ, PULSE_HALF_S, fit_pulse, fundamental_of_rows, harm
 from ..modulation import _FOOT, FOLLOW_HZ, HALF_S, GainResponse, KEEP_HZ, design_gain_response, filter_sequences, \
     follow_below, lowpass_taps, phase_helps, plateau_level, ramp_cutoff, seen_by_segments, segment_gain, \
     segment_phase, segments_per_cycle, sideband_support
+from ..step_response import EdgeResponse
 from ..staircase import DacGrid, clock_as_grid, find_dac_clock, find_dac_grid, find_dac_period, find_fast_dac, step_rate
 from ._kernels import group_position, grouped_eval, highpass_residual, linear_envelope, outlier_flags, phase_eval, \
     piece_bounds, settled_keys, widen_flags
@@ -104,6 +105,13 @@ class BlockPlan(NamedTuple):
         Each channel's slow level over the block's work range
         (:func:`artifactclean.baseline.level_track`), read once by the plan
         so that pieces of the block need no context for it.
+    edges : EdgeResponse or None
+        What each of the DAC's steps leaves beside the tick levels, where the
+        amplifier's low-pass spreads the steps over the samples after their
+        edges (:mod:`artifactclean.step_response`), learned by the estimator
+        from the plan's stretch (:meth:`CycleEstimator._edge_plan`); None
+        where the samples beside an edge are settled into one tick or the
+        other (:func:`settle_edges`).
     """
 
     ref: int
@@ -116,6 +124,7 @@ class BlockPlan(NamedTuple):
     level: np.ndarray | None = None
     follows: np.ndarray | None = None
     track: LevelTrack | None = None
+    edges: EdgeResponse | None = None
 
 
 #: channels whose data judge the samples next to a DAC's tick edges (:class:`BlockPlan`, :func:`settle_edges`):
@@ -333,7 +342,7 @@ def _subset_plan(plan, fit: list[int]):
     gets the row after them, so the report names the lines it passes as the
     whole-array run does.
     """
-    ref, grid, unlocked, response, decided, harmonics, judges, level, follows, track = plan
+    ref, grid, unlocked, response, decided, harmonics, judges, level, follows, track, edges = plan
     rows = list(fit)
     if ref in rows:
         new_ref = rows.index(ref)
@@ -348,7 +357,7 @@ def _subset_plan(plan, fit: list[int]):
     judges = tuple(rows.index(j) for j in judges if j in rows)
     return BlockPlan(new_ref, grid, unlocked, response, decided, harmonics, judges,
                      None if level is None else level[rows], None if follows is None else follows[rows],
-                     None if track is None else track.rows(rows))
+                     None if track is None else track.rows(rows), edges)
 
 
 def _level(x: np.ndarray, cycles: np.ndarray | None = None, harmonics: int | None = None,
@@ -654,7 +663,14 @@ class CycleEstimator(ArtifactEstimator):
         decided: dict[int, list] = {}
         for (i, _), part in zip(jobs, mapper(decide, jobs)):
             decided.setdefault(i, []).extend(part)
-        return [BlockPlan(*stretch[i][:4], decided.get(i), *stretch[i][4:], tracks[i]) for i in range(len(blocks))]
+        plans = [BlockPlan(*stretch[i][:4], decided.get(i), *stretch[i][4:], tracks[i]) for i in range(len(blocks))]
+        # what the amplifier's low-pass makes of a DAC's steps, once the rest of the plan is fixed (the estimator
+        # fits a stretch with it)
+        return list(mapper(lambda i: self._edge_plan(read, blocks[i], fs, plans[i], bounds[i]), range(len(blocks))))
+
+    def _edge_plan(self, read, blk, fs, plan, bounds):
+        """``plan`` with its :attr:`BlockPlan.edges` (and the DAC grid they were learned on); as it is by default."""
+        return plan
 
     def _heart_row(self, read, blk, fs, bounds, part, row):
         """One channel's share of a part of the heartbeat's track (see :meth:`_heart_part`): ``(positions,
@@ -733,7 +749,7 @@ class CycleEstimator(ArtifactEstimator):
         for plan in plans.values():
             # the reference's data for a DAC grid (the heartbeat's phase is in the plan's track), and the
             # channels that judge the samples next to its edges
-            if self._reads_reference and plan.grid is not None and not shared_edges:
+            if self._reads_reference and plan.grid is not None and plan.edges is None and not shared_edges:
                 for ch in (plan.ref, *plan.judges):
                     if ch not in fit:
                         fit.append(int(ch))
@@ -757,7 +773,8 @@ class CycleEstimator(ArtifactEstimator):
         """
         plan = getattr(self, "_plans", {}).get(block_key(blk)) if blk is not None else None
         up = 1 if blk is None else getattr(self, "_factors", {}).get(block_key(blk), 1)
-        if not self._reads_reference or plan is None or plan.grid is None or up > 1:
+        # a grid whose steps are modelled through the amplifier's low-pass settles no sample (BlockPlan.edges)
+        if not self._reads_reference or plan is None or plan.grid is None or plan.edges is not None or up > 1:
             return []
         return [int(c) for c in dict.fromkeys((plan.ref, *plan.judges))]
 

@@ -49,9 +49,10 @@ from __future__ import annotations
 
 import numpy as np
 from scipy import ndimage, signal, special
+from sklearn.base import clone
 
 from .._numeric import floor_runs
-from ..clipping import find_rails
+from ..clipping import find_clipped, find_rails
 from ..modulation import HALF_S as GAIN_HALF_S
 from ..modulation import _FOOT, cycle_slope, phase_highpass, phase_shift, ramp_cutoff, segments_per_cycle, shift_centres, \
     smooth_gain, to_middles
@@ -59,8 +60,9 @@ from ._kernels import (PhaseGrid, SegmentPositions, group_position, grouped_eval
                        tick_eval, tick_sums)
 from ..pulse import HEART_HZ
 from ..staircase import DacClock
-from .cycles import CycleEstimator, block_key, envelope_at, level_off, settle_edges, spike_outliers, stretch_bounds, \
-    trapezoid
+from ..step_response import EdgeResponse, edge_knots, fit_edge_response, step_design
+from .cycles import CycleEstimator, _subset_plan, block_key, envelope_at, level_off, plan_stretch, settle_edges, \
+    spike_outliers, stretch_bounds, trapezoid
 
 __all__ = ["TemplateSubtraction"]
 
@@ -253,6 +255,16 @@ def _floor_beside(amp: np.ndarray, run: int) -> np.ndarray:
     med = np.median(padded.reshape(amp.shape[:-1] + (n_runs, run)), axis=-1)
     return np.repeat(med, run, axis=-1)[..., :n]
 
+
+#: seconds of a block's plateau its DAC steps' response is learned from (:meth:`TemplateSubtraction._edge_plan`;
+#: this project's choice: a 1 kHz DAC gives ten thousand steps)
+_EDGE_S = 6.0
+#: rounds of fitting with the response so far and learning from the residual (the grid's drift moves the
+#: samples' places, so the response is learned again after it)
+_EDGE_ROUNDS = 2
+#: share of the residual's first differences' mean square the response must take off to be kept (this project's
+#: choice: a residue of 0.1 x noise is 1% of the noise's power)
+_EDGE_GAIN = 0.005
 
 #: below this many bins per template (a DAC of few ticks per cycle: 25 at 40 Hz from 1 kHz) the
 #: median harmonic is no noise estimate once half the harmonics are real (a waveform with harmonics
@@ -473,6 +485,61 @@ class TemplateSubtraction(CycleEstimator):
         """The window's half-width in rows: ``K`` cycles, or at least 2 periods of several cycles."""
         return k_half if cycles_per_row == 1 else max(2, int(round(k_half / cycles_per_row)))
 
+    def _edge_plan(self, read, blk, fs, plan, bounds):
+        """``plan`` with what each DAC step leaves beside the tick levels (:mod:`artifactclean.step_response`).
+
+        Learned on the plan's reference channel over at most :data:`_EDGE_S`
+        seconds of the plateau: the stretch is fitted with every sample kept
+        in its grid tick and the response so far, the response and a drift
+        of the grid's edges are learned from the residual, twice; kept where
+        the fit with it leaves :data:`_EDGE_GAIN` less in the residual's
+        first differences than the fit that settles the samples beside each
+        edge (a DAC the amplifier does not filter, or one it filters little,
+        keeps the settling).
+        """
+        grid = plan.grid
+        if grid is None:
+            return plan
+        f = blk.freq_hz
+        a, b = plan_stretch(blk, fs, _EDGE_S)
+        a, b = max(a, bounds[0]), min(b, bounds[1])
+        if (b - a) * f / fs < 20:
+            return plan
+        x = np.asarray(read(a, b, [plan.ref]), dtype=np.float64)
+        w = (~find_clipped(x)).astype(np.float64)
+        u = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        per = grid.cycles_per_period
+        length = fs * per / (f * grid.ticks_per_cycle)  # samples a tick
+        key = block_key(blk)
+
+        def probe(p):
+            est = clone(self)
+            est._plans = {key: _subset_plan(p, [plan.ref])}
+            est._edge_probe = {}
+            est._block(x, w, u, fs, blk, a)
+            return est._edge_probe
+
+        def power(pr):
+            ok = pr["usable"][1:] & pr["usable"][:-1]
+            return float(np.mean(np.diff(pr["residual"])[ok] ** 2))
+
+        # the drift's line through the work range's ends (the grid's track is constant beyond its knots)
+        ends = np.array([bounds[0], bounds[1] - 1], dtype=np.float64)
+        at = (ends - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        resp = EdgeResponse(length, np.zeros(sum(k.size for k in edge_knots(length))))
+        for rounds in range(_EDGE_ROUNDS):
+            pr = probe(plan._replace(grid=grid, edges=resp))
+            place = grid.ticks_and_edges(u)[1]
+            if rounds == 0:
+                # the response first, then the drift from its slope
+                resp, _ = fit_edge_response(pr["residual"], pr["usable"], place, pr["steps"], length)
+                pr["residual"] = pr["residual"] - step_design(place, pr["steps"], length) @ resp.values
+            resp, shift = fit_edge_response(pr["residual"], pr["usable"], place, pr["steps"], length, current=resp)
+            line = shift[0] + (shift[1] - shift[0]) * (ends - a) / max(b - 1 - a, 1)
+            grid = grid.moved(at, line / length)
+        learned = plan._replace(grid=grid, edges=resp)
+        return learned if power(probe(learned)) < (1.0 - _EDGE_GAIN) * power(probe(plan)) else plan
+
     def _validate_params(self) -> None:
         super()._validate_params()
         if self.n_cycles is not None and (int(self.n_cycles) != self.n_cycles or self.n_cycles < 1):
@@ -490,6 +557,9 @@ class TemplateSubtraction(CycleEstimator):
         k_half = self._window(f)
         plan = self._block_plan(xb, blk, fs, offset)
         ref, grid, unlocked, response = plan[:4]
+        # a DAC's steps through the amplifier's low-pass: every sample keeps the grid's tick and the steps'
+        # response is added beside the levels (step_response); else the samples beside an edge are settled
+        edges = plan.edges if grid is not None else None
         xb = level_off(xb, plan, blk, offset)
         pulse_model = None if response is None else response.pulse
         # the template's rows: cycles, or periods of a few cycles when a DAC's ticks repeat only so
@@ -502,6 +572,7 @@ class TemplateSubtraction(CycleEstimator):
             # samples next to a tick edge (within a quarter sample, for a grid from single steps)
             # are assigned by the data
             ticks, edge = grid.ticks_and_edges(u)
+            place = None if edges is None else edge.copy()
             delta = grid.settle_width * grid.ticks_per_cycle * f / (per * fs)
             amb_lo = np.flatnonzero(edge < delta)
             amb_hi = np.flatnonzero(edge > 1 - delta)
@@ -564,6 +635,29 @@ class TemplateSubtraction(CycleEstimator):
             # phase: both from the phase, which is linear in samples, computed where the kernels need them
             sampler = reader = PhaseGrid(u, row0, n_bins, stride, n_groups, n_grid)
             key = None  # the sampler and the reader place every sample: bin keys are for DAC ticks only
+        edge_weights = edge_steps = None
+        if edges is not None:
+            # each sample's weights at its neighbour edges, and each row's steps there from the template's levels
+            edge_weights = edges.weights(place)
+            del place
+            tick_keys, top = (ticks, ticks[-1]) if free else (key, n_grid - 1)
+
+            def edge_steps(tm, level=None):
+                """Steps ``T[k+j] - T[k+j-1]`` of a template row ``tm`` at every sample's neighbour edges ``j``, one
+                after another (``level``: ``T[k]``, if read already); two reads held at a time (memory)."""
+
+                def at(j):
+                    if j == 0 and level is not None:
+                        return level
+                    k = np.clip(tick_keys + j, 0, top)
+                    return (read_free(tm, k) if free else self._read_ticks(tm, k, n_bins, stride, n_groups))[0]
+
+                prev = at(edges.edges[0] - 1)
+                for j in edges.edges:
+                    now = at(j)
+                    yield now - prev
+                    prev = now
+
         # gain segments: enough per cycle to sample the tracking band
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         seg_starts, seg_at = floor_runs(u, per_cycle, compiled=self.compiled)
@@ -580,14 +674,14 @@ class TemplateSubtraction(CycleEstimator):
         # the judges' settled keys from a run of their own (CycleEstimator.edge_judges), or recorded for others
         bkey = block_key(blk)
         given = None
-        if grid is not None and getattr(self, "_shared_edges", False):
+        if grid is not None and edges is None and getattr(self, "_shared_edges", False):
             given = getattr(self, "_edge_keys", None)
             given = None if given is None else given.get(bkey)
             if given is None:
                 raise RuntimeError("a clone for shared edges needs the judges' keys of each block with a DAC grid "
                                    "(edge_keys_ of a clone fitted on CycleEstimator.edge_judges)")
         record = None
-        if grid is not None and getattr(self, "_record_edges", False):
+        if grid is not None and edges is None and getattr(self, "_record_edges", False):
             # one list a block and fit: a refit starts the block's passes again
             self.__dict__.setdefault("edge_keys_", {})[bkey] = record = []
 
@@ -605,7 +699,7 @@ class TemplateSubtraction(CycleEstimator):
                 record.append((idx, out[idx]))
             return out
 
-        if grid is not None and given is None:
+        if grid is not None and edges is None and given is None:
             # samples beside a tick edge are judged on the plan's strongest channels where they are not at a
             # rail (settle_edges): the reference alone is the strongest unclipped one, weaker than a clipped one
             judge = [int(c) for c in plan.judges if c < n_ch] or [ref]
@@ -661,7 +755,7 @@ class TemplateSubtraction(CycleEstimator):
                 settled(ticks if free else key, base_ticks if free else base_key, read_judged)
                 return np.zeros((n_ch, n)), {}, None
             if free:
-                if it > 0:
+                if it > 0 and edges is None:
                     ticks = settled(ticks, base_ticks, read_judged)
                     key, bin_off = held_bins(ticks)
                     key -= row0 * n_bins
@@ -669,7 +763,7 @@ class TemplateSubtraction(CycleEstimator):
                                            bin_off=bin_off, complete=complete, failed=failed)
                 t_n = read_free(tmpl, ticks, out=None if it == 0 else t_n)
             elif sampler is None:
-                if it > 0:
+                if it > 0 and edges is None:
                     key = settled(key, base_key, read_judged)
                 tmpl = self._tick_template(xb, w, gain, key, n_groups, n_bins, k_groups, denoise, stride, per,
                                            complete=complete, failed=failed)
@@ -679,6 +773,9 @@ class TemplateSubtraction(CycleEstimator):
                                             complete=complete, failed=failed)
                 # one buffer for every pass: fresh arrays of the data's size cost page faults
                 t_n = reader.read(tmpl, out=None if it == 0 else t_n, compiled=self.compiled)
+            if edges is not None:
+                for ch in range(n_ch):
+                    t_n[ch] += sum(step * g for step, g in zip(edge_steps(tmpl[ch:ch + 1], t_n[ch]), edge_weights))
             if self.track_amplitude:
                 # the new gain depends only on the template: it overwrites the old one
                 # the heartbeat's harmonics at every sample only in the gain that is subtracted (they cost a
@@ -718,6 +815,7 @@ class TemplateSubtraction(CycleEstimator):
             censored_samples=0 if censored is None else int((censored & (wb0 > 0)).sum()),
             completed_samples=completed,
             unlocked_dac_steps_per_s=float(unlocked),
+            dac_step_response=edges is not None,
         )
         shifted = False
         if follow_shift:
@@ -739,6 +837,13 @@ class TemplateSubtraction(CycleEstimator):
                               pulse_grid=pulse_grid)
             shifted = True
         info["phase_shift_followed"] = shifted
+        probe = getattr(self, "_edge_probe", None)
+        if probe is not None:
+            # what the plan learns the steps' response from (TemplateSubtraction._edge_plan): the first channel's
+            # residual, the samples its fits used and, with a response, the steps at each neighbour edge
+            probe.update(residual=xb[0] - gain[0] * t_n[0], usable=w[0] > 0)
+            if edges is not None:
+                probe["steps"] = [gain[0] * step for step in edge_steps(tmpl[:1])]
         return np.multiply(gain, t_n, out=t_n), info, censored
 
     def _add_phase_term(self, t_n, xb, w, gain, read_d, fs, f, seg_starts, seg_u, seg_pos, seg_rate, response,
