@@ -381,3 +381,25 @@ def test_survey_names_a_dac_that_repeats_every_13_cycles(tmp_path):
     out = cli("survey", root, "--stim-freq", "13").stdout
     assert "DAC staircase: 1000 updates every 13 cycles" in out
     assert "not locked" not in out
+
+
+def test_a_writer_interrupted_while_it_opens_its_spools_leaves_none(tmp_path, monkeypatch):
+    # a run interrupted as its output appears (tests/test_bad_inputs.py stops one when the first temporary file
+    # shows): a stop between opening two groups' spools came before the caller held a writer to abort, and the
+    # first spool stayed behind
+    import builtins
+
+    from artifactclean.io.writers import DatWriter
+
+    real = builtins.open
+
+    def stopped_at_the_second(path, *args, **kwargs):
+        if str(path).endswith(".group1"):
+            raise KeyboardInterrupt
+        return real(path, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "open", stopped_at_the_second)
+    with pytest.raises(KeyboardInterrupt):
+        DatWriter(tmp_path / "o.dat", 30000.0, ["a", "b", "c"], 10, groups=[[0], [1], [2]])
+    monkeypatch.undo()
+    assert list(tmp_path.iterdir()) == []

@@ -114,7 +114,15 @@ class DatWriter(_Writer):
             self._spools = [self._tmp]
         else:
             self._spools = [self._tmp.with_name(f"{self._tmp.name}.group{k}") for k in range(len(self.groups))]
-        self._fhs = [open(p, "wb") for p in self._spools]
+        # an interrupt between two opens (a run stopped as its output appears) leaves no spool behind: the caller
+        # has no writer to abort yet
+        self._fhs = []
+        try:
+            for p in self._spools:
+                self._fhs.append(open(p, "wb"))
+        except BaseException:
+            self.abort()
+            raise
 
     def _put(self, k: int, chunk_uv: np.ndarray) -> None:
         # in one temporary, cast and transposed in one pass: this runs on the main thread beside the
