@@ -168,7 +168,7 @@ def shift_columns(place: np.ndarray, steps: list[np.ndarray], response: EdgeResp
 def fit_edge_response(residual: np.ndarray, usable: np.ndarray, place: np.ndarray, steps: list[np.ndarray],
                       samples_per_tick: float, current: EdgeResponse | None = None,
                       ridge: float = 1e-6, smoothness: float = SMOOTHNESS) -> tuple[EdgeResponse, np.ndarray]:
-    """Learn ``g`` (added to ``current``'s) and a drift of the grid's edges from one channel's residual.
+    """Learn ``g`` and a drift of the grid's edges from one channel's residual.
 
     Parameters
     ----------
@@ -182,8 +182,10 @@ def fit_edge_response(residual: np.ndarray, usable: np.ndarray, place: np.ndarra
     samples_per_tick : float
         ``L``.
     current : EdgeResponse, optional
-        The response the residual was taken with; the drift is read from its
-        slope (none without one).
+        The response the residual was taken with: what the residual adds to
+        it is fitted with the drift, read from its slope. Without it, ``g``
+        is fitted first and the drift then from its slope (on the same
+        design).
     ridge : float
         Tikhonov weight relative to the normal matrix's mean diagonal (knots
         no delay reaches stay at 0).
@@ -214,26 +216,28 @@ def fit_edge_response(residual: np.ndarray, usable: np.ndarray, place: np.ndarra
     Optimization, ch. 10).
     """
     n = residual.size
-    x = step_design(place, steps, samples_per_tick)
-    cols = [x]
-    if current is not None and np.any(current.values):
-        cols.append(sparse.csr_matrix((shift_columns(place, steps, current) * np.linspace(-1.0, 1.0, n))[:, None]))
-    x = sparse.hstack(cols).tocsr()
     ok = usable[1:] & usable[:-1]
+    x = step_design(place, steps, samples_per_tick)
     xd = (x[1:] - x[:-1])[ok]
     yd = np.diff(residual)[ok]
     gram = (xd.T @ xd).toarray()
-    scale = max(np.trace(gram) / gram.shape[0], np.finfo(float).tiny)
+    p = gram.shape[0]
+    scale = max(np.trace(gram) / p, np.finfo(float).tiny)
     gram[np.diag_indices_from(gram)] += ridge * scale
     # a rough response is penalised, each side of the jump apart: a DAC of a few samples a tick steps by
     # nearly the same at neighbouring edges, so the data hold little of how g splits between d and d + L
     nb = edge_knots(samples_per_tick)[0].size
-    for lo, hi in ((0, nb), (nb, x.shape[1] - (len(cols) - 1))):
+    for lo, hi in ((0, nb), (nb, p)):
         d2 = np.diff(np.eye(hi - lo), 2, axis=0)
         gram[lo:hi, lo:hi] += smoothness * scale * (d2.T @ d2)
-    sol = np.linalg.solve(gram, xd.T @ yd)
-    p = x.shape[1] - (len(cols) - 1)
-    values = sol[:p] + (0.0 if current is None else current.values)
+    if current is None:
+        current = EdgeResponse(samples_per_tick, np.linalg.solve(gram, xd.T @ yd))
+        yd = yd - xd @ current.values
+    if not np.any(current.values):
+        return current, np.zeros(2)
+    drift = np.diff(shift_columns(place, steps, current) * np.linspace(-1.0, 1.0, n))[ok]
+    cross = xd.T @ drift
+    joint = np.block([[gram, cross[:, None]], [cross[None, :], np.array([[drift @ drift + ridge * scale]])]])
+    sol = np.linalg.solve(joint, np.append(xd.T @ yd, drift @ yd))
     # the residual reads g(d + s): the grid's edges lie s samples after the true ones, so they move by -s
-    shift = np.zeros(2) if len(cols) == 1 else -sol[p] * np.array([-1.0, 1.0])
-    return EdgeResponse(samples_per_tick, values), shift
+    return EdgeResponse(samples_per_tick, current.values + sol[:p]), -sol[p] * np.array([-1.0, 1.0])

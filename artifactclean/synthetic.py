@@ -100,12 +100,13 @@ class ArtifactSpec:
     rate's by that fraction (SD) at random, beat by beat: heart-rate
     variability's fastest part (successive beats of a person at rest differ
     by 20-50 ms, from memory), which no smooth rate follows.
-    ``lowpass_hz`` is the amplifier's anti-aliasing low-pass (a causal
-    3rd-order Butterworth, as an analog filter is; None: none), applied to
-    everything it records, so the neural truth is what the amplifier sees
-    of it: a DAC's steps reach the samples as the filter's step response,
-    spread over the samples after each edge by where between samples the
-    edge fell.
+    ``lowpass_hz`` is the amplifier's anti-aliasing low-pass (a 3rd-order
+    Butterworth; None: none), applied to everything it records, so the
+    neural truth is what the amplifier sees of it: a DAC's steps reach the
+    samples as the analog filter's step response, spread over the samples
+    after each edge by where between samples the edge fell
+    (:func:`held_through_lowpass`); smooth signals (the neural truth, an
+    artifact without a DAC) go through its digital twin.
     """
 
     freq_hz: float = 20.0

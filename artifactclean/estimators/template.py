@@ -60,7 +60,7 @@ from ._kernels import (PhaseGrid, SegmentPositions, group_position, grouped_eval
                        tick_eval, tick_sums)
 from ..pulse import HEART_HZ
 from ..staircase import DacClock
-from ..step_response import EdgeResponse, edge_knots, fit_edge_response, step_design
+from ..step_response import EdgeResponse, edge_knots, fit_edge_response
 from .cycles import CycleEstimator, _subset_plan, block_key, envelope_at, level_off, plan_stretch, settle_edges, \
     spike_outliers, stretch_bounds, trapezoid
 
@@ -257,11 +257,17 @@ def _floor_beside(amp: np.ndarray, run: int) -> np.ndarray:
 
 
 #: seconds of a block's plateau its DAC steps' response is learned from (:meth:`TemplateSubtraction._edge_plan`;
-#: this project's choice: a 1 kHz DAC gives ten thousand steps)
+#: this project's choice: a 1 kHz DAC gives 6000 steps; 10 s gave the same spike band at 5-40 Hz)
 _EDGE_S = 6.0
 #: rounds of fitting with the response so far and learning from the residual (the grid's drift moves the
 #: samples' places, so the response is learned again after it)
 _EDGE_ROUNDS = 2
+#: samples after a grid edge (and one before) whose residual's first differences are compared with the rest's
+#: before a response is learned (:meth:`TemplateSubtraction._edge_plan`): a filter's transition lies within them
+_EDGE_NEAR = 3.0
+#: how much more than elsewhere they must hold (this project's choice: settled sharp steps leave 1.01-1.03 times
+#: the rest's there, 1-5 kHz DACs at 5-40 Hz; behind a 7.5 kHz low-pass 5-580 times)
+_EDGE_EXCESS = 1.2
 #: share of the residual's first differences' mean square the response must take off to be kept (this project's
 #: choice: a residue of 0.1 x noise is 1% of the noise's power)
 _EDGE_GAIN = 0.005
@@ -523,22 +529,31 @@ class TemplateSubtraction(CycleEstimator):
             ok = pr["usable"][1:] & pr["usable"][:-1]
             return float(np.mean(np.diff(pr["residual"])[ok] ** 2))
 
+        pr = probe(plan)
+        settled = power(pr)
+        # where settling leaves no more beside the edges than elsewhere, the steps are sharp: nothing to learn (a
+        # tick of fewer samples than a filter's transition has no sample clear of it: learned, and judged below)
+        if length >= 2 * (_EDGE_NEAR + 1.0):
+            ok = pr["usable"][1:] & pr["usable"][:-1]
+            delay = grid.ticks_and_edges(u)[1][1:] * length
+            near = (delay < _EDGE_NEAR) | (delay > length - 1.0)
+            diff2 = np.diff(pr["residual"]) ** 2
+            if (ok & near).any() and (ok & ~near).any() and \
+                    diff2[ok & near].mean() < _EDGE_EXCESS * diff2[ok & ~near].mean():
+                return plan
         # the drift's line through the work range's ends (the grid's track is constant beyond its knots)
         ends = np.array([bounds[0], bounds[1] - 1], dtype=np.float64)
         at = (ends - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
         resp = EdgeResponse(length, np.zeros(sum(k.size for k in edge_knots(length))))
         for rounds in range(_EDGE_ROUNDS):
             pr = probe(plan._replace(grid=grid, edges=resp))
-            place = grid.ticks_and_edges(u)[1]
-            if rounds == 0:
-                # the response first, then the drift from its slope
-                resp, _ = fit_edge_response(pr["residual"], pr["usable"], place, pr["steps"], length)
-                pr["residual"] = pr["residual"] - step_design(place, pr["steps"], length) @ resp.values
-            resp, shift = fit_edge_response(pr["residual"], pr["usable"], place, pr["steps"], length, current=resp)
+            # the first round learns the response from nothing, then the drift from its slope
+            resp, shift = fit_edge_response(pr["residual"], pr["usable"], grid.ticks_and_edges(u)[1], pr["steps"],
+                                            length, current=resp if rounds else None)
             line = shift[0] + (shift[1] - shift[0]) * (ends - a) / max(b - 1 - a, 1)
             grid = grid.moved(at, line / length)
         learned = plan._replace(grid=grid, edges=resp)
-        return learned if power(probe(learned)) < (1.0 - _EDGE_GAIN) * power(probe(plan)) else plan
+        return learned if power(probe(learned)) < (1.0 - _EDGE_GAIN) * settled else plan
 
     def _validate_params(self) -> None:
         super()._validate_params()
