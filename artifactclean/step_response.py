@@ -36,21 +36,25 @@ __all__ = ["EdgeResponse", "edge_knots", "fit_edge_response", "neighbour_edges",
            "step_design"]
 
 #: knot spacing (samples) where the response moves fast: a 7.5 kHz filter at 30 kHz rises within two samples
-#: and rings for five or six (this project's choice: halving it changed nothing measurable on the generator's
-#: filtered DACs)
+#: and rings for five or six (this project's choice: an eighth of a sample gave 0.031-0.039 x noise in the spike
+#: band against 0.026-0.038, 1 kHz DACs at 20-40 Hz behind 7.5 kHz and at 5 Hz behind 3 kHz, seed 1)
 FINE_STEP = 0.25
-#: delays (samples) after the edge on the fine knots, then a knot a sample up to :data:`_SETTLED`
+#: delays (samples) after the edge on the fine knots, then a knot a sample up to :data:`_SETTLED` (a 3 kHz
+#: filter at 30 kHz rings for about 20 samples; with 12 a 1 kHz DAC behind it kept 0.21 x noise, see BEFORE)
 _FINE_UNTIL = 8.0
-_SETTLED = 12.0
+_SETTLED = 24.0
 #: a knot every this many samples beyond, where the response has settled to the tick's level bias
 _COARSE_STEP = 4.0
 #: weight of the response's roughness in its fit (:func:`fit_edge_response`; this project's choice: at 1e-4 a 10
 #: kHz DAC at 40 Hz behind a 7.5 kHz filter kept 1.8x the neural power within 3 Hz of the harmonics, 9x
-#: without; 1e-3 and 1e-2 gave 0.9x and the same spike band, 0.006-0.038 x noise, on every filtered DAC tried)
+#: without; 1e-3 and 1e-2 gave 0.9x and the same spike band, 0.006-0.038 x noise, on the 1, 5 and 10 kHz
+#: DACs tried)
 SMOOTHNESS = 1e-3
-#: how far before the grid's edge the response is modelled (samples): a grid's edges are placed to a fraction of
-#: a sample, and the learned shift (:func:`fit_edge_response`) takes up the rest
-BEFORE = 2.0
+#: how far before the grid's edge the response is modelled (samples): a grid placed from filtered steps puts its
+#: edges about at their middles, up to 3 samples after the true edges behind a 3 kHz filter at 30 kHz (with 2
+#: and knots a sample apart only up to 12, a 1 kHz DAC at 20 Hz behind it kept 0.21 x noise and 11x the neural
+#: power within 3 Hz of the harmonics; with 6 and 24, 0.038 and 0.49x; 7.5-12 kHz filters the same either way)
+BEFORE = 6.0
 
 
 def edge_knots(samples_per_tick: float) -> tuple[np.ndarray, np.ndarray]:

@@ -158,15 +158,16 @@ def test_residue_at_every_dac_edge_does_not_starve_the_fits(monkeypatch):
     assert blk["outliers_left_out"] < 0.01 * rec.data.size
 
 
-@pytest.mark.parametrize("freq", [10.0, 40.0])
-def test_a_dacs_steps_through_the_amplifiers_lowpass_are_modelled(freq, monkeypatch):
+@pytest.mark.parametrize("freq, lowpass", [(10.0, 7500.0), (40.0, 7500.0), (20.0, 3000.0)])
+def test_a_dacs_steps_through_the_amplifiers_lowpass_are_modelled(freq, lowpass, monkeypatch):
     # behind a 7.5 kHz low-pass every step of a 1 kHz DAC reaches the samples as the filter's step response; the
     # block's plan learns what a step leaves beside the tick levels (step_response.py) and the spike band is clean.
-    # Settled into ticks instead: 0.6-3.5 x noise (session 38, the generator's analog filter)
+    # Settled into ticks instead: 0.6-3.5 x noise (session 38, the generator's analog filter). A 3 kHz filter's
+    # transition starts 3 samples before the grid's edge and rings for 20 (the response's reach)
     import artifactclean.estimators.template as template_module
     from artifactclean.scenarios import locked_units
 
-    art = ArtifactSpec(freq_hz=freq, dac_rate_hz=1000.0, lowpass_hz=7500.0, channel_gains=(1.0, -0.7, 0.45, -1.2))
+    art = ArtifactSpec(freq_hz=freq, dac_rate_hz=1000.0, lowpass_hz=lowpass, channel_gains=(1.0, -0.7, 0.45, -1.2))
     rec = simulate_recording(12.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=2)
     est = TemplateSubtraction().fit(rec.data, fs=rec.fs)
     s = score_cleaning(rec, est.transform(rec.data))
