@@ -9,14 +9,20 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["find_clipped", "find_rails", "mask_runs"]
+__all__ = ["find_clipped", "find_rails", "mask_runs", "rail_rule"]
 
 
 def find_rails(data: np.ndarray, *, min_run: int = 2) -> tuple[np.ndarray, np.ndarray]:
-    """Per-channel rails: the maximum (minimum) where that exact value recurs in a run.
+    """Per-channel rails: the maximum (minimum) where that exact value recurs in runs.
 
     A continuous signal plus noise practically never repeats its extreme
-    value on consecutive samples; an amplifier at saturation does. Channels
+    value on consecutive samples; an amplifier at saturation does, at every
+    peak that reaches the rail and for as long as it stays there. A rail
+    needs two runs of at least ``min_run`` samples at the extreme, or one of
+    ``min_run + 1`` (:func:`rail_rule`): behind an amplifier's low-pass a
+    peak's two largest samples can round to one value (a 3 kHz filter at 30
+    kHz with a 0.195 uV step: a single pair at the extreme on 2-3 of four
+    channels of a 20 s trace, taken for a rail until session 38). Channels
     without a rail get +inf (-inf).
     """
     x = np.atleast_2d(data)
@@ -29,10 +35,19 @@ def find_rails(data: np.ndarray, *, min_run: int = 2) -> tuple[np.ndarray, np.nd
             continue  # flat: constant, not clipped
         for rail, out in ((top[ch], hi), (bottom[ch], lo)):
             at = row == rail
-            # two equal neighbours at the extreme make a run; only then look for longer ones
-            if np.any(at[1:] & at[:-1]) and (min_run <= 2 or any(b - a >= min_run for a, b in mask_runs(at))):
-                out[ch] = rail
+            # two equal neighbours at the extreme make a run; only then look at the runs
+            if np.any(at[1:] & at[:-1]):
+                long = [b - a for a, b in mask_runs(at) if b - a >= min_run]
+                if rail_rule(len(long), max(long, default=0), min_run):
+                    out[ch] = rail
     return hi, lo
+
+
+def rail_rule(n_runs: int, longest: int, min_run: int = 2) -> bool:
+    """Whether a channel's extreme is a rail, from its ``n_runs`` runs of at least ``min_run`` samples there and
+    the ``longest`` (see :func:`find_rails`; :func:`artifactclean.io.pipeline.scan_recording` reads them chunk by
+    chunk)."""
+    return n_runs >= 2 or longest > min_run
 
 
 def find_clipped(

@@ -403,3 +403,26 @@ def test_a_writer_interrupted_while_it_opens_its_spools_leaves_none(tmp_path, mo
         DatWriter(tmp_path / "o.dat", 30000.0, ["a", "b", "c"], 10, groups=[[0], [1], [2]])
     monkeypatch.undo()
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("chunk", [7, 64, 1000])
+def test_the_file_scan_finds_the_rails_the_array_rule_finds(chunk, rng):
+    # the scan reads a file chunk by chunk; its rails must be find_rails' on the whole array, runs that span two
+    # reads included (reference: artifactclean.clipping.find_rails on the array)
+    from artifactclean.clipping import find_rails
+    from artifactclean.io.pipeline import scan_recording
+
+    x = np.round(rng.normal(0.0, 20.0, (6, 3000)), 1)
+    top = x.max() + 5.0
+    x[0, [500, 501]] = top  # one pair at the extreme: not a rail (a filtered peak rounds so)
+    x[1, [500, 501, 1200, 1201]] = top  # two pairs: a rail
+    x[2, 62:65] = top  # a run of three across the 64-sample reads: a rail
+    x[3, 999:1001] = top  # one pair across the 1000-sample reads: not a rail
+    x[3, 2000] = top
+    x[4, 10:40] = -top  # a long run at the bottom
+    rec = open_recording(x, fs=1000.0)
+    scan = scan_recording(rec, list(range(6)), chunk=chunk)
+    hi, lo = find_rails(x)
+    np.testing.assert_array_equal(scan.rail_hi, hi)
+    np.testing.assert_array_equal(scan.rail_lo, lo)
+    assert np.isinf(hi[[0, 3, 5]]).all() and np.isfinite(hi[[1, 2]]).all() and np.isfinite(lo[4])

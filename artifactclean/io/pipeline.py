@@ -31,7 +31,7 @@ import numpy as np
 
 from .._blas import one_blas_thread
 from .._version import __version__
-from ..clipping import find_clipped, mask_runs
+from ..clipping import find_clipped, mask_runs, rail_rule
 from ..estimators import DEFAULT_METHOD, make_estimator
 from ..estimators.base import check_stim_freq
 from ..staircase import find_dac_clock, find_dac_grid, find_dac_period, step_rate
@@ -68,40 +68,81 @@ def _chunks(start: int, stop: int, size: int):
         yield a, min(stop, a + size)
 
 
+class _ExtremeRuns:
+    """A channel's running maximum (``sign`` 1) or minimum (-1) over chunks read in order, with the runs of
+    samples at it (:func:`artifactclean.clipping.rail_rule`): a run that spans two chunks is one run."""
+
+    __slots__ = ("sign", "value", "count", "n_runs", "longest", "tail")
+
+    def __init__(self, sign: int):
+        self.sign = sign
+        self.value = -sign * np.inf
+        self.count = self.n_runs = self.longest = self.tail = 0
+
+    def _close(self) -> None:
+        # the run that reached the end of the chunk before has ended
+        if self.tail >= 2:
+            self.n_runs += 1
+            self.longest = max(self.longest, self.tail)
+        self.tail = 0
+
+    def add(self, row: np.ndarray, extreme: float) -> None:
+        if self.sign * (extreme - self.value) > 0:
+            self.value, self.count, self.n_runs, self.longest, self.tail = extreme, 0, 0, 0, 0
+        if extreme != self.value:
+            self._close()
+            return
+        at = row == extreme
+        self.count += int(at.sum())
+        runs = [[p, q] for p, q in mask_runs(at)]
+        if self.tail and runs[0][0] == 0:
+            runs[0][0] -= self.tail  # the run goes on from the chunk before
+            self.tail = 0
+        else:
+            self._close()
+        if runs[-1][1] == row.size:
+            self.tail = runs[-1][1] - runs[-1][0]
+            runs.pop()
+        for p, q in runs:
+            if q - p >= 2:
+                self.n_runs += 1
+                self.longest = max(self.longest, q - p)
+
+    def rail(self) -> bool:
+        self._close()
+        return rail_rule(self.n_runs, self.longest)
+
+
 def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int | None = None,
                    progress: Progress | None = None) -> Scan:
     """One pass over ``channels`` of ``rec``: mean, SD and amplifier rails per channel.
 
     A rail is the channel's maximum (minimum) over the whole recording when
-    that exact value occurs on two consecutive samples, the rule of
-    :func:`artifactclean.clipping.find_rails`.
+    that exact value recurs in runs, the rule of
+    :func:`artifactclean.clipping.find_rails` (runs that span two reads
+    are one).
     """
     k = len(channels)
     if chunk is None:
         # 4 Mi samples a read (32 MiB as float64), whatever the channel count
         chunk = max(1, 2**22 // max(k, 1))
     s1, s2 = np.zeros(k), np.zeros(k)
-    hi, lo = np.full(k, -np.inf), np.full(k, np.inf)
-    hi_run, lo_run = np.zeros(k, bool), np.zeros(k, bool)
-    n_hi, n_lo = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    ends = [(_ExtremeRuns(1), _ExtremeRuns(-1)) for _ in range(k)]
     n = rec.n_samples
     for a, b in _chunks(0, n, chunk):
         x = rec.read(a, b, channels)
         s1 += x.sum(axis=1)
         s2 += np.einsum("ij,ij->i", x, x)
-        for vals, best, run, cnt, sign in ((x.max(axis=1), hi, hi_run, n_hi, 1), (x.min(axis=1), lo, lo_run, n_lo, -1)):
+        for vals, side in ((x.max(axis=1), 0), (x.min(axis=1), 1)):
             for ch in range(k):
-                v = vals[ch]
-                if sign * (v - best[ch]) > 0:
-                    best[ch], run[ch], cnt[ch] = v, False, 0
-                if v == best[ch]:
-                    at = x[ch] == v
-                    cnt[ch] += int(at.sum())
-                    run[ch] |= bool(np.any(at[1:] & at[:-1]))
+                ends[ch][side].add(x[ch], vals[ch])
         if progress:
             progress(b, n, "scanning")
     mean = s1 / n
     std = np.sqrt(np.maximum(s2 / n - mean**2, 0.0))
+    hi, lo = (np.array([e[side].value for e in ends]) for side in (0, 1))
+    hi_run, lo_run = (np.array([e[side].rail() for e in ends], dtype=bool) for side in (0, 1))
+    n_hi, n_lo = (np.array([e[side].count for e in ends], dtype=np.int64) for side in (0, 1))
     # a flat (dead) channel has no rail: it is constant, not clipped
     flat = hi == lo
     rail_hi = np.where(hi_run & ~flat, hi, np.inf)
