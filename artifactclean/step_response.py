@@ -102,6 +102,11 @@ class EdgeResponse:
     samples_per_tick: float
     values: np.ndarray
 
+    @classmethod
+    def flat(cls, samples_per_tick: float) -> EdgeResponse:
+        """The response that adds nothing (every knot 0): the levels alone, every sample in its grid tick."""
+        return cls(samples_per_tick, np.zeros(sum(k.size for k in edge_knots(samples_per_tick))))
+
     @property
     def knots(self) -> tuple[np.ndarray, np.ndarray]:
         return edge_knots(self.samples_per_tick)

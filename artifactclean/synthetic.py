@@ -426,9 +426,11 @@ def _stimulator(n: int, fs: float, spec: ArtifactSpec, blocks: Sequence[BlockSpe
         out[i0_:i1_] = blk.amplitude_scale * env * wave
         quad[i0_:i1_] = blk.amplitude_scale * env * _harmonic_derivative(ph_held, spec.harmonics)
         if spec.dac_rate_hz and spec.lowpass_hz is not None:
-            for seq in (out, quad):
-                edges, steps = _held_edges(t_held, seq[i0_:i1_], i0_, fs)
-                seq += held_through_lowpass(edges, steps, n, fs, spec.lowpass_hz)
+            # the block, and the filter's ringing after it until the slowest pole's exp(-pi fc t) is 1e-12
+            stop = min(n, i1_ + int(np.ceil(9.0 / spec.lowpass_hz * fs)) + 1)
+            for seq in (out, quad) if spec.heart_phase_deg else (out,):
+                edges, steps = _held_edges(t_held, seq[i0_:i1_], 0, fs)
+                seq[i0_:stop] += held_through_lowpass(edges, steps, stop - i0_, fs, spec.lowpass_hz)
         phase[i0_:i1_] = np.mod(2 * np.pi * f_true * t + blk.phase0, 2 * np.pi)
         table.append(
             dict(

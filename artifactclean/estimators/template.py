@@ -60,7 +60,7 @@ from ._kernels import (PhaseGrid, SegmentPositions, group_position, grouped_eval
                        tick_eval, tick_sums)
 from ..pulse import HEART_HZ
 from ..staircase import DacClock
-from ..step_response import EdgeResponse, edge_knots, fit_edge_response
+from ..step_response import EdgeResponse, fit_edge_response
 from .cycles import CycleEstimator, _subset_plan, block_key, envelope_at, level_off, plan_stretch, settle_edges, \
     spike_outliers, stretch_bounds, trapezoid
 
@@ -510,7 +510,7 @@ class TemplateSubtraction(CycleEstimator):
         a, b = plan_stretch(blk, fs, _EDGE_S)
         a, b = max(a, bounds[0]), min(b, bounds[1])
         if (b - a) * f / fs < 20:
-            return plan
+            return plan  # a block of a few cycles: too few steps to learn from (this project's choice)
         x = np.asarray(read(a, b, [plan.ref]), dtype=np.float64)
         w = (~find_clipped(x)).astype(np.float64)
         u = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
@@ -525,26 +525,24 @@ class TemplateSubtraction(CycleEstimator):
             est._block(x, w, u, fs, blk, a)
             return est._edge_probe
 
-        def power(pr):
-            ok = pr["usable"][1:] & pr["usable"][:-1]
-            return float(np.mean(np.diff(pr["residual"])[ok] ** 2))
+        def first_differences(pr):
+            """Squared first differences of a probe's residual, and the pairs whose samples its fits used."""
+            return np.diff(pr["residual"]) ** 2, pr["usable"][1:] & pr["usable"][:-1]
 
-        pr = probe(plan)
-        settled = power(pr)
+        diff2, ok = first_differences(probe(plan))
+        settled = float(diff2[ok].mean())
         # where settling leaves no more beside the edges than elsewhere, the steps are sharp: nothing to learn (a
         # tick of fewer samples than a filter's transition has no sample clear of it: learned, and judged below)
         if length >= 2 * (_EDGE_NEAR + 1.0):
-            ok = pr["usable"][1:] & pr["usable"][:-1]
             delay = grid.ticks_and_edges(u)[1][1:] * length
             near = (delay < _EDGE_NEAR) | (delay > length - 1.0)
-            diff2 = np.diff(pr["residual"]) ** 2
             if (ok & near).any() and (ok & ~near).any() and \
                     diff2[ok & near].mean() < _EDGE_EXCESS * diff2[ok & ~near].mean():
                 return plan
         # the drift's line through the work range's ends (the grid's track is constant beyond its knots)
         ends = np.array([bounds[0], bounds[1] - 1], dtype=np.float64)
         at = (ends - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
-        resp = EdgeResponse(length, np.zeros(sum(k.size for k in edge_knots(length))))
+        resp = EdgeResponse.flat(length)
         for rounds in range(_EDGE_ROUNDS):
             pr = probe(plan._replace(grid=grid, edges=resp))
             # the first round learns the response from nothing, then the drift from its slope
@@ -553,7 +551,8 @@ class TemplateSubtraction(CycleEstimator):
             line = shift[0] + (shift[1] - shift[0]) * (ends - a) / max(b - 1 - a, 1)
             grid = grid.moved(at, line / length)
         learned = plan._replace(grid=grid, edges=resp)
-        return learned if power(probe(learned)) < (1.0 - _EDGE_GAIN) * settled else plan
+        diff2, ok = first_differences(probe(learned))
+        return learned if diff2[ok].mean() < (1.0 - _EDGE_GAIN) * settled else plan
 
     def _validate_params(self) -> None:
         super()._validate_params()

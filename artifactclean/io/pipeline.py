@@ -109,8 +109,9 @@ class _ExtremeRuns:
                 self.longest = max(self.longest, q - p)
 
     def rail(self) -> bool:
-        self._close()
-        return rail_rule(self.n_runs, self.longest)
+        """Whether the extreme is a rail, the run still open at the last read included."""
+        open_run = self.tail >= 2
+        return rail_rule(self.n_runs + open_run, max(self.longest, self.tail) if open_run else self.longest)
 
 
 def scan_recording(rec: Recording, channels: Sequence[int], *, chunk: int | None = None,
