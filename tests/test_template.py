@@ -803,3 +803,26 @@ def test_group_window_sums_the_clamped_windows(shape):
         np.cumsum(grp, axis=1, out=c[:, 1:])
         idx = np.arange(n)
         assert np.array_equal(got, c[:, np.minimum(idx + k + 1, n)] - c[:, np.maximum(idx - k, 0)])
+
+
+def test_every_probe_of_the_steps_response_sees_the_stretchs_own_weights(monkeypatch):
+    # the plan learns the steps' response from several fits of one stretch (TemplateSubtraction._edge_plan); a fit
+    # writes its outlier flags into the weights it is given, and the probes shared one array until session 38:
+    # each saw the flags of the ones before it as lost samples
+    from artifactclean.scenarios import locked_units
+
+    seen = []
+    block = TemplateSubtraction._block
+
+    def recording(self, xb, wb, *args, **kwargs):
+        if getattr(self, "_edge_probe", None) is not None:
+            seen.append(wb.copy())
+        return block(self, xb, wb, *args, **kwargs)
+
+    monkeypatch.setattr(TemplateSubtraction, "_block", recording)
+    art = ArtifactSpec(freq_hz=20.0, dac_rate_hz=1000.0, lowpass_hz=7500.0)
+    rec = simulate_recording(8.0, artifact=art, neural=NeuralSpec(units=locked_units()), seed=2)
+    TemplateSubtraction().fit(rec.data, fs=rec.fs)
+    assert len(seen) >= 3  # the settled fit, two rounds, the judgement
+    for wb in seen[1:]:
+        np.testing.assert_array_equal(wb, seen[0])

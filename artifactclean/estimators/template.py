@@ -522,7 +522,7 @@ class TemplateSubtraction(CycleEstimator):
             est = clone(self)
             est._plans = {key: _subset_plan(p, [plan.ref])}
             est._edge_probe = {}
-            est._block(x, w, u, fs, blk, a)
+            est._block(x, w.copy(), u, fs, blk, a)  # a fit writes its outlier flags into the weights it is given
             return est._edge_probe
 
         def first_differences(pr):
