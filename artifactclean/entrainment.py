@@ -99,7 +99,7 @@ def spike_phases(samples: np.ndarray, model: StimulationModel, stretches: list[d
         if sel.any():
             b = st["block"]
             # the block's linear phase model, continued outside it for off stretches
-            cyc = (samples[sel] - b.ref_sample) * (b.freq_hz / model.fs) + b.phase_ref / (2 * np.pi)
+            cyc = b.cycles_at(samples[sel], model.fs)
             ph[sel] = 2 * np.pi * fractional_part(cyc)
             cond[sel] = st["condition"]
             grp[sel] = st["block_index"]

@@ -108,6 +108,11 @@ class StimBlock:
     edges: tuple[int, int, int, int] | None = None
     ramp_shape: str = "linear"
 
+    def cycles_at(self, samples: np.ndarray, fs: float) -> np.ndarray:
+        """Unwrapped stimulation phase (cycles) of the block at ``samples`` (any real sample positions)."""
+        return (np.asarray(samples, dtype=np.float64) - self.ref_sample) * (self.freq_hz / fs) \
+            + self.phase_ref / (2 * np.pi)
+
     def geometry(self) -> tuple[int, int, int, int]:
         """Start, ramp-up end, ramp-down start and stop of the whole block (see ``edges``)."""
         return self.edges if self.edges is not None else (self.start, self.ramp_up_stop, self.ramp_down_start, self.stop)
@@ -152,8 +157,7 @@ class StimulationModel:
 
     def cycles(self, block: StimBlock, start: int, stop: int) -> np.ndarray:
         """Unwrapped stimulation phase in cycles for samples ``start..stop`` of ``block``."""
-        n = np.arange(start, stop, dtype=np.float64)
-        return (n - block.ref_sample) * (block.freq_hz / self.fs) + block.phase_ref / (2 * np.pi)
+        return block.cycles_at(np.arange(start, stop, dtype=np.float64), self.fs)
 
     def phase(self, start: int = 0, stop: int | None = None) -> np.ndarray:
         """Stimulation phase (rad, [0, 2 pi)) of samples ``start..stop``; NaN off stimulation."""

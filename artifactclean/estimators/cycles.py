@@ -550,8 +550,7 @@ class CycleEstimator(ArtifactEstimator):
         plan = getattr(self, "_plans", {}).get(key)
         if plan is None:
             plan, = self._make_plans(upsampled_reader(array_reader(x), up, n), [bu], [(s * up, e * up)], fs * up)
-        u = (np.arange(s * up, e * up, dtype=np.float64) - bu.ref_sample) * (bu.freq_hz / (fs * up)) \
-            + bu.phase_ref / (2 * np.pi)
+        u = bu.cycles_at(np.arange(s * up, e * up, dtype=np.float64), fs * up)
         lo, hi = max(0, s - _UP_REACH), min(n, e + _UP_REACH + 1)
         per_channel = (e - s) * up * self.memory_per_sample[0]
         groups = channel_groups(n_ch, int(np.ceil(n_ch * per_channel / _UPSAMPLED_VALUES)))
@@ -683,7 +682,7 @@ class CycleEstimator(ArtifactEstimator):
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         margin = int(2 * PULSE_HALF_S * fs) + int(fs / f) + 1
         lo, hi = max(s, a - margin), min(e, b + margin)
-        cycles = (np.arange(lo, hi, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        cycles = blk.cycles_at(np.arange(lo, hi, dtype=np.float64), fs)
         x = np.asarray(read(lo, hi, [row]), dtype=np.float64)
         raw, rate = segment_gain(x, (~find_clipped(x)).astype(np.float64), cycles, fs, f, per_cycle)
         del x
@@ -805,7 +804,7 @@ class CycleEstimator(ArtifactEstimator):
         ref = int(np.argmax(np.where(intact, spread, -1.0))) if intact.any() else int(np.argmax(spread))
         if b - a < 16:
             return ref, None, 0.0, None, None, (ref,), _level(x), None
-        cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        cycles = blk.cycles_at(np.arange(a, b, dtype=np.float64), fs)
         per_cycle = segments_per_cycle(self.tracking_hz, f)
         first = int(np.floor(cycles[0] * per_cycle))  # the gain segments' first number
         # a shift needs seconds of cycles
@@ -1291,7 +1290,7 @@ class RowModelEstimator(CycleEstimator):
         """
         f = blk.freq_hz
         a, b = self._decide_stretch(blk, fs, bounds)
-        cycles = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        cycles = blk.cycles_at(np.arange(a, b, dtype=np.float64), fs)
         x = np.asarray(read(a, b, rows), dtype=np.float64)
         sub = None if response is None else response.rows(rows)
         # the same passes as a range (outliers left out before the choices that count)

@@ -513,7 +513,7 @@ class TemplateSubtraction(CycleEstimator):
             return plan  # a block of a few cycles: too few steps to learn from (this project's choice)
         x = np.asarray(read(a, b, [plan.ref]), dtype=np.float64)
         w = (~find_clipped(x)).astype(np.float64)
-        u = (np.arange(a, b, dtype=np.float64) - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        u = blk.cycles_at(np.arange(a, b, dtype=np.float64), fs)
         per = grid.cycles_per_period
         length = fs * per / (f * grid.ticks_per_cycle)  # samples a tick
         key = block_key(blk)
@@ -541,7 +541,7 @@ class TemplateSubtraction(CycleEstimator):
                 return plan
         # the drift's line through the work range's ends (the grid's track is constant beyond its knots)
         ends = np.array([bounds[0], bounds[1] - 1], dtype=np.float64)
-        at = (ends - blk.ref_sample) * (f / fs) + blk.phase_ref / (2 * np.pi)
+        at = blk.cycles_at(ends, fs)
         resp = EdgeResponse.flat(length)
         for rounds in range(_EDGE_ROUNDS):
             pr = probe(plan._replace(grid=grid, edges=resp))
